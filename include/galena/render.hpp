@@ -1,0 +1,74 @@
+/// One render: an AM source, the detector network and the solver run together in bounded chunks, with
+/// the earpiece voltage decimated to the audio rate through a three-stage anti-alias chain
+/// (box integration at >= 8 x carrier, a cubic B-spline FIR to 4 x audio rate, a 90 dB Kaiser FIR to the
+/// audio rate) and the chain's group delay removed, so output sample k is programme time k / fs.
+#pragma once
+
+#include "galena/circuit.hpp"
+#include "galena/integrator.hpp"
+#include "galena/signal.hpp"
+
+#include <cstddef>
+#include <functional>
+#include <span>
+#include <string>
+#include <vector>
+
+namespace galena {
+
+/// Settings of the render loop.
+struct render_settings {
+    double audio_rate_hz = 48000.0;   ///< output sample rate, Hz; [8000, 192000]
+    double preroll_s = -1.0;          ///< unmodulated carrier before the programme, s; < 0 = automatic
+    double dc_block_hz = 10.0;        ///< corner of the 2nd-order DC-removing high-pass, Hz; (0, 200]
+    double chunk_s = 5e-3;            ///< simulated time per chunk (memory bound), s; [1e-4, 1]
+    step_settings stepper;            ///< tolerances; max_step_s is bounded by a sixth of the carrier period
+    /// h_max = carrier period / this; [4, 1000]. Local error control alone lets the bias of many small
+    /// per-cycle errors pile up on the slow output node (global error ~ cycles x local error), so the
+    /// step is also bounded per carrier cycle: 40 steps per cycle keep the rectified DC within about 1e-5
+    /// of the converged value (measured, DEVELOPERS.md "Accuracy").
+    double carrier_steps_floor = 40.0;
+};
+
+/// One block of output at the audio rate.
+struct audio_block {
+    std::size_t first_sample;              ///< index of the first sample in the programme
+    std::span<const double> earpiece_v;    ///< earpiece voltage, V, DC included
+    std::span<const double> audio_v;       ///< earpiece voltage with DC removed, V
+};
+
+/// Called with consecutive blocks; may throw to abort the render.
+using audio_sink = std::function<void(const audio_block&)>;
+
+/// Summary of a finished render.
+struct render_result {
+    std::size_t samples = 0;          ///< audio samples delivered
+    double audio_rate_hz = 0.0;
+    double preroll_s = 0.0;           ///< preroll actually used, s
+    double simulated_s = 0.0;         ///< total simulated time, preroll included, s
+    double wall_s = 0.0;              ///< wall-clock time of the simulation, s
+    double sample_rate_fine_hz = 0.0; ///< box-integration rate of the first decimation stage, Hz
+    step_stats stats;
+    std::vector<std::string> warnings;
+};
+
+/// Automatic preroll: five output time constants, clamped to [5 ms, 0.25 s] (the DC high-pass absorbs
+/// slower drift), rounded up to a whole number of audio samples.
+[[nodiscard]] double automatic_preroll_s(const detector_network& net, double audio_rate_hz);
+
+/// Runs the simulation of `programme` through the network, delivering programme-aligned audio to `sink`.
+/// @param am carrier and modulation settings; its preroll/ramp fields are set by this function
+/// Throws config_error (bad settings), integration_error (solver failure, with the simulated time).
+render_result render(const circuit_params& circuit, am_params am, modulation& programme, const render_settings& settings,
+                     const audio_sink& sink);
+
+/// Convenience: renders and returns the whole earpiece (DC included) and audio (DC removed) signals.
+struct rendered_audio {
+    std::vector<double> earpiece_v;
+    std::vector<double> audio_v;
+    render_result result;
+};
+[[nodiscard]] rendered_audio render_to_memory(const circuit_params& circuit, const am_params& am, modulation& programme,
+                                              const render_settings& settings);
+
+} // namespace galena

@@ -1,0 +1,71 @@
+/// Scenario files (TOML): the user-facing contract that describes one variant — signal, source, diode,
+/// output network, earpiece, output format and solver accuracy — plus command-line overrides.
+/// All values are SI; `inf` (bare or quoted) means "absent" for resistances.
+#pragma once
+
+#include "galena/audio_io.hpp"
+#include "galena/circuit.hpp"
+#include "galena/render.hpp"
+#include "galena/signal.hpp"
+
+#include <filesystem>
+#include <memory>
+#include <string>
+#include <vector>
+
+namespace galena {
+
+/// What modulates the carrier.
+enum class programme_kind {
+    clip,      ///< an audio file
+    tone,      ///< one sine
+    two_tone,  ///< two sines at a stated amplitude ratio (IMD)
+    log_sweep, ///< exponential sine sweep
+};
+
+/// The programme part of a scenario.
+struct programme_spec {
+    programme_kind kind = programme_kind::tone;
+    std::filesystem::path audio;     ///< clip path, resolved relative to the scenario file
+    double tone_hz = 1000.0;         ///< Hz
+    double tone2_hz = 0.0;           ///< second tone, Hz (two-tone)
+    double tone_ratio = 4.0;         ///< amplitude ratio tone : tone2 (two-tone)
+    double sweep_start_hz = 50.0;    ///< Hz
+    double sweep_stop_hz = 5000.0;   ///< Hz
+    double duration_s = 0.5;         ///< tone length, or clip length limit (0 = whole clip), s
+    double audio_cutoff_hz = 5000.0; ///< band limit of clip audio, Hz
+};
+
+/// Output file settings.
+struct output_spec {
+    wav_format format = wav_format::pcm24;
+    /// Earpiece volts that map to digital full scale; the same for every variant so that files keep their
+    /// relative loudness.
+    double full_scale_v = 2.0;
+};
+
+/// A complete, validated scenario.
+struct scenario {
+    std::filesystem::path file;      ///< where it came from (empty for built-in)
+    programme_spec programme;
+    am_params am;
+    circuit_params circuit;
+    render_settings render;
+    output_spec output;
+};
+
+/// Parses and validates a scenario file, then applies `overrides` ("section.key=value", TOML value syntax;
+/// bare words are taken as strings). Throws config_error "FILE:LINE: section.key = value: rule" on any
+/// problem, with a suggestion for unknown keys.
+[[nodiscard]] scenario load_scenario(const std::filesystem::path& file, const std::vector<std::string>& overrides = {});
+/// Parses scenario text (file is used only in messages and to resolve relative paths).
+[[nodiscard]] scenario parse_scenario(const std::string& text, const std::filesystem::path& file,
+                                      const std::vector<std::string>& overrides = {});
+
+/// Builds the modulation the scenario describes (opens the audio file for clips).
+[[nodiscard]] std::unique_ptr<modulation> make_programme(const scenario& s);
+
+/// The scenario as TOML text, every key explicit (round-trips through parse_scenario).
+[[nodiscard]] std::string to_toml(const scenario& s);
+
+} // namespace galena

@@ -1,0 +1,169 @@
+#include "galena/dsp.hpp"
+
+#include "galena/constants.hpp"
+#include "galena/error.hpp"
+#include "galena/validate.hpp"
+
+#include <algorithm>
+#include <cassert>
+#include <cmath>
+
+namespace galena {
+
+double kaiser_beta(double a)
+{
+    if (a > 50.0) return 0.1102 * (a - 8.7);
+    if (a >= 21.0) return 0.5842 * std::pow(a - 21.0, 0.4) + 0.07886 * (a - 21.0);
+    return 0.0;
+}
+
+std::vector<double> kaiser_lowpass(double cutoff, double transition, double attenuation_db)
+{
+    detail::require_above("fir cutoff (cycles/sample)", cutoff, 0.0, 0.5);
+    detail::require_above("fir transition (cycles/sample)", transition, 0.0, 0.5);
+    detail::require_range("fir attenuation_db", attenuation_db, 21.0, 200.0, "dB");
+    // Kaiser's length estimate N = (A - 8) / (2.285 * delta_omega).
+    const double dw = two_pi * transition;
+    auto n = static_cast<std::size_t>(std::ceil((attenuation_db - 8.0) / (2.285 * dw)));
+    n += (n % 2 == 0) ? 1 : 0;
+    n = std::max<std::size_t>(n, 3);
+    const double beta = kaiser_beta(attenuation_db);
+    const double i0b = std::cyl_bessel_i(0.0, beta);
+    const double mid = 0.5 * static_cast<double>(n - 1);
+    std::vector<double> h(n);
+    double sum = 0.0;
+    for (std::size_t i = 0; i < n; ++i) {
+        const double k = static_cast<double>(i) - mid;
+        const double x = two_pi * cutoff * k;
+        const double ideal = (k == 0.0) ? 2.0 * cutoff : std::sin(x) / (pi * k);
+        const double r = k / mid;
+        const double w = std::cyl_bessel_i(0.0, beta * std::sqrt(std::max(0.0, 1.0 - r * r))) / i0b;
+        h[i] = ideal * w;
+        sum += h[i];
+    }
+    for (double& v : h) v /= sum;
+    return h;
+}
+
+std::vector<double> bspline_kernel(std::size_t box_length, int order)
+{
+    assert(box_length >= 1 && order >= 1);
+    std::vector<double> k{1.0};
+    for (int o = 0; o < order; ++o) {
+        std::vector<double> next(k.size() + box_length - 1, 0.0);
+        for (std::size_t i = 0; i < k.size(); ++i)
+            for (std::size_t j = 0; j < box_length; ++j) next[i + j] += k[i] / static_cast<double>(box_length);
+        k.swap(next);
+    }
+    return k;
+}
+
+fir_decimator::fir_decimator(std::vector<double> taps, std::size_t decimation)
+    : m_taps(std::move(taps)), m_history(2 * m_taps.size(), 0.0), m_decimation(decimation)
+{
+    assert(!m_taps.empty() && decimation >= 1);
+    std::reverse(m_taps.begin(), m_taps.end());
+}
+
+bool fir_decimator::push(double x, double& out) noexcept
+{
+    const std::size_t n = m_taps.size();
+    m_history[m_pos] = x;
+    m_history[m_pos + n] = x;
+    m_pos = (m_pos + 1 == n) ? 0 : m_pos + 1;
+    if (++m_phase < m_decimation) return false;
+    m_phase = 0;
+    // The window of the last n inputs, oldest first, is history[m_pos .. m_pos + n).
+    const double* h = m_history.data() + m_pos;
+    double acc = 0.0;
+    for (std::size_t i = 0; i < n; ++i) acc += m_taps[i] * h[i];
+    out = acc;
+    return true;
+}
+
+void fir_decimator::process(std::span<const double> in, std::vector<double>& out)
+{
+    double y;
+    for (double x : in)
+        if (push(x, y)) out.push_back(y);
+}
+
+void fir_decimator::reset() noexcept
+{
+    std::fill(m_history.begin(), m_history.end(), 0.0);
+    m_pos = 0;
+    m_phase = 0;
+}
+
+biquad biquad::butterworth_highpass(double corner_hz, double fs)
+{
+    detail::require_above("high-pass corner_hz", corner_hz, 0.0, 0.5 * fs, "Hz");
+    const double k = std::tan(pi * corner_hz / fs);
+    const double q = 1.0 / std::sqrt(2.0);
+    const double norm = 1.0 / (1.0 + k / q + k * k);
+    return {norm, -2.0 * norm, norm, 2.0 * (k * k - 1.0) * norm, (1.0 - k / q + k * k) * norm};
+}
+
+biquad biquad::butterworth_lowpass(double corner_hz, double fs)
+{
+    detail::require_above("low-pass corner_hz", corner_hz, 0.0, 0.5 * fs, "Hz");
+    const double k = std::tan(pi * corner_hz / fs);
+    const double q = 1.0 / std::sqrt(2.0);
+    const double norm = 1.0 / (1.0 + k / q + k * k);
+    const double b0 = k * k * norm;
+    return {b0, 2.0 * b0, b0, 2.0 * (k * k - 1.0) * norm, (1.0 - k / q + k * k) * norm};
+}
+
+void biquad::settle_to(double x) noexcept
+{
+    // Steady state for constant input x: y = G x with G = (b0+b1+b2)/(1+a1+a2).
+    const double y = x * (m_b0 + m_b1 + m_b2) / (1.0 + m_a1 + m_a2);
+    m_z2 = m_b2 * x - m_a2 * y;
+    m_z1 = y - m_b0 * x;
+}
+
+namespace {
+/// Antiderivative of the cubic Hermite interpolant on [0,1] with slopes pre-scaled by h, at s.
+inline double hermite_integral(double s, double p0, double p1, double m0, double m1) noexcept
+{
+    const double s2 = s * s;
+    const double s3 = s2 * s;
+    const double s4 = s3 * s;
+    return p0 * (0.5 * s4 - s3 + s) + m0 * (0.25 * s4 - (2.0 / 3.0) * s3 + 0.5 * s2) + p1 * (s3 - 0.5 * s4) +
+           m1 * (0.25 * s4 - s3 / 3.0);
+}
+} // namespace
+
+void box_sampler::add_segment(double t0, double t1, double p0, double p1, double d0, double d1,
+                              std::vector<double>& out)
+{
+    const double h = t1 - t0;
+    if (!(h > 0.0)) return;
+    const double m0 = d0 * h;
+    const double m1 = d1 * h;
+    double a = t0;
+    while (true) {
+        // End of the current bin, derived from the bin index (never accumulated).
+        const double bin_end = m_origin_s + static_cast<double>(m_count + 1) * m_period_s;
+        if (bin_end > t1) {
+            if (t1 > m_origin_s) {
+                const double lo = std::max(a, m_origin_s);
+                const double s_lo = (lo - t0) / h;
+                m_accum += h * (hermite_integral(1.0, p0, p1, m0, m1) - hermite_integral(s_lo, p0, p1, m0, m1));
+            }
+            return;
+        }
+        const double lo = std::max(a, m_origin_s);
+        if (bin_end > lo) {
+            const double s_lo = (lo - t0) / h;
+            const double s_hi = (bin_end - t0) / h;
+            m_accum += h * (hermite_integral(s_hi, p0, p1, m0, m1) - hermite_integral(s_lo, p0, p1, m0, m1));
+        }
+        out.push_back(m_accum / m_period_s);
+        m_accum = 0.0;
+        ++m_count;
+        a = bin_end;
+    }
+}
+
+} // namespace galena

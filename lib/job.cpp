@@ -1,0 +1,131 @@
+#include "galena/job.hpp"
+
+#include "galena/audio_io.hpp"
+#include "galena/constants.hpp"
+#include "galena/error.hpp"
+
+#include <cmath>
+#include <fmt/format.h>
+#include <nlohmann/json.hpp>
+
+namespace galena {
+
+namespace fs = std::filesystem;
+
+namespace {
+/// Raised-cosine fade gain for sample i of n at rate fs.
+double fade_gain(std::size_t i, std::size_t n, double fs, double fade_s)
+{
+    const double t_in = static_cast<double>(i) / fs;
+    const double t_out = static_cast<double>(n - 1 - i) / fs;
+    const double t = std::min(t_in, t_out);
+    if (fade_s <= 0.0 || t >= fade_s) return 1.0;
+    return 0.5 * (1.0 - std::cos(pi * t / fade_s));
+}
+
+/// Copies a float WAV of volts-over-unit-scale into `target` with a gain; streaming.
+void transcode(const fs::path& src, const fs::path& target, double fs, wav_format fmt_, double full_scale_v, double gain,
+               bool overwrite)
+{
+    wav_reader r(src);
+    wav_writer w(target, fs, fmt_, full_scale_v, overwrite);
+    std::vector<float> buf(65536);
+    std::vector<double> v;
+    while (std::size_t n = r.read(buf)) {
+        v.assign(buf.begin(), buf.begin() + static_cast<std::ptrdiff_t>(n));
+        for (double& x : v) x *= gain;
+        w.write_volts(v);
+    }
+    w.commit();
+}
+} // namespace
+
+job_outcome run_render_job(const scenario& s, const fs::path& out_dir, const job_options& opt, double analysis_limit_s)
+{
+    std::error_code ec;
+    if (fs::exists(out_dir, ec) && !fs::is_directory(out_dir, ec))
+        throw audio_error(fmt::format("{}: --out exists and is not a directory", out_dir.string()));
+    fs::create_directories(out_dir, ec);
+    if (ec) throw audio_error(fmt::format("{}: cannot create the output directory: {}", out_dir.string(), ec.message()));
+
+    job_outcome o;
+    o.wav = out_dir / "recovered.wav";
+    o.sidecar = out_dir / "recovered.json";
+    o.full_scale_v = s.output.full_scale_v;
+    const fs::path norm_path = out_dir / "recovered-normalised.wav";
+    for (const auto& p : {o.wav, o.sidecar, norm_path}) {
+        if (s.programme.kind == programme_kind::clip && same_file(p, s.programme.audio))
+            throw audio_error(fmt::format("{}: is the scenario's own audio input; refusing to overwrite an input", p.string()));
+        if (fs::exists(p, ec) && !opt.overwrite)
+            throw audio_error(fmt::format("{}: already exists (pass --overwrite to replace it)", p.string()));
+    }
+    auto programme = make_programme(s);
+    const double fs_hz = s.render.audio_rate_hz;
+    const auto total = static_cast<std::size_t>(std::llround(programme->duration_s() * fs_hz));
+    const auto keep = static_cast<std::size_t>(analysis_limit_s * fs_hz);
+
+    // Unclipped float intermediate (unit scale = 1 V), hidden in the output directory; removed on exit.
+    const fs::path raw_path = out_dir / ".recovered.unclipped.wav";
+    struct remover {
+        fs::path p;
+        ~remover()
+        {
+            std::error_code e;
+            fs::remove(p, e);
+        }
+    } cleanup{raw_path};
+    {
+        wav_writer raw(raw_path, fs_hz, wav_format::float32, 1.0e3, true);
+        std::vector<double> faded;
+        o.render = render(s.circuit, s.am, *programme, s.render, [&](const audio_block& b) {
+            faded.assign(b.audio_v.begin(), b.audio_v.end());
+            for (std::size_t i = 0; i < faded.size(); ++i) {
+                o.peak_audio_v = std::max(o.peak_audio_v, std::fabs(faded[i]));
+                faded[i] *= fade_gain(b.first_sample + i, total, fs_hz, opt.fade_s);
+                if (std::fabs(faded[i]) > s.output.full_scale_v) ++o.clipped_samples;
+            }
+            raw.write_volts(faded);
+            for (std::size_t i = 0; i < b.earpiece_v.size() && o.analysis_v.size() < keep; ++i)
+                o.analysis_v.push_back(static_cast<float>(b.earpiece_v[i]));
+            if (opt.progress && total > 0) opt.progress(static_cast<double>(b.first_sample + b.earpiece_v.size()) / static_cast<double>(total));
+        });
+        raw.commit();
+    }
+    // The intermediate holds volts / 1000; scale back while transcoding.
+    transcode(raw_path, o.wav, fs_hz, s.output.format, s.output.full_scale_v, 1e3, opt.overwrite);
+    if (o.peak_audio_v > s.output.full_scale_v) {
+        // Exact count of clipped samples, and a normalised copy peaking at -1 dBFS.
+        const double target = s.output.full_scale_v * std::pow(10.0, -1.0 / 20.0);
+        const double gain = target / o.peak_audio_v;
+        o.normalised_gain_db = 20.0 * std::log10(gain);
+        o.normalised_wav = norm_path;
+        transcode(raw_path, norm_path, fs_hz, s.output.format, s.output.full_scale_v, 1e3 * gain, opt.overwrite);
+        o.warnings.push_back(fmt::format("the earpiece audio peaks at {:.3g} V, above the {:.3g} V full scale: {} clips; "
+                                         "{} is a copy with {:.1f} dB gain",
+                                         o.peak_audio_v, s.output.full_scale_v, o.wav.filename().string(),
+                                         norm_path.filename().string(), o.normalised_gain_db));
+    }
+    for (const auto& w : o.render.warnings) o.warnings.push_back(w);
+    nlohmann::ordered_json j;
+    j["wav"] = o.wav.filename().string();
+    j["full_scale_v"] = o.full_scale_v;
+    j["sample_rate_hz"] = fs_hz;
+    j["format"] = std::string(to_string(s.output.format));
+    j["samples"] = o.render.samples;
+    j["preroll_s"] = o.render.preroll_s;
+    j["peak_audio_v"] = o.peak_audio_v;
+    j["clipped_samples"] = o.clipped_samples;
+    j["normalised_wav"] = o.normalised_wav.empty() ? nlohmann::json(nullptr) : nlohmann::json(o.normalised_wav.filename().string());
+    j["normalised_gain_db"] = o.normalised_gain_db;
+    j["simulated_s"] = o.render.simulated_s;
+    j["wall_s"] = o.render.wall_s;
+    j["fine_sample_rate_hz"] = o.render.sample_rate_fine_hz;
+    j["steps_accepted"] = o.render.stats.accepted;
+    j["steps_rejected"] = o.render.stats.rejected_error + o.render.stats.rejected_newton;
+    j["newton_iterations"] = o.render.stats.newton_iterations;
+    j["warnings"] = o.warnings;
+    write_text_atomic(o.sidecar, j.dump(2) + "\n");
+    return o;
+}
+
+} // namespace galena

@@ -1,0 +1,418 @@
+#include "galena/scenario.hpp"
+
+#include "galena/error.hpp"
+#include "galena/validate.hpp"
+
+#include <algorithm>
+#include <cmath>
+#include <fmt/format.h>
+#include <fstream>
+#include <functional>
+#include <limits>
+#include <map>
+#include <sstream>
+#include <toml++/toml.h>
+
+namespace galena {
+
+namespace fs = std::filesystem;
+
+namespace {
+
+constexpr double inf = std::numeric_limits<double>::infinity();
+
+/// Where a key came from, for messages.
+struct key_origin {
+    std::string where; // "file:line" or "--set"
+};
+
+std::string source_of(const toml::node& n, const fs::path& file)
+{
+    const auto& src = n.source();
+    if (src.begin.line > 0) return fmt::format("{}:{}", file.string(), src.begin.line);
+    return file.string();
+}
+
+double as_number(const toml::node& n, const std::string& field, const std::string& where)
+{
+    if (auto v = n.value_exact<double>()) return *v;
+    if (auto v = n.value_exact<int64_t>()) return static_cast<double>(*v);
+    if (auto s = n.value_exact<std::string>()) {
+        std::string t = *s;
+        std::transform(t.begin(), t.end(), t.begin(), [](unsigned char c) { return std::tolower(c); });
+        if (t == "inf" || t == "+inf" || t == "infinity" || t == "none") return inf;
+        char* end = nullptr;
+        const double v = std::strtod(s->c_str(), &end);
+        if (end != s->c_str() && *end == '\0') return v;
+    }
+    throw config_error(fmt::format("{}: {} = {}: must be a number (SI units; inf allowed)", where, field,
+                                   n.is_string() ? fmt::format("\"{}\"", *n.value<std::string>()) : std::string("<non-number>")));
+}
+
+std::string as_string(const toml::node& n, const std::string& field, const std::string& where)
+{
+    if (auto s = n.value_exact<std::string>()) return *s;
+    throw config_error(fmt::format("{}: {}: must be a string", where, field));
+}
+
+bool as_bool(const toml::node& n, const std::string& field, const std::string& where)
+{
+    if (auto b = n.value_exact<bool>()) return *b;
+    throw config_error(fmt::format("{}: {}: must be true or false", where, field));
+}
+
+std::size_t edit_distance(std::string_view a, std::string_view b)
+{
+    std::vector<std::size_t> prev(b.size() + 1), cur(b.size() + 1);
+    for (std::size_t j = 0; j <= b.size(); ++j) prev[j] = j;
+    for (std::size_t i = 1; i <= a.size(); ++i) {
+        cur[0] = i;
+        for (std::size_t j = 1; j <= b.size(); ++j)
+            cur[j] = std::min({prev[j] + 1, cur[j - 1] + 1, prev[j - 1] + (a[i - 1] == b[j - 1] ? 0 : 1)});
+        std::swap(prev, cur);
+    }
+    return prev[b.size()];
+}
+
+using setter = std::function<void(scenario&, const toml::node&, const std::string& field, const std::string& where)>;
+
+setter num(double scenario::*) = delete;
+
+template <class Get>
+setter number_into(Get get)
+{
+    return [get](scenario& s, const toml::node& n, const std::string& f, const std::string& w) { get(s) = as_number(n, f, w); };
+}
+
+/// Every key of the contract, by section. Order matters only for to_toml and listings.
+const std::map<std::string, std::map<std::string, setter>>& key_table()
+{
+    static const std::map<std::string, std::map<std::string, setter>> t = {
+        {"signal",
+         {
+             {"audio", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
+                  s.programme.audio = as_string(n, f, w);
+                  s.programme.kind = programme_kind::clip;
+              }},
+             {"tone_hz", number_into([](scenario& s) -> double& { return s.programme.tone_hz; })},
+             {"tone2_hz", number_into([](scenario& s) -> double& { return s.programme.tone2_hz; })},
+             {"tone_ratio", number_into([](scenario& s) -> double& { return s.programme.tone_ratio; })},
+             {"sweep_start_hz", number_into([](scenario& s) -> double& { return s.programme.sweep_start_hz; })},
+             {"sweep_stop_hz", number_into([](scenario& s) -> double& { return s.programme.sweep_stop_hz; })},
+             {"test_signal", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
+                  const std::string v = as_string(n, f, w);
+                  if (v == "tone") s.programme.kind = programme_kind::tone;
+                  else if (v == "two-tone") s.programme.kind = programme_kind::two_tone;
+                  else if (v == "log-sweep") s.programme.kind = programme_kind::log_sweep;
+                  else throw config_error(fmt::format("{}: {} = \"{}\": must be one of tone, two-tone, log-sweep", w, f, v));
+              }},
+             {"duration_s", number_into([](scenario& s) -> double& { return s.programme.duration_s; })},
+             {"carrier_hz", number_into([](scenario& s) -> double& { return s.am.carrier_hz; })},
+             {"carrier_peak_v", number_into([](scenario& s) -> double& { return s.am.carrier_peak_v; })},
+             {"modulation_index", number_into([](scenario& s) -> double& { return s.am.modulation_index; })},
+             {"allow_overmodulation", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
+                  s.am.allow_overmodulation = as_bool(n, f, w);
+              }},
+             {"audio_cutoff_hz", number_into([](scenario& s) -> double& { return s.programme.audio_cutoff_hz; })},
+         }},
+        {"source", {{"resistance_ohm", number_into([](scenario& s) -> double& { return s.circuit.source.resistance_ohm; })}}},
+        {"diode",
+         {
+             {"preset", [](scenario&, const toml::node&, const std::string&, const std::string&) {}}, // applied first
+             {"saturation_current_a", number_into([](scenario& s) -> double& { return s.circuit.diode.saturation_current_a; })},
+             {"emission_coefficient", number_into([](scenario& s) -> double& { return s.circuit.diode.emission_coefficient; })},
+             {"series_resistance_ohm", number_into([](scenario& s) -> double& { return s.circuit.diode.series_resistance_ohm; })},
+             {"leakage_resistance_ohm", number_into([](scenario& s) -> double& { return s.circuit.diode.leakage_resistance_ohm; })},
+             {"junction_capacitance_f", number_into([](scenario& s) -> double& { return s.circuit.diode.junction_capacitance_f; })},
+             {"junction_potential_v", number_into([](scenario& s) -> double& { return s.circuit.diode.junction_potential_v; })},
+             {"grading_coefficient", number_into([](scenario& s) -> double& { return s.circuit.diode.grading_coefficient; })},
+             {"breakdown_voltage_v", number_into([](scenario& s) -> double& { return s.circuit.diode.breakdown_voltage_v; })},
+             {"breakdown_current_a", number_into([](scenario& s) -> double& { return s.circuit.diode.breakdown_current_a; })},
+             {"temperature_c", number_into([](scenario& s) -> double& { return s.circuit.diode.temperature_c; })},
+             {"nominal_temperature_c", number_into([](scenario& s) -> double& { return s.circuit.diode.nominal_temperature_c; })},
+             {"energy_gap_ev", number_into([](scenario& s) -> double& { return s.circuit.diode.energy_gap_ev; })},
+             {"saturation_current_exponent", number_into([](scenario& s) -> double& { return s.circuit.diode.saturation_current_exponent; })},
+         }},
+        {"load",
+         {
+             {"bleeder_ohm", number_into([](scenario& s) -> double& { return s.circuit.load.bleeder_ohm; })},
+             {"filter_capacitance_f", number_into([](scenario& s) -> double& { return s.circuit.load.filter_capacitance_f; })},
+             {"stray_capacitance_f", number_into([](scenario& s) -> double& { return s.circuit.load.stray_capacitance_f; })},
+         }},
+        {"earpiece",
+         {
+             {"kind", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
+                  try {
+                      s.circuit.earpiece.kind = parse_earpiece_kind(as_string(n, f, w));
+                  } catch (const config_error& e) {
+                      throw config_error(fmt::format("{}: {}", w, e.what()));
+                  }
+              }},
+             {"capacitance_f", number_into([](scenario& s) -> double& { return s.circuit.earpiece.capacitance_f; })},
+             {"leakage_ohm", number_into([](scenario& s) -> double& { return s.circuit.earpiece.leakage_ohm; })},
+             {"motional_resistance_ohm", number_into([](scenario& s) -> double& { return s.circuit.earpiece.motional_resistance_ohm; })},
+             {"motional_inductance_h", number_into([](scenario& s) -> double& { return s.circuit.earpiece.motional_inductance_h; })},
+             {"motional_capacitance_f", number_into([](scenario& s) -> double& { return s.circuit.earpiece.motional_capacitance_f; })},
+             {"resistance_ohm", number_into([](scenario& s) -> double& { return s.circuit.earpiece.resistance_ohm; })},
+             {"inductance_h", number_into([](scenario& s) -> double& { return s.circuit.earpiece.inductance_h; })},
+             {"loss_resistance_ohm", number_into([](scenario& s) -> double& { return s.circuit.earpiece.loss_resistance_ohm; })},
+         }},
+        {"output",
+         {
+             {"sample_rate_hz", number_into([](scenario& s) -> double& { return s.render.audio_rate_hz; })},
+             {"full_scale_v", number_into([](scenario& s) -> double& { return s.output.full_scale_v; })},
+             {"format", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
+                  try {
+                      s.output.format = parse_wav_format(as_string(n, f, w));
+                  } catch (const config_error& e) {
+                      throw config_error(fmt::format("{}: {}", w, e.what()));
+                  }
+              }},
+         }},
+        {"solver",
+         {
+             {"relative_tolerance", number_into([](scenario& s) -> double& { return s.render.stepper.relative_tolerance; })},
+             {"absolute_tolerance_v", number_into([](scenario& s) -> double& { return s.render.stepper.absolute_tolerance_v; })},
+             {"preroll_s", number_into([](scenario& s) -> double& { return s.render.preroll_s; })},
+             {"dc_block_hz", number_into([](scenario& s) -> double& { return s.render.dc_block_hz; })},
+             {"carrier_steps_floor", number_into([](scenario& s) -> double& { return s.render.carrier_steps_floor; })},
+         }},
+    };
+    return t;
+}
+
+std::string nearest(std::string_view word, const std::vector<std::string>& candidates)
+{
+    std::string best;
+    std::size_t best_d = std::numeric_limits<std::size_t>::max();
+    for (const auto& c : candidates) {
+        const std::size_t dd = edit_distance(word, c);
+        if (dd < best_d) {
+            best_d = dd;
+            best = c;
+        }
+    }
+    return best_d <= std::max<std::size_t>(3, word.size() / 2) ? best : std::string();
+}
+
+void apply_overrides(toml::table& root, const std::vector<std::string>& overrides)
+{
+    for (const auto& o : overrides) {
+        const auto eq = o.find('=');
+        const auto dot = o.find('.');
+        if (eq == std::string::npos || dot == std::string::npos || dot > eq)
+            throw config_error(fmt::format("--set {}: must look like section.key=value", o));
+        const std::string section = o.substr(0, dot);
+        const std::string key = o.substr(dot + 1, eq - dot - 1);
+        const std::string value = o.substr(eq + 1);
+        toml::table* tab = root[section].as_table();
+        if (tab == nullptr) {
+            root.insert(section, toml::table{});
+            tab = root[section].as_table();
+        }
+        try {
+            toml::table parsed = toml::parse("v = " + value);
+            tab->insert_or_assign(key, *parsed["v"].node());
+        } catch (const toml::parse_error&) {
+            tab->insert_or_assign(key, value); // a bare word: a string
+        }
+    }
+}
+
+/// Finds "file:line" for a dotted field name, for messages raised after parsing.
+std::string where_is(const toml::table& root, std::string_view field, const fs::path& file)
+{
+    const auto dot = field.find('.');
+    if (dot == std::string_view::npos) return file.string();
+    const toml::node* n = root.at_path(field).node();
+    return n != nullptr ? source_of(*n, file) : file.string();
+}
+
+} // namespace
+
+scenario parse_scenario(const std::string& text, const fs::path& file, const std::vector<std::string>& overrides)
+{
+    toml::table root;
+    try {
+        root = toml::parse(text, file.string());
+    } catch (const toml::parse_error& e) {
+        throw config_error(fmt::format("{}:{}: malformed TOML: {}", file.string(), e.source().begin.line, e.description()));
+    }
+    apply_overrides(root, overrides);
+
+    scenario s;
+    s.file = file;
+    // Preset first, so explicit diode fields override it.
+    if (const toml::node* p = root.at_path("diode.preset").node()) {
+        const std::string w = source_of(*p, file);
+        const std::string name = as_string(*p, "diode.preset", w);
+        try {
+            s.circuit.diode = find_diode_preset(name).params;
+        } catch (const config_error& e) {
+            throw config_error(fmt::format("{}: {}", w, e.what()));
+        }
+    } else {
+        s.circuit.diode = find_diode_preset("germanium-point-contact").params;
+    }
+    const auto& table = key_table();
+    std::vector<std::string> sections;
+    for (const auto& [name, keys] : table) sections.push_back(name);
+    bool audio_set = false;
+    for (const auto& [sec_name, sec_node] : root) {
+        const std::string sec(sec_name.str());
+        const std::string w = source_of(sec_node, file);
+        auto it = table.find(sec);
+        if (it == table.end()) {
+            const std::string near = nearest(sec, sections);
+            throw config_error(fmt::format("{}: [{}]: unknown section{}", w, sec,
+                                           near.empty() ? "" : fmt::format(" (did you mean [{}]?)", near)));
+        }
+        const toml::table* tab = sec_node.as_table();
+        if (tab == nullptr) throw config_error(fmt::format("{}: {}: must be a table [{}]", w, sec, sec));
+        std::vector<std::string> keys;
+        for (const auto& [k, v] : it->second) keys.push_back(k);
+        for (const auto& [key_name, node] : *tab) {
+            const std::string key(key_name.str());
+            const std::string field = sec + "." + key;
+            const std::string kw = source_of(node, file);
+            auto kt = it->second.find(key);
+            if (kt == it->second.end()) {
+                const std::string near = nearest(key, keys);
+                throw config_error(fmt::format("{}: {}: unknown key{}", kw, field,
+                                               near.empty() ? "" : fmt::format(" (did you mean {}.{}?)", sec, near)));
+            }
+            kt->second(s, node, field, kw);
+            if (field == "signal.audio") audio_set = true;
+        }
+    }
+    if (audio_set && !s.programme.audio.is_absolute()) s.programme.audio = file.parent_path() / s.programme.audio;
+    if (!audio_set && s.programme.kind == programme_kind::tone && s.programme.tone2_hz > 0.0)
+        s.programme.kind = programme_kind::two_tone;
+
+    // Validate everything, naming the key's line when the rule belongs to one.
+    try {
+        s.am.validate();
+        (void)detector_network(s.circuit);
+        auto& p = s.programme;
+        detail::require_range("signal.duration_s", p.duration_s, 0.0, 36000.0, "s");
+        if (p.kind != programme_kind::clip && !(p.duration_s > 0.0))
+            throw config_error(fmt::format("signal.duration_s = {}: a test signal needs a duration > 0 s",
+                                           detail::format_value(p.duration_s)));
+        const double nyq = 0.5 * s.render.audio_rate_hz;
+        detail::require_range("output.sample_rate_hz", s.render.audio_rate_hz, 8000.0, 192000.0, "Hz");
+        detail::require_range("signal.audio_cutoff_hz", p.audio_cutoff_hz, 100.0, 20000.0, "Hz");
+        if (p.kind == programme_kind::tone || p.kind == programme_kind::two_tone)
+            detail::require_range("signal.tone_hz", p.tone_hz, 1.0, 0.45 * 2.0 * nyq, "Hz");
+        if (p.kind == programme_kind::two_tone) {
+            detail::require_range("signal.tone2_hz", p.tone2_hz, 1.0, 0.45 * 2.0 * nyq, "Hz");
+            detail::require_range("signal.tone_ratio", p.tone_ratio, 1e-3, 1e3);
+        }
+        if (p.kind == programme_kind::log_sweep) {
+            detail::require_range("signal.sweep_start_hz", p.sweep_start_hz, 1.0, nyq, "Hz");
+            detail::require_above("signal.sweep_stop_hz", p.sweep_stop_hz, p.sweep_start_hz, nyq, "Hz");
+        }
+        detail::require_above("output.full_scale_v", s.output.full_scale_v, 0.0, 1e4, "V");
+        detail::require_range("solver.relative_tolerance", s.render.stepper.relative_tolerance, 1e-10, 1e-1);
+        detail::require_above("solver.absolute_tolerance_v", s.render.stepper.absolute_tolerance_v, 0.0, 1.0, "V");
+        if (s.render.preroll_s >= 0.0) detail::require_range("solver.preroll_s", s.render.preroll_s, 1e-3, 100.0, "s");
+        detail::require_range("solver.dc_block_hz", s.render.dc_block_hz, 1e-3, 200.0, "Hz");
+        detail::require_range("solver.carrier_steps_floor", s.render.carrier_steps_floor, 4.0, 1000.0);
+        if (s.am.carrier_hz < 2.5 * nyq)
+            throw config_error(fmt::format("signal.carrier_hz = {}: must be at least 2.5 x the audio Nyquist frequency "
+                                           "({} Hz) so the sidebands stay clear of DC and the audio band",
+                                           detail::format_value(s.am.carrier_hz), nyq));
+        if (s.am.carrier_hz < 4.0 * p.audio_cutoff_hz)
+            throw config_error(fmt::format("signal.carrier_hz = {}: must be at least 4 x signal.audio_cutoff_hz",
+                                           detail::format_value(s.am.carrier_hz)));
+    } catch (const config_error& e) {
+        const std::string msg = e.what();
+        const auto sp = msg.find(' ');
+        const std::string field = msg.substr(0, sp);
+        throw config_error(fmt::format("{}: {}", where_is(root, field, file), msg));
+    }
+    return s;
+}
+
+scenario load_scenario(const fs::path& file, const std::vector<std::string>& overrides)
+{
+    std::error_code ec;
+    if (fs::is_directory(file, ec)) throw config_error(fmt::format("{}: is a directory, not a scenario file", file.string()));
+    std::ifstream in(file, std::ios::binary);
+    if (!in) throw config_error(fmt::format("{}: cannot open the scenario file", file.string()));
+    std::stringstream ss;
+    ss << in.rdbuf();
+    return parse_scenario(ss.str(), file, overrides);
+}
+
+std::unique_ptr<modulation> make_programme(const scenario& s)
+{
+    const auto& p = s.programme;
+    switch (p.kind) {
+    case programme_kind::clip: {
+        conditioning_settings cs;
+        cs.cutoff_hz = p.audio_cutoff_hz;
+        cs.max_duration_s = p.duration_s;
+        auto reader = std::make_unique<wav_reader>(p.audio);
+        if (p.audio_cutoff_hz > 0.45 * reader->sample_rate_hz())
+            throw config_error(fmt::format("{}: signal.audio_cutoff_hz = {}: must be at most 0.45 x the clip's sample rate ({} Hz)",
+                                           s.file.string(), p.audio_cutoff_hz, reader->sample_rate_hz()));
+        return std::make_unique<clip_modulation>(std::move(reader), cs);
+    }
+    case programme_kind::tone: return std::make_unique<tone_modulation>(std::vector{p.tone_hz}, std::vector{1.0}, p.duration_s);
+    case programme_kind::two_tone:
+        return std::make_unique<tone_modulation>(std::vector{p.tone_hz, p.tone2_hz}, std::vector{p.tone_ratio, 1.0}, p.duration_s);
+    case programme_kind::log_sweep:
+        return std::make_unique<log_sweep_modulation>(p.sweep_start_hz, p.sweep_stop_hz, p.duration_s);
+    }
+    throw config_error("unknown programme kind");
+}
+
+namespace {
+std::string num(double v)
+{
+    if (std::isinf(v)) return v > 0 ? "inf" : "-inf";
+    return fmt::format("{:.9g}", v).find_first_of(".e") == std::string::npos ? fmt::format("{:.9g}.0", v)
+                                                                               : fmt::format("{:.9g}", v);
+}
+} // namespace
+
+std::string to_toml(const scenario& s)
+{
+    const auto& p = s.programme;
+    const auto& d = s.circuit.diode;
+    const auto& e = s.circuit.earpiece;
+    std::string o;
+    o += "[signal]\n";
+    if (p.kind == programme_kind::clip) o += fmt::format("audio = \"{}\"\n", p.audio.string());
+    else o += fmt::format("test_signal = \"{}\"\n", p.kind == programme_kind::tone ? "tone" : p.kind == programme_kind::two_tone ? "two-tone" : "log-sweep");
+    o += fmt::format("tone_hz = {}\ntone2_hz = {}\ntone_ratio = {}\nsweep_start_hz = {}\nsweep_stop_hz = {}\n", num(p.tone_hz),
+                     num(p.tone2_hz), num(p.tone_ratio), num(p.sweep_start_hz), num(p.sweep_stop_hz));
+    o += fmt::format("duration_s = {}\ncarrier_hz = {}\ncarrier_peak_v = {}\nmodulation_index = {}\nallow_overmodulation = {}\naudio_cutoff_hz = {}\n",
+                     num(p.duration_s), num(s.am.carrier_hz), num(s.am.carrier_peak_v), num(s.am.modulation_index),
+                     s.am.allow_overmodulation ? "true" : "false", num(p.audio_cutoff_hz));
+    o += fmt::format("\n[source]\nresistance_ohm = {}\n", num(s.circuit.source.resistance_ohm));
+    o += fmt::format("\n[diode]\npreset = \"{}\"\nsaturation_current_a = {}\nemission_coefficient = {}\nseries_resistance_ohm = {}\n"
+                     "leakage_resistance_ohm = {}\njunction_capacitance_f = {}\njunction_potential_v = {}\ngrading_coefficient = {}\n"
+                     "breakdown_voltage_v = {}\nbreakdown_current_a = {}\ntemperature_c = {}\nnominal_temperature_c = {}\n"
+                     "energy_gap_ev = {}\nsaturation_current_exponent = {}\n",
+                     d.name == "custom" ? "germanium-point-contact" : d.name, num(d.saturation_current_a), num(d.emission_coefficient),
+                     num(d.series_resistance_ohm), num(d.leakage_resistance_ohm), num(d.junction_capacitance_f),
+                     num(d.junction_potential_v), num(d.grading_coefficient), num(d.breakdown_voltage_v),
+                     num(d.breakdown_current_a), num(d.temperature_c), num(d.nominal_temperature_c), num(d.energy_gap_ev),
+                     num(d.saturation_current_exponent));
+    o += fmt::format("\n[load]\nbleeder_ohm = {}\nfilter_capacitance_f = {}\nstray_capacitance_f = {}\n", num(s.circuit.load.bleeder_ohm),
+                     num(s.circuit.load.filter_capacitance_f), num(s.circuit.load.stray_capacitance_f));
+    o += fmt::format("\n[earpiece]\nkind = \"{}\"\ncapacitance_f = {}\nleakage_ohm = {}\nmotional_resistance_ohm = {}\n"
+                     "motional_inductance_h = {}\nmotional_capacitance_f = {}\nresistance_ohm = {}\ninductance_h = {}\nloss_resistance_ohm = {}\n",
+                     to_string(e.kind), num(e.capacitance_f), num(e.leakage_ohm), num(e.motional_resistance_ohm),
+                     num(e.motional_inductance_h), num(e.motional_capacitance_f), num(e.resistance_ohm), num(e.inductance_h),
+                     num(e.loss_resistance_ohm));
+    o += fmt::format("\n[output]\nsample_rate_hz = {}\nformat = \"{}\"\nfull_scale_v = {}\n", num(s.render.audio_rate_hz),
+                     to_string(s.output.format), num(s.output.full_scale_v));
+    o += fmt::format("\n[solver]\nrelative_tolerance = {}\nabsolute_tolerance_v = {}\npreroll_s = {}\ndc_block_hz = {}\ncarrier_steps_floor = {}\n",
+                     num(s.render.stepper.relative_tolerance), num(s.render.stepper.absolute_tolerance_v),
+                     num(s.render.preroll_s), num(s.render.dc_block_hz), num(s.render.carrier_steps_floor));
+    return o;
+}
+
+} // namespace galena
