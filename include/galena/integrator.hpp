@@ -64,6 +64,9 @@ public:
         m_h = m_s.initial_step_s;
         m_sys->rhs(m_x, m_t, m_f);
         m_have_prev = false;
+        m_xp = m_x;
+        m_fp = m_f;
+        m_hp = 0.0;
         m_peak = x0.cwiseAbs();
     }
 
