@@ -1,0 +1,103 @@
+// WAV round-trips for every supported format, mono mixing, calibration metadata, atomic writes.
+#include "galena/audio_io.hpp"
+#include "galena/error.hpp"
+
+#include <doctest/doctest.h>
+#include <fmt/format.h>
+#include <sndfile.h>
+#include <cmath>
+#include <filesystem>
+#include <vector>
+
+using namespace galena;
+namespace fs = std::filesystem;
+
+namespace {
+fs::path scratch(const std::string& name)
+{
+    const fs::path d = fs::path(GALENA_TEST_TMP) / "audio_io";
+    fs::create_directories(d);
+    const fs::path p = d / name;
+    fs::remove(p);
+    return p;
+}
+} // namespace
+
+TEST_CASE("WAV round-trip in every output format stays within the format's quantisation step")
+{
+    std::vector<double> volts(1000);
+    for (std::size_t i = 0; i < volts.size(); ++i) volts[i] = 1.5 * std::sin(0.01 * static_cast<double>(i)) * std::cos(0.003 * i);
+    const double full_scale = 2.0;
+    // Quantisation step of each format relative to full scale: 2^-15, 2^-23, float ~ 2^-24 relative.
+    for (auto [f, step] : {std::pair{wav_format::pcm16, std::ldexp(1.0, -15)}, std::pair{wav_format::pcm24, std::ldexp(1.0, -23)},
+                           std::pair{wav_format::float32, std::ldexp(1.0, -23)}}) {
+        const auto p = scratch(fmt::format("rt_{}.wav", to_string(f)));
+        write_wav(p, volts, 48000.0, f, full_scale, false);
+        double rate = 0;
+        const auto back = read_mono(p, &rate);
+        CHECK(rate == 48000.0);
+        REQUIRE(back.size() == volts.size());
+        double worst = 0;
+        for (std::size_t i = 0; i < volts.size(); ++i) worst = std::max(worst, std::fabs(back[i] * full_scale - volts[i]));
+        CHECK(worst <= step * full_scale);
+        // The calibration is recorded in the file.
+        SF_INFO info{};
+        SNDFILE* sf = sf_open(p.c_str(), SFM_READ, &info);
+        REQUIRE(sf != nullptr);
+        const char* c = sf_get_string(sf, SF_STR_COMMENT);
+        REQUIRE(c != nullptr);
+        CHECK(std::string(c).find("full scale = 2 V peak") != std::string::npos);
+        sf_close(sf);
+    }
+}
+
+TEST_CASE("reading: stereo is mixed to mono; 32-bit PCM and odd rates are accepted")
+{
+    const auto p = scratch("stereo32.wav");
+    SF_INFO info{};
+    info.samplerate = 22050;
+    info.channels = 2;
+    info.format = SF_FORMAT_WAV | SF_FORMAT_PCM_32;
+    SNDFILE* sf = sf_open(p.c_str(), SFM_WRITE, &info);
+    REQUIRE(sf != nullptr);
+    std::vector<float> inter{0.5f, -0.1f, 0.2f, 0.2f, -0.4f, 0.0f};
+    sf_writef_float(sf, inter.data(), 3);
+    sf_close(sf);
+    double rate = 0;
+    const auto m = read_mono(p, &rate);
+    CHECK(rate == 22050.0);
+    REQUIRE(m.size() == 3);
+    CHECK(m[0] == doctest::Approx(0.2).epsilon(1e-6));
+    CHECK(m[1] == doctest::Approx(0.2).epsilon(1e-6));
+    CHECK(m[2] == doctest::Approx(-0.2).epsilon(1e-6));
+}
+
+TEST_CASE("writer: clipping is counted, non-finite samples refused, nothing left behind without commit")
+{
+    const auto p = scratch("clip.wav");
+    {
+        wav_writer w(p, 48000.0, wav_format::pcm16, 1.0, false);
+        const std::vector<double> v{0.5, 1.5, -2.0, 0.1};
+        w.write_volts(v);
+        CHECK(w.clipped() == 2);
+        const std::vector<double> bad{std::nan("")};
+        CHECK_THROWS_AS(w.write_volts(bad), audio_error);
+        // destroyed without commit
+    }
+    CHECK_FALSE(fs::exists(p));
+    for (const auto& e : fs::directory_iterator(p.parent_path())) CHECK(e.path().filename().string().find("clip.wav.partial") == std::string::npos);
+}
+
+TEST_CASE("writer refuses to replace an existing file unless asked; reader errors name the file")
+{
+    const auto p = scratch("exists.wav");
+    write_wav(p, std::vector<double>{0.1, 0.2}, 8000.0, wav_format::pcm16, 1.0, false);
+    CHECK_THROWS_WITH_AS(write_wav(p, std::vector<double>{0.1}, 8000.0, wav_format::pcm16, 1.0, false),
+                         doctest::Contains("already exists"), audio_error);
+    CHECK_NOTHROW(write_wav(p, std::vector<double>{0.1}, 8000.0, wav_format::pcm16, 1.0, true));
+    CHECK_THROWS_WITH_AS(wav_reader{p.parent_path() / "missing.wav"}, doctest::Contains("missing.wav: no such file"), audio_error);
+    CHECK_THROWS_WITH_AS(wav_reader{p.parent_path()}, doctest::Contains("is a directory"), audio_error);
+    const auto txt = scratch("not-audio.wav");
+    write_text_atomic(txt, "this is not audio\n");
+    CHECK_THROWS_WITH_AS(wav_reader{txt}, doctest::Contains("cannot read as audio"), audio_error);
+}

@@ -1,0 +1,72 @@
+// Scenario contract: keys, presets, overrides, messages that name file, line, field and rule.
+#include "galena/error.hpp"
+#include "galena/scenario.hpp"
+
+#include <doctest/doctest.h>
+#include <cmath>
+
+using namespace galena;
+
+TEST_CASE("the contract's example parses, presets apply and fields override them")
+{
+    const std::string text = R"(
+[signal]
+tone_hz = 1000
+duration_s = 0.5
+carrier_hz = 1.0e6
+carrier_peak_v = 0.3
+modulation_index = 0.3
+audio_cutoff_hz = 5000
+[source]
+resistance_ohm = 20e3
+[diode]
+preset = "small-signal-schottky"
+emission_coefficient = 1.3
+leakage_resistance_ohm = inf
+[load]
+bleeder_ohm = "inf"
+filter_capacitance_f = 0
+[earpiece]
+kind = "piezo"
+capacitance_f = 10e-9
+leakage_ohm = inf
+)";
+    const auto s = parse_scenario(text, "x.toml");
+    CHECK(s.am.carrier_hz == 1e6);
+    CHECK(s.circuit.source.resistance_ohm == 20e3);
+    CHECK(s.circuit.diode.saturation_current_a == find_diode_preset("small-signal-schottky").params.saturation_current_a);
+    CHECK(s.circuit.diode.emission_coefficient == 1.3);
+    CHECK(std::isinf(s.circuit.load.bleeder_ohm));
+    CHECK(s.programme.kind == programme_kind::tone);
+    // Round trip through the full TOML rendering.
+    const auto again = parse_scenario(to_toml(s), "y.toml");
+    CHECK(to_toml(again) == to_toml(s));
+}
+
+TEST_CASE("overrides use section.key=value")
+{
+    const auto s = parse_scenario("[signal]\ntone_hz = 400\n", "x.toml", {"load.bleeder_ohm=47e3", "diode.preset=silicon-junction-switching"});
+    CHECK(s.circuit.load.bleeder_ohm == 47e3);
+    CHECK(s.circuit.diode.name == "silicon-junction-switching");
+    CHECK_THROWS_WITH_AS(parse_scenario("", "x.toml", {"bleeder=1"}), doctest::Contains("section.key=value"), config_error);
+}
+
+TEST_CASE("bad input: one message naming file, line, field, value and rule")
+{
+    CHECK_THROWS_WITH_AS(parse_scenario("[signal]\ncarrier_hz = = 3\n", "bad.toml"), doctest::Contains("bad.toml:2: malformed TOML"), config_error);
+    CHECK_THROWS_WITH_AS(parse_scenario("[diode]\nemision_coefficient = 1.2\n", "k.toml"),
+                         doctest::Contains("k.toml:2: diode.emision_coefficient: unknown key (did you mean diode.emission_coefficient?)"),
+                         config_error);
+    CHECK_THROWS_WITH_AS(parse_scenario("[loads]\nbleeder_ohm = 1\n", "s.toml"), doctest::Contains("(did you mean [load]?)"), config_error);
+    CHECK_THROWS_WITH_AS(parse_scenario("[diode]\n\nemission_coefficient = 12\n", "r.toml"),
+                         doctest::Contains("r.toml:3: diode.emission_coefficient = 12: must be in [0.5, 10]"), config_error);
+    CHECK_THROWS_WITH_AS(parse_scenario("[load]\nbleeder_ohm = -5\n", "n.toml"), doctest::Contains("load.bleeder_ohm = -5"), config_error);
+    CHECK_THROWS_WITH_AS(parse_scenario("[diode]\nsaturation_current_a = nan\n", "n.toml"), doctest::Contains("saturation_current_a = nan"), config_error);
+    CHECK_THROWS_WITH_AS(parse_scenario("[signal]\nmodulation_index = 1.3\n", "m.toml"), doctest::Contains("allow_overmodulation"), config_error);
+    CHECK_NOTHROW(parse_scenario("[signal]\nmodulation_index = 1.3\nallow_overmodulation = true\n", "m.toml"));
+    CHECK_THROWS_WITH_AS(parse_scenario("[signal]\ncarrier_hz = 5e4\n", "c.toml"), doctest::Contains("Nyquist"), config_error);
+    CHECK_THROWS_WITH_AS(parse_scenario("[diode]\npreset = \"gold-bonded\"\n", "p.toml"), doctest::Contains("unknown preset"), config_error);
+    CHECK_THROWS_WITH_AS(parse_scenario("[earpiece]\nkind = \"horn\"\n", "e.toml"), doctest::Contains("e.toml:2: earpiece.kind"), config_error);
+    CHECK_THROWS_WITH_AS(parse_scenario("[source]\nresistance_ohm = \"big\"\n", "t.toml"), doctest::Contains("must be a number"), config_error);
+    CHECK_THROWS_WITH_AS(load_scenario("/nonexistent/file.toml"), doctest::Contains("cannot open"), config_error);
+}
