@@ -200,7 +200,10 @@ std::pair<double, double> diode_model::capacitance_and_slope(double v) const noe
     if (cj0 == 0.0) return {0.0, 0.0};
     if (v < m_fc_v) {
         const double vj = m_params.junction_potential_v;
-        const double c = cj0 * std::pow(1.0 - v / vj, -m_params.grading_coefficient);
+        const double base = 1.0 - v / vj;
+        // M = 1/2 (abrupt junction, the presets' value) is a square root: much cheaper than pow().
+        const double c = m_params.grading_coefficient == 0.5 ? cj0 / std::sqrt(base)
+                                                             : cj0 * std::pow(base, -m_params.grading_coefficient);
         return {c, c * m_params.grading_coefficient / (vj - v)};
     }
     return {m_cj_lin_a + m_cj_lin_b * v, m_cj_lin_b};

@@ -269,7 +269,7 @@ const am_params& am_params::validate() const
     return *this;
 }
 
-am_source::am_source(const am_params& p, const modulation* x) : m_p(p), m_x(x), m_omega(two_pi * p.carrier_hz)
+am_source::am_source(const am_params& p, const modulation* x) : m_p(p), m_x(x)
 {
     p.validate();
 }
@@ -282,7 +282,13 @@ double am_source::envelope(double t) const noexcept
     return m_p.carrier_peak_v * r * (1.0 + m_p.modulation_index * x);
 }
 
-double am_source::voltage(double t) const noexcept { return envelope(t) * std::cos(m_omega * t); }
+double am_source::voltage(double t) const noexcept
+{
+    // Reduce the phase in cycles first: cos() of a huge argument (fc t ~ 1e9 rad for a long clip) is slow
+    // and loses precision in its own range reduction.
+    const double cycles = m_p.carrier_hz * t;
+    return envelope(t) * std::cos(two_pi * (cycles - std::floor(cycles)));
+}
 
 double am_source::end_s() const noexcept { return m_p.preroll_s + (m_x != nullptr ? m_x->duration_s() : 0.0); }
 

@@ -16,6 +16,7 @@
 
 #include <Eigen/Core>
 #include <cmath>
+#include <limits>
 
 namespace galena {
 
@@ -150,10 +151,20 @@ private:
         return {(u - v) * m_inv_r, g / (1.0 + r * g)};
     }
 
+    /// Source voltage with a one-entry cache: Newton iterations revisit the same stage time.
+    [[nodiscard]] double source_v(double t) const noexcept
+    {
+        if (t != m_cached_t) {
+            m_cached_t = t;
+            m_cached_vs = m_src->voltage(t);
+        }
+        return m_cached_vs;
+    }
+
     template <bool WithJacobian>
     void eval(const vec& x, double t, vec& f, mat& j) const
     {
-        const double vs = m_src->voltage(t);
+        const double vs = source_v(t);
         const double vb = x[output_index];
         double i_ear = 0.0;
         double di_ear_dvb = 0.0;
@@ -214,6 +225,8 @@ private:
     double m_rm = 0.0, m_inv_lm = 0.0, m_inv_cm = 0.0;
     double m_rdc = 0.0, m_mag_k = 1.0, m_mag_gp = 0.0, m_inv_l = 0.0;
     mutable double m_vj_guess = 0.0;
+    mutable double m_cached_t = std::numeric_limits<double>::quiet_NaN();
+    mutable double m_cached_vs = 0.0;
 };
 
 /// Calls fn(equations) with the detector_equations instance matching the network's topology.

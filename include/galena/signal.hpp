@@ -162,7 +162,6 @@ public:
 private:
     am_params m_p;
     const modulation* m_x;
-    double m_omega;
 };
 
 } // namespace galena
