@@ -37,14 +37,11 @@ public:
         const double l2 = static_cast<double>(m_stage2.size());
         const double period1 = static_cast<double>(m_r1) * t0;
         const double a = (4.0 - 1.0 - 0.5 * (l2 - 1.0)) * period1 + (static_cast<double>(m_r1) - 0.5 - 0.5 * (l1 - 1.0)) * t0;
-        // Shift the box origin so that sample times land on the audio grid: t_n = (n + m_lead) / fs.
-        m_lead = static_cast<std::size_t>(std::ceil(-a * audio_rate));
-        const double origin = static_cast<double>(m_lead) / audio_rate + a;
-        m_box = box_sampler(m_fine_period, origin);
+        // Sample n of the chain is centred at origin + a + n / fs. With the box origin at -a (the chain's
+        // total delay, a < 0) it is centred exactly at n / fs: programme-aligned, no fractional offset.
         m_delay_s = -a;
+        m_box = box_sampler(m_fine_period, m_delay_s);
     }
-    /// Index offset: audio sample n of the chain corresponds to simulated time (n + lead()) / fs.
-    [[nodiscard]] std::size_t lead() const noexcept { return m_lead; }
     /// How far the chain's output lags the simulation, s.
     [[nodiscard]] double delay_s() const noexcept { return m_delay_s; }
     [[nodiscard]] double fine_rate_hz() const noexcept { return 1.0 / m_fine_period; }
@@ -65,7 +62,6 @@ private:
     fir_decimator m_stage1;
     fir_decimator m_stage2;
     box_sampler m_box;
-    std::size_t m_lead = 0;
     double m_delay_s = 0.0;
     std::vector<double> m_fine;
 };
@@ -102,11 +98,11 @@ render_result render(const circuit_params& circuit, am_params am, modulation& pr
 
     decimation_chain chain(fs, am.carrier_hz);
     res.sample_rate_fine_hz = chain.fine_rate_hz();
-    if (chain.lead() > preroll_samples)
-        throw config_error(fmt::format("render.preroll_s = {}: shorter than the decimation delay {:.3g} s",
+    if (am.preroll_s < chain.delay_s())
+        throw config_error(fmt::format("solver.preroll_s = {}: must be at least the decimation delay {:.3g} s",
                                        am.preroll_s, chain.delay_s()));
-    // Chain output n is simulated time (n + lead)/fs; programme sample m is simulated time preroll + m/fs.
-    const std::size_t skip = preroll_samples - chain.lead();
+    // Chain output n is simulated time n / fs; programme sample m is simulated time preroll + m / fs.
+    const std::size_t skip = preroll_samples;
     const double t_end = am.preroll_s + static_cast<double>(total) / fs + chain.delay_s() + 4.0 / fs;
 
     step_settings st = s.stepper;
