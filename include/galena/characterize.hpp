@@ -1,0 +1,160 @@
+/// Characterisation of a detector circuit by simulation and by its linear constants: settling window,
+/// clipping limits (diagonal and negative-peak) with an observed failure-to-follow check, the detector
+/// transfer curve over carrier level, and the frequency response by stepped tones.
+///
+/// Everything here runs render_to_memory (the production solver) or reads detector_network constants; the
+/// numbers themselves come from the metrics module. Results are plain structs with to_json() helpers that
+/// produce flat keys in SI units (transfer curve and response as arrays, for plotting).
+#pragma once
+
+#include "galena/circuit.hpp"
+#include "galena/metrics.hpp"
+#include "galena/render.hpp"
+
+#include <nlohmann/json.hpp>
+
+#include <span>
+#include <string>
+#include <vector>
+
+namespace galena {
+
+/// The analysis window's start-up skip, chosen from the circuit's time constants.
+struct settling_window {
+    double settle_s = 0.0;          ///< samples before this programme time are skipped, s
+    double output_tau_s = 0.0;      ///< C_node / G_dc, s (inf without a DC path)
+    double charge_tau_s = 0.0;      ///< (R_src + R_s) C_node, s: the charging path through a conducting diode
+    double earpiece_tau_s = 0.0;    ///< decay time of the earpiece branch (BVD 2 Lm / Rm; magnetic L / R), s; 0 when none
+    std::string basis;              ///< which constant set settle_s, for reports
+};
+
+/// settle_s = 5 x the slowest of the envelope time constant (output_tau_s, or charge_tau_s when there is
+/// no DC path) and the earpiece decay, clamped to [1 ms, 0.2 s]. Five time constants leave e^-5 < 1 % of a
+/// step (common practice). The render's preroll already settles the unmodulated DC; this window covers the
+/// programme onset (tone start, level steps).
+[[nodiscard]] settling_window choose_settling_window(const detector_network& net);
+
+/// Clipping limits of an envelope detector for a tone of frequency wm and modulation index m.
+///
+/// The load seen by the detector is Y(jw) = G_node + jw C_node + Y_earpiece(jw). Following requires the
+/// load current never to reverse: V (G_dc + m |Y(jwm)| cos(.)) >= 0, so the detector follows only while
+/// m <= G_dc / |Y(jwm)| (combined limit). Its two classic special cases (standard communications texts,
+/// e.g. Haykin, Communication Systems; CHECKS.md items 4 and 5):
+/// - diagonal clipping, R C load: m_max = 1 / sqrt(1 + (wm R C)^2), with R = R_dc and C = C_node;
+/// - negative-peak clipping, AC-coupled load: m_max = R_ac / R_dc, with R_ac = 1 / Re Y_load(jwm) (the
+///   load without C_node; the BVD motional branch is the AC-coupled part here).
+struct clipping_diagnosis {
+    double tone_hz = 0.0;
+    double modulation_index = 0.0;
+    double dc_load_ohm = 0.0;             ///< R_dc, ohm (inf without a DC path)
+    double node_capacitance_f = 0.0;      ///< C, F
+    double diagonal_m_max = 1.0;          ///< 1 / sqrt(1 + (wm R_dc C)^2)
+    bool ac_coupled_load = false;         ///< true when part of the load blocks DC (BVD motional branch)
+    double ac_load_ohm = 0.0;             ///< R_ac, ohm
+    double negative_peak_m_max = 1.0;     ///< R_ac / R_dc (1 when there is no AC-coupled load)
+    double combined_m_max = 1.0;          ///< G_dc / |Y(jwm)|
+    bool exceeds_diagonal = false;        ///< m > diagonal_m_max
+    bool exceeds_negative_peak = false;   ///< m > negative_peak_m_max
+    bool observation_available = false;   ///< the waveform check below ran
+    /// Fraction of samples in the analysed waveform in which the output falls at >= 95 % of the free
+    /// discharge rate of the node (diode off for the whole sample interval): the detector is not following.
+    double free_discharge_fraction = 0.0;
+    bool observed_failure_to_follow = false; ///< free_discharge_fraction > 2 %
+};
+
+/// Computes the limits for a tone at tone_hz (> 0) and index m (>= 0). Never throws for a valid network.
+[[nodiscard]] clipping_diagnosis diagnose_clipping(const detector_network& net, double tone_hz, double m);
+
+/// Adds the waveform check: the earpiece voltage (DC included, V) at fs_hz over the analysis window.
+/// free discharge over one sample: v_{k+1} = v_k exp(-h / tau_free) with tau_free = C_node / G_free, where
+/// G_free = G_node + 1 / (R_leak,diode + R_src + R_s). Only for loads without earpiece states (piezo without
+/// motional branch, resistor); otherwise observation_available stays false.
+void observe_failure_to_follow(clipping_diagnosis& d, const detector_network& net, std::span<const double> earpiece_v,
+                               double fs_hz);
+
+/// Common settings of the simulated sweeps.
+struct characterize_settings {
+    double carrier_hz = 200e3;      ///< carrier, Hz (laws hold while R C >> 1/fc); >= 2.5 x audio Nyquist
+    double tone_hz = 400.0;         ///< modulating tone, Hz
+    double modulation_index = 0.3;  ///< m; (0, 1]
+    double analysis_s = 0.02;       ///< analysed span after settling, s; at least 4 periods are used
+    double band_low_hz = 20.0;      ///< audio band of the tone analysis, Hz
+    double band_high_hz = 10000.0;
+    render_settings render;         ///< audio rate, tolerances (absolute tolerance is scaled down for weak signals)
+};
+
+/// The detector output for one carrier level.
+struct transfer_point {
+    double carrier_peak_v = 0.0;    ///< open-circuit carrier peak, V
+    double dc_v = 0.0;              ///< mean earpiece voltage, V
+    double audio_v = 0.0;           ///< recovered tone peak amplitude, V
+    double h2_ratio = 0.0;          ///< H2 / H1
+    double thd_percent = 0.0;
+    double efficiency = 0.0;        ///< audio_v / (m x carrier_peak_v)
+};
+
+/// Audio output and DC against carrier level, with the two asymptotic slopes and their crossing.
+struct transfer_curve {
+    double tone_hz = 0.0;
+    double modulation_index = 0.0;
+    std::vector<transfer_point> points;
+    double low_slope_db_per_db = 0.0;   ///< least-squares slope of 20 log10 audio_v vs 20 log10 V, lowest 3 points
+    double high_slope_db_per_db = 0.0;  ///< same, highest 3 points
+    double low_dc_slope_db_per_db = 0.0;  ///< DC slopes, same points (needs a DC path to be meaningful)
+    double high_dc_slope_db_per_db = 0.0;
+    /// Square-law-to-linear transition: carrier level where the two fitted asymptotes cross, V.
+    double transition_v = 0.0;
+    std::vector<std::string> warnings;
+};
+
+/// Logarithmically spaced values from lo to hi inclusive (count >= 2, 0 < lo < hi).
+[[nodiscard]] std::vector<double> log_spaced(double lo, double hi, int count);
+
+/// Simulates one tone render per carrier level (ascending, >= 6 levels so that each region has 3 points)
+/// and measures DC and the recovered tone after the settling window.
+/// Throws config_error on bad settings, integration_error from the solver.
+[[nodiscard]] transfer_curve measure_transfer_curve(const circuit_params& circuit, const std::vector<double>& carrier_peak_v,
+                                                    const characterize_settings& s);
+
+/// One point of a frequency response.
+struct response_point {
+    double frequency_hz = 0.0;
+    double amplitude_v = 0.0;       ///< recovered tone peak amplitude at the earpiece, V
+    double gain_db = 0.0;           ///< 20 log10(amplitude_v / (m A)): earpiece volts per volt of envelope swing
+    double relative_db = 0.0;       ///< gain re the largest gain of the sweep, dB
+};
+
+/// Magnitude response of the whole chain, audio in to earpiece voltage, and its -3 dB corners.
+struct frequency_response {
+    std::vector<response_point> points;
+    double carrier_peak_v = 0.0;
+    double modulation_index = 0.0;
+    double peak_gain_db = 0.0;
+    double low_corner_hz = 0.0;     ///< -3 dB re peak, below the peak (log interpolation); NaN when not in range
+    double high_corner_hz = 0.0;    ///< -3 dB re peak, above the peak; NaN when not in range
+    double settle_s = 0.0;          ///< skipped at the start of each step, s
+};
+
+/// Stepped tones (one render of stepped_tone_modulation) at `frequencies_hz` (ascending, > 0) with carrier
+/// `carrier_peak_v`; each step dwells settle + max(analysis_s, 4 periods) + 2 fades.
+[[nodiscard]] frequency_response measure_frequency_response(const circuit_params& circuit, double carrier_peak_v,
+                                                            const std::vector<double>& frequencies_hz,
+                                                            const characterize_settings& s);
+
+/// Flat keys: settle_s, settle_basis, output_tau_s, charge_tau_s, earpiece_tau_s.
+[[nodiscard]] nlohmann::json to_json(const settling_window& w);
+/// Flat keys: clip_dc_load_ohm, clip_node_capacitance_f, diagonal_clip_m_max, ac_coupled_load, ac_load_ohm,
+/// negative_peak_m_max, combined_clip_m_max, exceeds_diagonal_clip, exceeds_negative_peak_clip,
+/// failure_to_follow_fraction (null when not observed), failure_to_follow_observed.
+[[nodiscard]] nlohmann::json to_json(const clipping_diagnosis& d);
+/// Keys: transfer_tone_hz, transfer_modulation_index, transfer_low_slope_db_per_db, transfer_high_slope_db_per_db,
+/// transfer_transition_v, and arrays transfer_carrier_peak_v, transfer_audio_v, transfer_dc_v, transfer_h2_ratio.
+[[nodiscard]] nlohmann::json to_json(const transfer_curve& c);
+/// Keys: response_low_corner_hz, response_high_corner_hz, response_peak_gain_db, arrays response_frequency_hz,
+/// response_gain_db, response_relative_db.
+[[nodiscard]] nlohmann::json to_json(const frequency_response& r);
+
+/// The warnings a render's metrics should carry for this tone: one per exceeded or observed clipping limit.
+[[nodiscard]] std::vector<std::string> clipping_warnings(const clipping_diagnosis& d);
+
+} // namespace galena

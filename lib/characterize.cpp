@@ -1,0 +1,382 @@
+#include "galena/characterize.hpp"
+
+#include "galena/constants.hpp"
+#include "galena/error.hpp"
+#include "galena/signal.hpp"
+
+#include <algorithm>
+#include <cmath>
+#include <complex>
+#include <fmt/format.h>
+#include <limits>
+
+namespace galena {
+
+namespace {
+
+constexpr double nan_v = std::numeric_limits<double>::quiet_NaN();
+
+nlohmann::json num(double x) { return std::isfinite(x) ? nlohmann::json(x) : nlohmann::json(nullptr); }
+
+/// Admittance of the earpiece branch states (BVD motional branch, magnetic phone) at w, S.
+std::complex<double> earpiece_branch_admittance(const earpiece_params& e, double w)
+{
+    using c = std::complex<double>;
+    if (e.has_motional_branch()) {
+        const c z = c(e.motional_resistance_ohm, w * e.motional_inductance_h - 1.0 / (w * e.motional_capacitance_f));
+        return 1.0 / z;
+    }
+    if (e.kind == earpiece_kind::magnetic) {
+        const c zl(0.0, w * e.inductance_h);
+        const c zp = std::isfinite(e.loss_resistance_ohm) ? zl * e.loss_resistance_ohm / (zl + e.loss_resistance_ohm) : zl;
+        return 1.0 / (e.resistance_ohm + zp);
+    }
+    return {0.0, 0.0};
+}
+
+/// Least-squares line y = a + b x; returns {a, b}.
+std::pair<double, double> fit_line(const std::vector<double>& x, const std::vector<double>& y)
+{
+    const double n = static_cast<double>(x.size());
+    double sx = 0, sy = 0, sxx = 0, sxy = 0;
+    for (std::size_t i = 0; i < x.size(); ++i) {
+        sx += x[i];
+        sy += y[i];
+        sxx += x[i] * x[i];
+        sxy += x[i] * y[i];
+    }
+    const double b = (n * sxy - sx * sy) / (n * sxx - sx * sx);
+    return {(sy - b * sx) / n, b};
+}
+
+/// Order-of-magnitude DC output, V, for a carrier peak V: square law V^2 / (4 n Vt) below n Vt, V above,
+/// times the divider R_dc / (R_dc + R_v + R) (CHECKS.md item 2). Used only to scale the solver tolerance.
+double estimated_output_v(const detector_network& net, double v)
+{
+    const double nvt = net.diode().emission_voltage_v();
+    const double rv = nvt / net.diode().saturation_current_a();
+    const double rdc = net.dc_load_ohm();
+    const double div = std::isfinite(rdc) ? rdc / (rdc + rv + net.series_ohm()) : 1.0;
+    return std::min(v, v * v / (4.0 * nvt)) * div;
+}
+
+render_settings scaled_settings(const detector_network& net, double carrier_v, const render_settings& base)
+{
+    render_settings rs = base;
+    // Tolerances are absolute in volts: a 1 mV carrier gives micro- to nanovolt outputs, so the absolute
+    // tolerance follows the expected output level (1e-5 of it), never looser than the caller's.
+    const double est = estimated_output_v(net, carrier_v);
+    rs.stepper.absolute_tolerance_v = std::min(base.stepper.absolute_tolerance_v, std::max(1e-15, 1e-5 * est));
+    return rs;
+}
+
+void check_settings(const characterize_settings& s)
+{
+    if (!(s.tone_hz > 0.0 && s.tone_hz < 0.45 * s.render.audio_rate_hz))
+        throw config_error(fmt::format("characterize: tone_hz = {}: must be in (0, 0.45 x audio rate)", s.tone_hz));
+    if (!(s.modulation_index > 0.0 && s.modulation_index <= 1.0))
+        throw config_error(fmt::format("characterize: modulation_index = {}: must be in (0, 1]", s.modulation_index));
+    if (!(s.analysis_s > 0.0))
+        throw config_error(fmt::format("characterize: analysis_s = {}: must be > 0", s.analysis_s));
+}
+
+} // namespace
+
+settling_window choose_settling_window(const detector_network& net)
+{
+    settling_window w;
+    w.output_tau_s = net.output_time_constant_s();
+    w.charge_tau_s = net.series_ohm() * net.node_capacitance_f();
+    const auto& e = net.params().earpiece;
+    if (e.has_motional_branch())
+        w.earpiece_tau_s = e.motional_resistance_ohm > 0.0 ? 2.0 * e.motional_inductance_h / e.motional_resistance_ohm
+                                                           : std::numeric_limits<double>::infinity();
+    else if (e.kind == earpiece_kind::magnetic) {
+        const double r = std::isfinite(e.loss_resistance_ohm)
+                             ? e.resistance_ohm * e.loss_resistance_ohm / (e.resistance_ohm + e.loss_resistance_ohm)
+                             : e.resistance_ohm;
+        w.earpiece_tau_s = e.inductance_h / r;
+    }
+    double tau = w.output_tau_s;
+    w.basis = "output_tau";
+    if (!std::isfinite(tau)) {
+        tau = w.charge_tau_s;
+        w.basis = "charge_tau (no DC path)";
+    }
+    if (w.earpiece_tau_s > tau) {
+        tau = w.earpiece_tau_s;
+        w.basis = "earpiece_tau";
+    }
+    w.settle_s = std::clamp(5.0 * tau, 1e-3, 0.2);
+    if (w.settle_s == 1e-3 && 5.0 * tau < 1e-3) w.basis += " (floor 1 ms)";
+    if (w.settle_s == 0.2 && 5.0 * tau > 0.2) w.basis += " (cap 0.2 s)";
+    return w;
+}
+
+clipping_diagnosis diagnose_clipping(const detector_network& net, double tone_hz, double m)
+{
+    clipping_diagnosis d;
+    d.tone_hz = tone_hz;
+    d.modulation_index = m;
+    const double w = two_pi * tone_hz;
+    const auto& e = net.params().earpiece;
+    d.dc_load_ohm = net.dc_load_ohm();
+    d.node_capacitance_f = net.node_capacitance_f();
+    const double g_dc = std::isfinite(d.dc_load_ohm) ? 1.0 / d.dc_load_ohm : 0.0;
+    // Diagonal clipping: 1 / sqrt(1 + (wm R C)^2) with the DC load and the node capacitance (CHECKS.md item 4).
+    const double wrc = w * d.dc_load_ohm * d.node_capacitance_f;
+    d.diagonal_m_max = std::isfinite(wrc) ? 1.0 / std::sqrt(1.0 + wrc * wrc) : 0.0;
+    const std::complex<double> y_load = net.node_conductance_s() + earpiece_branch_admittance(e, w);
+    d.ac_coupled_load = e.has_motional_branch();
+    d.ac_load_ohm = y_load.real() > 0.0 ? 1.0 / y_load.real() : std::numeric_limits<double>::infinity();
+    // Negative-peak clipping: R_ac / R_dc (CHECKS.md item 5); only an AC-coupled load makes it bind.
+    d.negative_peak_m_max = d.ac_coupled_load && std::isfinite(d.dc_load_ohm) ? d.ac_load_ohm / d.dc_load_ohm : 1.0;
+    const double y_abs = std::abs(y_load + std::complex<double>(0.0, w * d.node_capacitance_f));
+    d.combined_m_max = y_abs > 0.0 ? g_dc / y_abs : 1.0;
+    d.exceeds_diagonal = m > d.diagonal_m_max;
+    d.exceeds_negative_peak = m > d.negative_peak_m_max;
+    return d;
+}
+
+void observe_failure_to_follow(clipping_diagnosis& d, const detector_network& net, std::span<const double> v, double fs)
+{
+    d.observation_available = false;
+    if (net.earpiece_states() != 0 || v.size() < 3 || !(fs > 0.0)) return;
+    const double leak = net.diode().leakage_s();
+    const double g_free = net.node_conductance_s() + (leak > 0.0 ? 1.0 / (1.0 / leak + net.series_ohm()) : 0.0);
+    if (!(g_free > 0.0)) return;
+    const double decay = std::exp(-g_free / (net.node_capacitance_f() * fs)); // free discharge over one sample
+    std::size_t count = 0, eligible = 0;
+    for (std::size_t k = 0; k + 1 < v.size(); ++k) {
+        if (!(v[k] > 0.0)) continue;
+        ++eligible;
+        const double free_fall = v[k] * (1.0 - decay);
+        if (v[k] - v[k + 1] >= 0.95 * free_fall) ++count;
+    }
+    if (eligible == 0) return;
+    d.observation_available = true;
+    d.free_discharge_fraction = static_cast<double>(count) / static_cast<double>(eligible);
+    d.observed_failure_to_follow = d.free_discharge_fraction > 0.02;
+}
+
+std::vector<double> log_spaced(double lo, double hi, int count)
+{
+    if (!(lo > 0.0 && hi > lo && count >= 2))
+        throw config_error(fmt::format("log_spaced: lo = {}, hi = {}, count = {}: need 0 < lo < hi and count >= 2", lo, hi, count));
+    std::vector<double> v(static_cast<std::size_t>(count));
+    for (int i = 0; i < count; ++i) v[static_cast<std::size_t>(i)] = lo * std::pow(hi / lo, static_cast<double>(i) / (count - 1));
+    return v;
+}
+
+transfer_curve measure_transfer_curve(const circuit_params& circuit, const std::vector<double>& levels,
+                                      const characterize_settings& s)
+{
+    check_settings(s);
+    if (levels.size() < 6) throw config_error(fmt::format("transfer curve: {} carrier levels: need at least 6", levels.size()));
+    for (std::size_t i = 0; i < levels.size(); ++i)
+        if (!(levels[i] > 0.0) || (i > 0 && !(levels[i] > levels[i - 1])))
+            throw config_error(fmt::format("transfer curve: carrier level {} = {} V: levels must be > 0 and ascending", i, levels[i]));
+    const detector_network net(circuit);
+    const double fs = s.render.audio_rate_hz;
+    const settling_window sw = choose_settling_window(net);
+    const double analysis = std::max(s.analysis_s, 4.0 / s.tone_hz);
+    const auto skip = static_cast<std::size_t>(std::ceil(sw.settle_s * fs));
+    transfer_curve c;
+    c.tone_hz = s.tone_hz;
+    c.modulation_index = s.modulation_index;
+    for (double v : levels) {
+        tone_modulation tone({s.tone_hz}, {1.0}, sw.settle_s + analysis + 2.0 / fs);
+        am_params am;
+        am.carrier_hz = s.carrier_hz;
+        am.carrier_peak_v = v;
+        am.modulation_index = s.modulation_index;
+        const auto out = render_to_memory(circuit, am, tone, scaled_settings(net, v, s.render));
+        const std::span<const double> win(out.earpiece_v.data() + skip, out.earpiece_v.size() - skip);
+        const auto tm = analyze_tone(win, fs, s.tone_hz, std::min(s.band_low_hz, 0.5 * s.tone_hz), std::min(s.band_high_hz, 0.5 * fs));
+        transfer_point p;
+        p.carrier_peak_v = v;
+        double sum = 0.0;
+        for (double x : win) sum += x;
+        p.dc_v = sum / static_cast<double>(win.size());
+        p.audio_v = tm.fundamental_v;
+        p.h2_ratio = tm.harmonics_fitted >= 2 ? tm.harmonic_ratio[2] : nan_v;
+        p.thd_percent = tm.thd_percent;
+        p.efficiency = tm.fundamental_v / (s.modulation_index * v);
+        c.points.push_back(p);
+        for (const auto& w : out.result.warnings) c.warnings.push_back(fmt::format("carrier {} V: {}", v, w));
+    }
+    auto region = [&](bool low, bool dc) {
+        std::vector<double> x, y;
+        const std::size_t n = c.points.size();
+        for (std::size_t k = 0; k < 3; ++k) {
+            const auto& p = c.points[low ? k : n - 3 + k];
+            x.push_back(20.0 * std::log10(p.carrier_peak_v));
+            y.push_back(20.0 * std::log10(std::fabs(dc ? p.dc_v : p.audio_v)));
+        }
+        return fit_line(x, y);
+    };
+    const auto [al, bl] = region(true, false);
+    const auto [ah, bh] = region(false, false);
+    c.low_slope_db_per_db = bl;
+    c.high_slope_db_per_db = bh;
+    c.low_dc_slope_db_per_db = region(true, true).second;
+    c.high_dc_slope_db_per_db = region(false, true).second;
+    if (bl - bh > 0.2) {
+        c.transition_v = std::pow(10.0, (ah - al) / (bl - bh) / 20.0);
+    } else {
+        c.transition_v = nan_v;
+        c.warnings.push_back(fmt::format("transfer curve: slopes {:.3f} and {:.3f} dB/dB do not show two regions; "
+                                         "widen the level range",
+                                         bl, bh));
+    }
+    return c;
+}
+
+frequency_response measure_frequency_response(const circuit_params& circuit, double carrier_v, const std::vector<double>& freqs,
+                                              const characterize_settings& s)
+{
+    check_settings(s);
+    if (freqs.size() < 2) throw config_error("frequency response: need at least 2 frequencies");
+    for (std::size_t i = 0; i < freqs.size(); ++i)
+        if (!(freqs[i] > 0.0 && freqs[i] < 0.45 * s.render.audio_rate_hz) || (i > 0 && !(freqs[i] > freqs[i - 1])))
+            throw config_error(fmt::format("frequency response: frequency {} = {} Hz: must be ascending in (0, 0.45 x audio rate)", i,
+                                           freqs[i]));
+    const detector_network net(circuit);
+    const double fs = s.render.audio_rate_hz;
+    const settling_window sw = choose_settling_window(net);
+    constexpr double fade_s = 2e-3; // stepped_tone_modulation's crossfade
+    const double analysis = std::max(s.analysis_s, 4.0 / freqs.front());
+    const double dwell = std::ceil((sw.settle_s + analysis + 2.0 * fade_s) * fs) / fs;
+    stepped_tone_modulation prog(freqs, std::max(dwell, 0.01));
+    am_params am;
+    am.carrier_hz = s.carrier_hz;
+    am.carrier_peak_v = carrier_v;
+    am.modulation_index = s.modulation_index;
+    const auto out = render_to_memory(circuit, am, prog, scaled_settings(net, carrier_v, s.render));
+    frequency_response r;
+    r.carrier_peak_v = carrier_v;
+    r.modulation_index = s.modulation_index;
+    r.settle_s = sw.settle_s;
+    const double d = prog.dwell_s();
+    for (std::size_t j = 0; j < freqs.size(); ++j) {
+        const auto i0 = static_cast<std::size_t>(std::ceil((static_cast<double>(j) * d + fade_s + sw.settle_s) * fs));
+        const auto i1 = std::min(out.earpiece_v.size(), static_cast<std::size_t>(std::floor((static_cast<double>(j + 1) * d - fade_s) * fs)));
+        const std::span<const double> win(out.earpiece_v.data() + i0, i1 - i0);
+        const double f = freqs[j];
+        const auto tm = analyze_tone(win, fs, f, std::min(s.band_low_hz, 0.5 * f), 0.5 * fs);
+        response_point p;
+        p.frequency_hz = f;
+        p.amplitude_v = tm.fundamental_v;
+        p.gain_db = 20.0 * std::log10(tm.fundamental_v / (s.modulation_index * carrier_v));
+        r.points.push_back(p);
+    }
+    std::size_t ip = 0;
+    for (std::size_t j = 1; j < r.points.size(); ++j)
+        if (r.points[j].gain_db > r.points[ip].gain_db) ip = j;
+    r.peak_gain_db = r.points[ip].gain_db;
+    for (auto& p : r.points) p.relative_db = p.gain_db - r.peak_gain_db;
+    // -3 dB crossings either side of the peak, interpolated linearly in dB against log frequency.
+    auto crossing = [&](std::size_t a, std::size_t b) {
+        const double ya = r.points[a].relative_db + 3.0, yb = r.points[b].relative_db + 3.0;
+        const double la = std::log(r.points[a].frequency_hz), lb = std::log(r.points[b].frequency_hz);
+        return std::exp(la + (lb - la) * ya / (ya - yb));
+    };
+    r.low_corner_hz = nan_v;
+    r.high_corner_hz = nan_v;
+    for (std::size_t j = ip; j > 0; --j)
+        if (r.points[j - 1].relative_db < -3.0) {
+            r.low_corner_hz = crossing(j, j - 1);
+            break;
+        }
+    for (std::size_t j = ip; j + 1 < r.points.size(); ++j)
+        if (r.points[j + 1].relative_db < -3.0) {
+            r.high_corner_hz = crossing(j, j + 1);
+            break;
+        }
+    return r;
+}
+
+nlohmann::json to_json(const settling_window& w)
+{
+    nlohmann::json j;
+    j["settle_s"] = num(w.settle_s);
+    j["settle_basis"] = w.basis;
+    j["output_tau_s"] = num(w.output_tau_s);
+    j["charge_tau_s"] = num(w.charge_tau_s);
+    j["earpiece_tau_s"] = num(w.earpiece_tau_s);
+    return j;
+}
+
+nlohmann::json to_json(const clipping_diagnosis& d)
+{
+    nlohmann::json j;
+    j["clip_dc_load_ohm"] = num(d.dc_load_ohm);
+    j["clip_node_capacitance_f"] = num(d.node_capacitance_f);
+    j["diagonal_clip_m_max"] = num(d.diagonal_m_max);
+    j["ac_coupled_load"] = d.ac_coupled_load;
+    j["ac_load_ohm"] = num(d.ac_load_ohm);
+    j["negative_peak_m_max"] = num(d.negative_peak_m_max);
+    j["combined_clip_m_max"] = num(d.combined_m_max);
+    j["exceeds_diagonal_clip"] = d.exceeds_diagonal;
+    j["exceeds_negative_peak_clip"] = d.exceeds_negative_peak;
+    j["failure_to_follow_fraction"] = d.observation_available ? num(d.free_discharge_fraction) : nlohmann::json(nullptr);
+    j["failure_to_follow_observed"] = d.observed_failure_to_follow;
+    return j;
+}
+
+nlohmann::json to_json(const transfer_curve& c)
+{
+    nlohmann::json j;
+    j["transfer_tone_hz"] = num(c.tone_hz);
+    j["transfer_modulation_index"] = num(c.modulation_index);
+    j["transfer_low_slope_db_per_db"] = num(c.low_slope_db_per_db);
+    j["transfer_high_slope_db_per_db"] = num(c.high_slope_db_per_db);
+    j["transfer_transition_v"] = num(c.transition_v);
+    auto arr = [&](auto field) {
+        nlohmann::json a = nlohmann::json::array();
+        for (const auto& p : c.points) a.push_back(num(field(p)));
+        return a;
+    };
+    j["transfer_carrier_peak_v"] = arr([](const transfer_point& p) { return p.carrier_peak_v; });
+    j["transfer_audio_v"] = arr([](const transfer_point& p) { return p.audio_v; });
+    j["transfer_dc_v"] = arr([](const transfer_point& p) { return p.dc_v; });
+    j["transfer_h2_ratio"] = arr([](const transfer_point& p) { return p.h2_ratio; });
+    return j;
+}
+
+nlohmann::json to_json(const frequency_response& r)
+{
+    nlohmann::json j;
+    j["response_low_corner_hz"] = num(r.low_corner_hz);
+    j["response_high_corner_hz"] = num(r.high_corner_hz);
+    j["response_peak_gain_db"] = num(r.peak_gain_db);
+    nlohmann::json f = nlohmann::json::array(), g = nlohmann::json::array(), rel = nlohmann::json::array();
+    for (const auto& p : r.points) {
+        f.push_back(num(p.frequency_hz));
+        g.push_back(num(p.gain_db));
+        rel.push_back(num(p.relative_db));
+    }
+    j["response_frequency_hz"] = f;
+    j["response_gain_db"] = g;
+    j["response_relative_db"] = rel;
+    return j;
+}
+
+std::vector<std::string> clipping_warnings(const clipping_diagnosis& d)
+{
+    std::vector<std::string> w;
+    if (d.exceeds_diagonal)
+        w.push_back(fmt::format("modulation index {:.3g} exceeds the diagonal-clipping limit {:.3g} at {:.0f} Hz "
+                                "(1/sqrt(1+(wm R C)^2), R = {:.4g} ohm, C = {:.4g} F)",
+                                d.modulation_index, d.diagonal_m_max, d.tone_hz, d.dc_load_ohm, d.node_capacitance_f));
+    if (d.exceeds_negative_peak)
+        w.push_back(fmt::format("modulation index {:.3g} exceeds the negative-peak clipping limit R_ac/R_dc = {:.3g}",
+                                d.modulation_index, d.negative_peak_m_max));
+    if (d.observed_failure_to_follow)
+        w.push_back(fmt::format("the detector fails to follow the envelope: the output falls at the free-discharge rate in "
+                                "{:.1f} % of samples",
+                                100.0 * d.free_discharge_fraction));
+    return w;
+}
+
+} // namespace galena
