@@ -2,6 +2,7 @@
 
 #include "galena/constants.hpp"
 #include "galena/error.hpp"
+#include "galena/integrator.hpp"
 #include "galena/signal.hpp"
 
 #include <algorithm>
@@ -296,6 +297,121 @@ frequency_response measure_frequency_response(const circuit_params& circuit, dou
     return r;
 }
 
+carrier_ripple measure_carrier_ripple(const circuit_params& circuit, double fc, double a, int cycles, const step_settings& st0)
+{
+    if (cycles < 10) throw config_error(fmt::format("carrier ripple: cycles = {}: must be >= 10", cycles));
+    const detector_network net(circuit);
+    const settling_window sw = choose_settling_window(net);
+    carrier_ripple r;
+    r.carrier_hz = fc;
+    r.carrier_peak_v = a;
+    // Settle on whole carrier periods, then sample the window at 64 points per period.
+    const double period = 1.0 / fc;
+    const double t0 = std::ceil(sw.settle_s / period) * period;
+    r.settle_s = t0;
+    const double t1 = t0 + cycles * period;
+    tone_modulation silent({1000.0}, {1.0}, 1.0);
+    am_params am;
+    am.carrier_hz = fc;
+    am.carrier_peak_v = a;
+    am.modulation_index = 0.0;
+    am.preroll_s = t1 + 1.0; // the programme (silent anyway with m = 0) never starts
+    am.ramp_s = std::min(2e-3, 0.5 * t0);
+    am.validate();
+    const am_source src(am, &silent);
+    step_settings st = st0;
+    st.max_step_s = std::min(st.max_step_s, period / 40.0);
+    st.initial_step_s = std::min(st.initial_step_s, 0.01 * period);
+    st.absolute_tolerance_v = std::min(st.absolute_tolerance_v, std::max(1e-15, 1e-5 * estimated_output_v(net, a)));
+    constexpr int per = 64;
+    const auto n = static_cast<std::size_t>(cycles) * per;
+    std::vector<double> v(n, 0.0);
+    with_equations(net, src, [&](auto eq) {
+        using eq_t = decltype(eq);
+        tr_bdf2<eq_t> stepper(eq, st);
+        stepper.initialize(eq_t::vec::Zero(), 0.0);
+        constexpr int o = eq_t::output_index;
+        stepper.advance_to(t0, [](double, const auto&, const auto&, double, const auto&, const auto&) {});
+        std::size_t next = 0;
+        auto obs = [&](double ta, const auto& xa, const auto& fa, double tb, const auto& xb, const auto& fb) {
+            const double h = tb - ta;
+            // Cubic Hermite through the step's end values and slopes (the stepper's dense output).
+            while (next < n) {
+                const double t = t0 + static_cast<double>(next) * period / per;
+                if (t > tb) break;
+                const double u = (t - ta) / h;
+                const double h00 = (1 + 2 * u) * (1 - u) * (1 - u), h10 = u * (1 - u) * (1 - u), h01 = u * u * (3 - 2 * u),
+                             h11 = u * u * (u - 1);
+                v[next++] = h00 * xa[o] + h10 * h * fa[o] + h01 * xb[o] + h11 * h * fb[o];
+            }
+        };
+        stepper.advance_to(t1 + 0.5 * period / per, obs);
+    });
+    const double fs = fc * per;
+    double sum = 0.0;
+    for (double x : v) sum += x;
+    r.dc_v = sum / static_cast<double>(n);
+    double ss = 0.0;
+    for (double x : v) ss += (x - r.dc_v) * (x - r.dc_v);
+    r.ripple_rms_v = std::sqrt(ss / static_cast<double>(n));
+    const auto tm = analyze_tone(v, fs, fc, 0.5 * fc, 0.5 * fs);
+    r.harmonic_rms_v = {tm.fundamental_v / std::sqrt(2.0), tm.harmonic_v[2] / std::sqrt(2.0), tm.harmonic_v[3] / std::sqrt(2.0)};
+    return r;
+}
+
+render_metrics measure_render(std::span<const double> ev, double fs, const circuit_params& circuit, const am_params& am,
+                              const metrics_request& q)
+{
+    const detector_network net(circuit);
+    render_metrics rm;
+    rm.settling = choose_settling_window(net);
+    const auto skip = static_cast<std::size_t>(std::ceil(rm.settling.settle_s * fs));
+    if (ev.size() < skip + 64)
+        throw config_error(fmt::format("metrics: {} samples at {} Hz: the settling window of {:.4g} s ({}) leaves fewer than 64",
+                                       ev.size(), fs, rm.settling.settle_s, rm.settling.basis));
+    const std::span<const double> win = ev.subspan(skip);
+    const double hi = std::min(q.band_high_hz, 0.5 * fs);
+    const double lo = std::min(q.band_low_hz, 0.5 * hi);
+    rm.levels = measure_levels(win, fs, lo, hi);
+    std::vector<nlohmann::json> parts{to_json(rm.settling), to_json(rm.levels)};
+    double top_hz = q.clip_top_hz;
+    if (q.tone_hz > 0.0 && q.tone2_hz > 0.0) {
+        rm.has_imd = true;
+        rm.imd = analyze_two_tone(win, fs, q.tone_hz, q.tone2_hz, q.tone_ratio, 3);
+        parts.push_back(to_json(rm.imd));
+        top_hz = q.tone2_hz;
+    } else if (q.tone_hz > 0.0) {
+        rm.has_tone = true;
+        rm.tone = analyze_tone(win, fs, q.tone_hz, std::min(lo, 0.5 * q.tone_hz), hi);
+        parts.push_back(to_json(rm.tone));
+        rm.detection_efficiency = am.modulation_index > 0.0 ? rm.tone.fundamental_v / (am.modulation_index * am.carrier_peak_v) : nan_v;
+        top_hz = q.tone_hz;
+    }
+    if (!q.reference.empty()) {
+        if (q.reference.size() != ev.size())
+            throw config_error(fmt::format("metrics: reference has {} samples, earpiece {}: must match", q.reference.size(), ev.size()));
+        rm.has_fidelity = true;
+        rm.fidelity = compare_to_reference(win, q.reference.subspan(skip), fs, 0.05, lo, hi);
+        parts.push_back(to_json(rm.fidelity));
+    }
+    if (top_hz > 0.0) {
+        rm.has_clipping = true;
+        rm.clipping = diagnose_clipping(net, top_hz, am.modulation_index);
+        observe_failure_to_follow(rm.clipping, net, win, fs);
+        parts.push_back(to_json(rm.clipping));
+        rm.warnings = clipping_warnings(rm.clipping);
+    }
+    nlohmann::json extra;
+    extra["carrier_hz"] = num(am.carrier_hz);
+    extra["carrier_peak_v"] = num(am.carrier_peak_v);
+    extra["modulation_index"] = num(am.modulation_index);
+    extra["detection_efficiency"] = rm.has_tone ? num(rm.detection_efficiency) : nlohmann::json(nullptr);
+    extra["analysed_s"] = num(static_cast<double>(win.size()) / fs);
+    parts.push_back(extra);
+    rm.json = merge_metrics(parts, rm.warnings);
+    return rm;
+}
+
 nlohmann::json to_json(const settling_window& w)
 {
     nlohmann::json j;
@@ -359,6 +475,18 @@ nlohmann::json to_json(const frequency_response& r)
     j["response_frequency_hz"] = f;
     j["response_gain_db"] = g;
     j["response_relative_db"] = rel;
+    return j;
+}
+
+nlohmann::json to_json(const carrier_ripple& r)
+{
+    nlohmann::json j;
+    j["ripple_carrier_hz"] = num(r.carrier_hz);
+    j["ripple_rms_v"] = num(r.ripple_rms_v);
+    j["ripple_fc_rms_v"] = r.harmonic_rms_v.size() > 0 ? num(r.harmonic_rms_v[0]) : nlohmann::json(nullptr);
+    j["ripple_2fc_rms_v"] = r.harmonic_rms_v.size() > 1 ? num(r.harmonic_rms_v[1]) : nlohmann::json(nullptr);
+    j["ripple_3fc_rms_v"] = r.harmonic_rms_v.size() > 2 ? num(r.harmonic_rms_v[2]) : nlohmann::json(nullptr);
+    j["ripple_dc_v"] = num(r.dc_v);
     return j;
 }
 

@@ -137,6 +137,15 @@ TEST_CASE("diagonal clipping on the simulated circuit: THD low below m_max, risi
         thd.push_back(t.thd_percent);
         observed.push_back(d.observed_failure_to_follow);
         REQUIRE(d.observation_available);
+        // The one-call render metrics give the same tone figures and carry the clipping warnings.
+        metrics_request q;
+        q.tone_hz = 1000.0;
+        q.band_high_hz = 20000.0;
+        const auto rm = measure_render(out.earpiece_v, 48000.0, c, am, q);
+        CHECK(rm.tone.thd_percent == doctest::Approx(t.thd_percent).epsilon(1e-9));
+        CHECK(rm.json.at("thd_percent").get<double>() == rm.tone.thd_percent);
+        CHECK(rm.json.at("warnings").size() == (m > m_max ? 2u : 0u)); // predicted + observed
+        CHECK(rm.json.at("detection_efficiency").get<double>() == doctest::Approx(t.fundamental_v / (m * 3.0)));
     }
     // Below m_max a strong-signal (linear) detector follows the envelope: THD of a few percent at most.
     CHECK(thd[0] < 2.0);
@@ -227,4 +236,32 @@ TEST_CASE("settling window follows the slowest time constant")
     CHECK(w.output_tau_s == doctest::Approx(100e3 * (100e-9 + 10e-12)).epsilon(1e-9));
     CHECK(w.settle_s == doctest::Approx(5 * w.output_tau_s).epsilon(1e-9));
     CHECK_THROWS_AS((void)measure_transfer_curve(c, {1e-3, 2e-3}, fast_settings(400.0, 0.3)), config_error);
+}
+
+TEST_CASE("carrier ripple of a peak detector: the sawtooth V_dc / (fc R C)")
+{
+    // Peak detector with RC >> 1/fc and a short conduction angle: the output decays by
+    // dV = V_dc / (fc R C) each carrier cycle and is recharged almost at once, a sawtooth of peak-to-peak dV,
+    // RMS dV / (2 sqrt 3), fundamental RMS dV / (pi sqrt 2) (standard rectifier ripple analysis; Fourier
+    // series of a sawtooth), with V_dc the simulated DC. The conduction angle (2 theta / 2 pi ~ 4 % of the
+    // cycle here) rounds the sawtooth: band 10 %. V_dc itself lies below the ideal-diode value cos(theta) V
+    // (tan(theta) - theta = pi R / R_L, as above) by the forward drop n Vt ln(I_peak / Is) ~ 0.3 V (derived).
+    circuit_params c = rc_detector("small-signal-schottky", 100e3, 10e-9);
+    c.source.resistance_ohm = 10.0;
+    const double r = 10.0 + c.diode.series_resistance_ohm;
+    const double theta = boost::math::tools::bisect([&](double t) { return std::tan(t) - t - k_pi * r / 100e3; }, 1e-4, 1.5,
+                                                    boost::math::tools::eps_tolerance<double>(40))
+                             .first;
+    const double fc = 200e3, a = 3.0, cap = 10e-9 + 10e-12;
+    const auto rip = measure_carrier_ripple(c, fc, a, 100);
+    const double vdc = std::cos(theta) * a;
+    const double dv = rip.dc_v / (fc * 100e3 * cap);
+    INFO("dc " << rip.dc_v << " (" << vdc << "), rms " << rip.ripple_rms_v << " (" << dv / (2 * std::sqrt(3.0)) << "), fc rms "
+               << rip.harmonic_rms_v[0] << " (" << dv / (k_pi * std::sqrt(2.0)) << ")");
+    CHECK(rip.dc_v < vdc);
+    CHECK(rip.dc_v > vdc - 0.5);
+    CHECK(rip.ripple_rms_v == doctest::Approx(dv / (2 * std::sqrt(3.0))).epsilon(0.1));
+    CHECK(rip.harmonic_rms_v[0] == doctest::Approx(dv / (k_pi * std::sqrt(2.0))).epsilon(0.1));
+    // Sawtooth harmonics fall as 1/k.
+    CHECK(rip.harmonic_rms_v[1] == doctest::Approx(rip.harmonic_rms_v[0] / 2).epsilon(0.15));
 }

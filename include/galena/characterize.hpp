@@ -141,6 +141,63 @@ struct frequency_response {
                                                             const std::vector<double>& frequencies_hz,
                                                             const characterize_settings& s);
 
+/// Carrier ripple left at the earpiece with an unmodulated carrier, from a direct solver run sampled at
+/// 64 points per carrier period (the render's audio output cannot show it: the decimation chain removes it).
+struct carrier_ripple {
+    double carrier_hz = 0.0;
+    double carrier_peak_v = 0.0;
+    double dc_v = 0.0;                 ///< mean earpiece voltage over the window, V
+    double ripple_rms_v = 0.0;         ///< RMS of (v - mean) over whole carrier cycles, V
+    std::vector<double> harmonic_rms_v; ///< RMS at fc, 2 fc, 3 fc (least-squares fit), V
+    double settle_s = 0.0;             ///< unmodulated run before the window, s
+};
+
+/// Runs the circuit on an unmodulated carrier for the settling window, then measures `cycles` carrier
+/// cycles (>= 10). Cost: about settle_s x fc x 40 solver steps. Throws config_error, integration_error.
+[[nodiscard]] carrier_ripple measure_carrier_ripple(const circuit_params& circuit, double carrier_hz, double carrier_peak_v,
+                                                    int cycles = 200, const step_settings& stepper = {});
+
+/// What the programme of a render was, for measure_render().
+struct metrics_request {
+    double tone_hz = 0.0;           ///< > 0: the programme is one tone at this frequency (tone analysis)
+    double tone2_hz = 0.0;          ///< > 0 together with tone_hz: a two-tone programme (tone_hz < tone2_hz, IMD)
+    double tone_ratio = 4.0;        ///< amplitude ratio tone_hz : tone2_hz of the programme (two-tone)
+    /// For clips: the programme x(t) at the same rate and length as the earpiece samples (optional); gives
+    /// the fidelity figures. Empty = none.
+    std::span<const double> reference;
+    /// For clips: highest programme frequency, Hz, at which the clipping limits are evaluated (0 = skip).
+    double clip_top_hz = 0.0;
+    double band_low_hz = 20.0;      ///< audio band, Hz (the upper edge is clamped to fs/2)
+    double band_high_hz = 10000.0;
+};
+
+/// Every number of one render, and the same as one flat JSON object with `warnings`.
+struct render_metrics {
+    settling_window settling;
+    level_metrics levels;
+    bool has_tone = false;
+    tone_metrics tone;
+    double detection_efficiency = 0.0; ///< tone amplitude / (m x carrier peak x tone amplitude in x); tone only
+    bool has_imd = false;
+    imd_metrics imd;
+    bool has_fidelity = false;
+    fidelity_metrics fidelity;
+    bool has_clipping = false;
+    clipping_diagnosis clipping;
+    std::vector<std::string> warnings;
+    /// Flat keys: every key of the metrics to_json() helpers present above, plus carrier_hz, carrier_peak_v,
+    /// modulation_index, detection_efficiency, analysed_s, and warnings.
+    nlohmann::json json;
+};
+
+/// Measures a finished render: skips the settling window (choose_settling_window) at the start of the
+/// programme-aligned earpiece samples, then computes levels, the tone or two-tone figures or the fidelity
+/// as `request` says, and the clipping diagnosis for the programme's highest tone (predicted and observed).
+/// @param earpiece_v rendered_audio::earpiece_v (DC included), V, at fs_hz
+/// Throws config_error when too little remains after the settling window for the requested analysis.
+[[nodiscard]] render_metrics measure_render(std::span<const double> earpiece_v, double fs_hz, const circuit_params& circuit,
+                                            const am_params& am, const metrics_request& request);
+
 /// Flat keys: settle_s, settle_basis, output_tau_s, charge_tau_s, earpiece_tau_s.
 [[nodiscard]] nlohmann::json to_json(const settling_window& w);
 /// Flat keys: clip_dc_load_ohm, clip_node_capacitance_f, diagonal_clip_m_max, ac_coupled_load, ac_load_ohm,
@@ -153,6 +210,8 @@ struct frequency_response {
 /// Keys: response_low_corner_hz, response_high_corner_hz, response_peak_gain_db, arrays response_frequency_hz,
 /// response_gain_db, response_relative_db.
 [[nodiscard]] nlohmann::json to_json(const frequency_response& r);
+/// Keys: ripple_carrier_hz, ripple_rms_v, ripple_fc_rms_v, ripple_2fc_rms_v, ripple_3fc_rms_v, ripple_dc_v.
+[[nodiscard]] nlohmann::json to_json(const carrier_ripple& r);
 
 /// The warnings a render's metrics should carry for this tone: one per exceeded or observed clipping limit.
 [[nodiscard]] std::vector<std::string> clipping_warnings(const clipping_diagnosis& d);
