@@ -1,6 +1,8 @@
 #include "galena/job.hpp"
 
 #include "galena/audio_io.hpp"
+#include "galena/characterize.hpp"
+#include "galena/metrics.hpp"
 #include "galena/constants.hpp"
 #include "galena/error.hpp"
 
@@ -40,6 +42,53 @@ void transcode(const fs::path& src, const fs::path& target, double fs, wav_forma
 }
 } // namespace
 
+nlohmann::json measure_render(const scenario& s, std::span<const float> earpiece_v, double fade_s,
+                              const std::vector<std::string>& warnings)
+{
+    const double fs_hz = s.render.audio_rate_hz;
+    const detector_network net(s.circuit);
+    const settling_window win = choose_settling_window(net);
+    const auto first = static_cast<std::size_t>(std::ceil(std::max(win.settle_s, fade_s) * fs_hz));
+    const auto tail = static_cast<std::size_t>(std::ceil(fade_s * fs_hz));
+    if (earpiece_v.size() < first + tail + 64)
+        throw config_error(fmt::format("{}: signal.duration_s: {:.4g} s is too short to measure; at least {:.4g} s is needed "
+                                       "(settling {:.3g} s, fades {:.3g} s)",
+                                       s.file.string(), static_cast<double>(earpiece_v.size()) / fs_hz,
+                                       static_cast<double>(first + tail + 64) / fs_hz, win.settle_s, fade_s));
+    const std::vector<double> v(earpiece_v.begin() + static_cast<std::ptrdiff_t>(first),
+                                earpiece_v.end() - static_cast<std::ptrdiff_t>(tail));
+    // Audio band: 20 Hz (common practice) to the lower of 10 kHz (broadcast AM audio, NRSC-1) and Nyquist.
+    const double band_high = std::min(10000.0, 0.5 * fs_hz);
+    std::vector<nlohmann::json> parts;
+    std::vector<std::string> w = warnings;
+    parts.push_back(to_json(measure_levels(v, fs_hz, 20.0, band_high)));
+    parts.push_back(to_json(win));
+    const bool tone = s.programme.kind == programme_kind::tone;
+    const double f0 = s.programme.tone_hz;
+    const double periods = static_cast<double>(v.size()) / fs_hz * f0;
+    if (tone && f0 > 20.0 && f0 < 0.45 * fs_hz && f0 < band_high && periods >= 4.0) {
+        parts.push_back(to_json(analyze_tone(v, fs_hz, f0, 20.0, band_high)));
+        clipping_diagnosis d = diagnose_clipping(net, f0, s.am.modulation_index);
+        observe_failure_to_follow(d, net, v, fs_hz);
+        parts.push_back(to_json(d));
+        for (auto& c : clipping_warnings(d)) w.push_back(std::move(c));
+    } else {
+        nlohmann::json nulls;
+        for (const char* k : {"tone_hz", "fundamental_v", "h2_ratio", "h3_ratio", "thd_percent", "thd_n_percent", "sinad_db"})
+            nulls[k] = nullptr;
+        parts.push_back(nulls);
+        w.push_back(tone ? fmt::format("signal.tone_hz = {:.6g}: no distortion figures (needs 20 Hz < f < {:.6g} Hz and 4 "
+                                       "periods after settling)", f0, std::min(0.45 * fs_hz, band_high))
+                         : std::string("no distortion figures: the programme is not a single test tone"));
+    }
+    nlohmann::json j = merge_metrics(parts, w);
+    j["carrier_hz"] = s.am.carrier_hz;
+    j["carrier_peak_v"] = s.am.carrier_peak_v;
+    j["modulation_index"] = s.am.modulation_index;
+    j["analysed_s"] = static_cast<double>(v.size()) / fs_hz;
+    return j;
+}
+
 job_outcome run_render_job(const scenario& s, const fs::path& out_dir, const job_options& opt, double analysis_limit_s)
 {
     std::error_code ec;
@@ -51,9 +100,10 @@ job_outcome run_render_job(const scenario& s, const fs::path& out_dir, const job
     job_outcome o;
     o.wav = out_dir / "recovered.wav";
     o.sidecar = out_dir / "recovered.json";
+    o.metrics_file = out_dir / "metrics.json";
     o.full_scale_v = s.output.full_scale_v;
     const fs::path norm_path = out_dir / "recovered-normalised.wav";
-    for (const auto& p : {o.wav, o.sidecar, norm_path}) {
+    for (const auto& p : {o.wav, o.sidecar, norm_path, o.metrics_file}) {
         if (s.programme.kind == programme_kind::clip && same_file(p, s.programme.audio))
             throw audio_error(fmt::format("{}: is the scenario's own audio input; refusing to overwrite an input", p.string()));
         if (fs::exists(p, ec) && !opt.overwrite)
@@ -91,6 +141,11 @@ job_outcome run_render_job(const scenario& s, const fs::path& out_dir, const job
         });
         raw.commit();
     }
+    // Measured before any output file exists, so a span too short to measure leaves nothing behind.
+    o.metrics = measure_render(s, o.analysis_v, opt.fade_s, o.render.warnings);
+    o.metrics["peak_audio_v"] = o.peak_audio_v;
+    o.metrics["clipped_samples"] = o.clipped_samples;
+    o.metrics["full_scale_v"] = o.full_scale_v;
     // The intermediate holds volts / 1000; scale back while transcoding.
     transcode(raw_path, o.wav, fs_hz, s.output.format, s.output.full_scale_v, 1e3, opt.overwrite);
     if (o.peak_audio_v > s.output.full_scale_v) {
@@ -105,7 +160,8 @@ job_outcome run_render_job(const scenario& s, const fs::path& out_dir, const job
                                          o.peak_audio_v, s.output.full_scale_v, o.wav.filename().string(),
                                          norm_path.filename().string(), o.normalised_gain_db));
     }
-    for (const auto& w : o.render.warnings) o.warnings.push_back(w);
+    for (const auto& w : o.metrics["warnings"]) o.warnings.push_back(w.get<std::string>());
+    o.metrics["warnings"] = o.warnings;
     nlohmann::ordered_json j;
     j["wav"] = o.wav.filename().string();
     j["full_scale_v"] = o.full_scale_v;
@@ -125,6 +181,7 @@ job_outcome run_render_job(const scenario& s, const fs::path& out_dir, const job
     j["newton_iterations"] = o.render.stats.newton_iterations;
     j["warnings"] = o.warnings;
     write_text_atomic(o.sidecar, j.dump(2) + "\n");
+    write_text_atomic(o.metrics_file, o.metrics.dump(2) + "\n");
     return o;
 }
 

@@ -2,9 +2,13 @@
 #include "galena/components.hpp"
 #include "galena/error.hpp"
 #include "galena/job.hpp"
+#include "galena/metrics.hpp"
+#include "galena/report.hpp"
 #include "galena/scenario.hpp"
+#include "galena/sweep.hpp"
 
 #include <CLI/CLI.hpp>
+#include <chrono>
 #include <cstdio>
 #include <fmt/format.h>
 #include <unistd.h>
@@ -24,6 +28,45 @@ int report(const std::exception& e, int code)
 {
     std::fprintf(stderr, "galena: error: %s\n", e.what());
     return code;
+}
+
+/// Progress of a sweep: a bar on a terminal, plain lines otherwise.
+std::function<void(std::size_t, std::size_t, const std::string&)> sweep_progress(bool quiet)
+{
+    if (quiet) return {};
+    const bool tty = isatty(fileno(stderr)) != 0;
+    return [tty](std::size_t done, std::size_t total, const std::string& name) {
+        if (tty) {
+            const int width = 30;
+            const int filled = static_cast<int>(static_cast<double>(done) / static_cast<double>(total) * width);
+            std::fprintf(stderr, "\r[%s%s] %zu/%zu %-40s", std::string(static_cast<std::size_t>(filled), '#').c_str(),
+                         std::string(static_cast<std::size_t>(width - filled), '.').c_str(), done, total, name.c_str());
+            if (done == total) std::fprintf(stderr, "\n");
+        } else {
+            std::fprintf(stderr, "galena: finished %zu of %zu: %s\n", done, total, name.c_str());
+        }
+    };
+}
+
+/// Variants from --vary axes and --variant specs (axes first).
+std::vector<galena::variant_spec> collect_variants(const std::vector<std::string>& vary, const std::vector<std::string>& named)
+{
+    std::vector<galena::variant_spec> v;
+    if (!vary.empty()) {
+        std::vector<galena::sweep_axis> axes;
+        for (const auto& a : vary) axes.push_back(galena::parse_sweep_axis(a));
+        v = galena::expand_sweep(axes);
+    }
+    for (const auto& n : named) v.push_back(galena::parse_variant(n));
+    if (v.empty()) throw galena::config_error("no variants: give --vary section.key=a,b,c or --variant NAME:section.key=value");
+    return v;
+}
+
+void print_pack(const galena::pack_outcome& o, const std::string& out_dir, double wall_s)
+{
+    fmt::print("{}", galena::table_markdown(o.sweep.variants));
+    fmt::print("\nwrote {} ({} variants, playlist {}); {:.1f} s wall\n", (std::filesystem::path(out_dir) / "index.html").string(),
+               o.sweep.variants.size(), o.playlist_wav.string(), wall_s);
 }
 
 } // namespace
@@ -53,6 +96,46 @@ int main(int argc, char** argv)
 
     auto* presets = app.add_subcommand("presets", "list the built-in diode presets and their parameters");
 
+    std::string sw_scenario, sw_out;
+    std::vector<std::string> sw_sets, sw_vary, sw_variants;
+    unsigned sw_threads = 0;
+    double sw_tone_hz = 0.0;
+    auto* sweep = app.add_subcommand("sweep", "render variants of a scenario on all cores: one WAV each, a table of metrics");
+    sweep->add_option("scenario", sw_scenario, "base scenario file (TOML)")->required();
+    sweep->add_option("--out,-o", sw_out, "output directory (one folder per variant)")->required();
+    sweep->add_option("--vary,-v", sw_vary, "section.key=a,b,c | section.key=log:LO:HI:COUNT | diode.preset=presets (repeatable: product)");
+    sweep->add_option("--variant", sw_variants, "a named variant NAME:section.key=value,section.key=value (repeatable)");
+    sweep->add_option("--set,-s", sw_sets, "override the base: section.key=value (repeatable)");
+    sweep->add_option("--threads,-j", sw_threads, "worker threads (0 = all cores)");
+    sweep->add_option("--measure-tone", sw_tone_hz, "for audio clips, also render a tone of this frequency for THD, Hz");
+    sweep->add_flag("--overwrite", overwrite, "replace existing output files");
+    sweep->add_flag("--quiet,-q", quiet, "no progress output");
+
+    std::string cmp_input, cmp_out;
+    std::vector<std::string> cmp_sets, cmp_vary, cmp_variants;
+    unsigned cmp_threads = 0;
+    bool cmp_no_curves = false;
+    std::string cmp_title;
+    auto* compare = app.add_subcommand("compare", "make a comparison pack: WAVs, announced playlist, plots, offline HTML page");
+    compare->add_option("input", cmp_input, "a pack file ([pack] + [[variant]]) or a base scenario with --vary/--variant")->required();
+    compare->add_option("--out,-o", cmp_out, "output directory")->required();
+    compare->add_option("--vary,-v", cmp_vary, "as for sweep (repeatable)");
+    compare->add_option("--variant", cmp_variants, "NAME:section.key=value,... (repeatable)");
+    compare->add_option("--set,-s", cmp_sets, "override the base scenario: section.key=value (repeatable)");
+    compare->add_option("--threads,-j", cmp_threads, "worker threads (0 = all cores)");
+    compare->add_option("--title", cmp_title, "page title");
+    compare->add_flag("--no-curves", cmp_no_curves, "skip the simulated response and transfer curves");
+    compare->add_flag("--overwrite", overwrite, "replace existing output files");
+    compare->add_flag("--quiet,-q", quiet, "no progress output");
+
+    std::string demo_out = "demo-out";
+    unsigned demo_threads = 0;
+    auto* demo = app.add_subcommand("demo", "render the bundled demo pack (bleeder values; germanium vs Schottky; weak and strong carrier)");
+    demo->add_option("--out,-o", demo_out, "output directory")->capture_default_str();
+    demo->add_option("--threads,-j", demo_threads, "worker threads (0 = all cores)");
+    demo->add_flag("--overwrite", overwrite, "replace existing output files");
+    demo->add_flag("--quiet,-q", quiet, "no progress output");
+
     try {
         app.parse(argc, argv);
     } catch (const CLI::ParseError& e) {
@@ -77,6 +160,46 @@ int main(int argc, char** argv)
             std::fprintf(stderr, "galena: %s is valid\n", check_path.c_str());
             return exit_ok;
         }
+        if (*sweep) {
+            galena::sweep_options so;
+            so.threads = sw_threads;
+            so.overwrite = overwrite;
+            so.measure_tone_hz = sw_tone_hz;
+            so.progress = sweep_progress(quiet);
+            const auto r = galena::run_sweep(sw_scenario, sw_sets, collect_variants(sw_vary, sw_variants), sw_out, so);
+            fmt::print("{}\nwrote {} and {}\n", galena::table_markdown(r.variants), r.csv.string(), r.markdown.string());
+            return exit_ok;
+        }
+        if (*compare || *demo) {
+            const auto t0 = std::chrono::steady_clock::now();
+            galena::pack_options po;
+            po.sweep.overwrite = overwrite;
+            po.sweep.progress = sweep_progress(quiet);
+            std::filesystem::path base;
+            std::vector<galena::variant_spec> variants;
+            std::string out = *demo ? demo_out : cmp_out;
+            std::vector<std::string> sets = *demo ? std::vector<std::string>{} : cmp_sets;
+            po.sweep.threads = *demo ? demo_threads : cmp_threads;
+            po.curves = !cmp_no_curves;
+            std::filesystem::path input = cmp_input;
+            if (*demo) input = galena::find_bundled_file("scenarios/demo-pack.toml", "/proc/self/exe");
+            if (*demo || (cmp_vary.empty() && cmp_variants.empty())) {
+                const auto pack = galena::load_pack(input);
+                base = pack.scenario;
+                variants = pack.variants;
+                po.title = pack.title;
+                po.sweep.measure_tone_hz = pack.measure_tone_hz;
+                po.sweep.measure_duration_s = pack.measure_duration_s;
+                po.note = fmt::format("Made by galena from {}.", input.filename().string());
+            } else {
+                base = input;
+                variants = collect_variants(cmp_vary, cmp_variants);
+            }
+            if (!cmp_title.empty()) po.title = cmp_title;
+            const auto o = galena::make_pack(base, sets, variants, out, po);
+            print_pack(o, out, std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count());
+            return exit_ok;
+        }
         if (*render) {
             const auto s = galena::load_scenario(scenario_path, sets);
             galena::job_options opt;
@@ -93,6 +216,8 @@ int main(int argc, char** argv)
                 };
             const auto o = galena::run_render_job(s, out_dir, opt);
             if (!quiet && tty) std::fprintf(stderr, "\n");
+            (void)galena::draw_render_plots(s, o, std::filesystem::path(out_dir) / "plots");
+            fmt::print("{}", galena::to_text(o.metrics));
             fmt::print("wrote {} ({} samples at {} Hz, full scale {:.3g} V peak)\n", o.wav.string(), o.render.samples,
                        o.render.audio_rate_hz, o.full_scale_v);
             fmt::print("peak audio {:.4g} V; simulated {:.3f} s in {:.2f} s wall ({:.2f} s per simulated s)\n", o.peak_audio_v,

@@ -1,5 +1,5 @@
 /// A render job: one scenario rendered into an output directory — the calibrated WAV, a normalised copy
-/// when the calibrated one would clip, and a JSON sidecar — every file written atomically.
+/// when the calibrated one would clip, a JSON sidecar and the metrics — every file written atomically.
 #pragma once
 
 #include "galena/render.hpp"
@@ -7,6 +7,8 @@
 
 #include <filesystem>
 #include <functional>
+#include <nlohmann/json.hpp>
+#include <span>
 #include <string>
 #include <vector>
 
@@ -30,8 +32,19 @@ struct job_outcome {
     double normalised_gain_db = 0.0;       ///< gain applied in the normalised copy, dB
     render_result render;
     std::vector<float> analysis_v;         ///< the earpiece voltage (DC included) for metrics; bounded
+    std::filesystem::path metrics_file;    ///< DIR/metrics.json
+    nlohmann::json metrics;                ///< what metrics.json holds (flat keys, SI units)
     std::vector<std::string> warnings;
 };
+
+/// Flat metrics of a rendered earpiece voltage: levels (dc_v, audio_rms_v, ...) always; for a tone
+/// programme also fundamental_v, h2_ratio.., thd_percent, thd_n_percent, sinad_db and the clipping limits
+/// (null for other programmes, with a warning saying why); plus `warnings`.
+/// The span analysed starts after the circuit's settling window and the fade, and stops before the end fade.
+/// @param earpiece_v earpiece voltage, V, DC included, at s.render.audio_rate_hz, programme-aligned
+/// Throws config_error when the span is too short for the analysis (names the duration).
+[[nodiscard]] nlohmann::json measure_render(const scenario& s, std::span<const float> earpiece_v, double fade_s,
+                                            const std::vector<std::string>& warnings);
 
 /// Renders `s` into `out_dir` (created if missing). Refuses to write over the scenario's own audio input.
 /// Throws config_error, audio_error or integration_error; on any failure no output file is left behind.

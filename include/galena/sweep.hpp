@@ -1,0 +1,124 @@
+/// Sweeps and named variants: one base scenario, a list of variants (each a set of "section.key=value"
+/// overrides) rendered on all cores into per-variant directories, and the table of their metrics.
+#pragma once
+
+#include "galena/job.hpp"
+#include "galena/scenario.hpp"
+
+#include <cstddef>
+#include <filesystem>
+#include <functional>
+#include <nlohmann/json.hpp>
+#include <string>
+#include <vector>
+
+namespace galena {
+
+/// One swept key and its values (TOML value text, as --set takes them).
+struct sweep_axis {
+    std::string key;                 ///< "section.key"
+    std::vector<std::string> values; ///< e.g. {"inf", "10e3", "47e3"}
+};
+
+/// Parses "section.key=SPEC" where SPEC is
+/// - a comma list: `load.bleeder_ohm=inf,10e3,47e3`;
+/// - a log range `log:LO:HI:COUNT` (COUNT >= 2 values from LO to HI, 0 < LO < HI, geometric spacing):
+///   `load.bleeder_ohm=log:10e3:1e6:5`;
+/// - `presets` for the key diode.preset: every built-in diode preset.
+/// Throws config_error naming the text and the rule.
+[[nodiscard]] sweep_axis parse_sweep_axis(const std::string& spec);
+
+/// One variant of a comparison.
+struct variant_spec {
+    std::string name;                    ///< directory-safe: [A-Za-z0-9._-], unique in a sweep
+    std::string label;                   ///< for humans (tables, page)
+    std::vector<std::string> overrides;  ///< "section.key=value", applied after the base overrides
+};
+
+/// Parses "NAME:key=value,key=value" (NAME directory-safe). Throws config_error otherwise.
+[[nodiscard]] variant_spec parse_variant(const std::string& spec);
+
+/// The Cartesian product of the axes, first axis slowest; names "01-bleeder_ohm-10k-...", labels
+/// "bleeder_ohm = 10k, ...". Throws config_error for no axes, an empty axis or more than 1000 variants.
+[[nodiscard]] std::vector<variant_spec> expand_sweep(const std::vector<sweep_axis>& axes);
+
+/// Formats an SI value compactly for names and labels: 47000 -> "47k", inf -> "none", 1e-8 -> "10n".
+[[nodiscard]] std::string short_si(double v);
+
+/// A comparison pack described in a file (TOML):
+/// ```toml
+/// [pack]
+/// title = "..."                # page title
+/// scenario = "base.toml"       # base scenario, relative to this file
+/// measure_tone_hz = 1000       # optional: for clip programmes, also measure each variant with this tone
+/// measure_duration_s = 0.3     # length of that tone render, s
+/// [[variant]]
+/// name = "ge-weak-47k"
+/// label = "germanium, weak carrier, 47k bleeder"
+/// set = ["load.bleeder_ohm=47e3", "signal.carrier_peak_v=0.1"]
+/// ```
+struct pack_spec {
+    std::filesystem::path file;
+    std::string title;
+    std::filesystem::path scenario;  ///< resolved
+    double measure_tone_hz = 0.0;    ///< 0 = measure the programme itself
+    double measure_duration_s = 0.3; ///< s; (0, 10]
+    std::vector<variant_spec> variants;
+};
+
+/// Reads a pack file. Throws config_error "FILE: field: rule".
+[[nodiscard]] pack_spec load_pack(const std::filesystem::path& file);
+
+/// Finds a bundled file (e.g. "scenarios/demo-pack.toml") for the demo: under $GALENA_DATA_DIR, then in
+/// the folders above `executable` (a build tree inside the source tree), then above the current
+/// directory, then in `installed_data_dir`. Throws config_error listing the places searched.
+[[nodiscard]] std::filesystem::path find_bundled_file(const std::filesystem::path& relative, const std::filesystem::path& executable,
+                                                      const std::filesystem::path& installed_data_dir = {});
+
+/// Options of a sweep run.
+struct sweep_options {
+    unsigned threads = 0;            ///< worker threads; 0 = std::thread::hardware_concurrency()
+    bool overwrite = false;          ///< replace existing output files
+    double measure_tone_hz = 0.0;    ///< > 0: clip variants are also rendered as this tone for metrics
+    double measure_duration_s = 0.3; ///< length of that tone render, s
+    /// Called (serialised) after each variant with (finished, total, variant name).
+    std::function<void(std::size_t, std::size_t, const std::string&)> progress;
+};
+
+/// What one variant produced.
+struct variant_result {
+    variant_spec spec;
+    scenario scene;                          ///< the base with the variant's overrides
+    std::filesystem::path dir;               ///< OUT/NAME
+    job_outcome job;                         ///< the programme render (analysis_v kept)
+    bool measured_separately = false;        ///< metrics come from a tone render in OUT/NAME/measure
+    scenario measure_scene;                  ///< that tone scenario (when measured_separately)
+    std::vector<float> measure_earpiece_v;   ///< its earpiece voltage, V (when measured_separately)
+    nlohmann::json metrics;                  ///< the flat metrics of the variant
+};
+
+/// Results, in variant order.
+struct sweep_result {
+    std::vector<variant_result> variants;
+    std::filesystem::path csv;       ///< OUT/table.csv
+    std::filesystem::path markdown;  ///< OUT/table.md
+};
+
+/// Loads the base scenario with `base_overrides` and each variant's overrides (all validated before any
+/// render starts), renders every variant into OUT/NAME on `threads` workers, and writes the table.
+/// Each variant is computed independently and stored at its index, so the results and files are identical
+/// whatever the thread count. The first failure stops the remaining variants and is rethrown (finished
+/// variants stay; every file is written atomically). Throws config_error, audio_error, integration_error.
+[[nodiscard]] sweep_result run_sweep(const std::filesystem::path& base_file, const std::vector<std::string>& base_overrides,
+                                     const std::vector<variant_spec>& variants, const std::filesystem::path& out_dir,
+                                     const sweep_options& opt);
+
+/// Table columns: key names of the metrics (in this order) shown in the CSV and Markdown tables.
+[[nodiscard]] const std::vector<std::string>& table_columns();
+
+/// The table as CSV (header line; variant, label, then table_columns(); empty cell for null).
+[[nodiscard]] std::string table_csv(const std::vector<variant_result>& rows);
+/// The table as a Markdown pipe table with units in the header, numbers to 4 significant digits.
+[[nodiscard]] std::string table_markdown(const std::vector<variant_result>& rows);
+
+} // namespace galena

@@ -1,0 +1,438 @@
+#include "galena/sweep.hpp"
+
+#include "galena/audio_io.hpp"
+#include "galena/components.hpp"
+#include "galena/error.hpp"
+
+#include <algorithm>
+#include <atomic>
+#include <cmath>
+#include <cstdlib>
+#include <exception>
+#include <fmt/format.h>
+#include <mutex>
+#include <sstream>
+#include <thread>
+#include <toml++/toml.h>
+
+namespace galena {
+
+namespace fs = std::filesystem;
+
+namespace {
+
+std::vector<std::string> split(const std::string& s, char sep)
+{
+    std::vector<std::string> out;
+    std::string cur;
+    std::istringstream in(s);
+    while (std::getline(in, cur, sep)) out.push_back(cur);
+    if (!s.empty() && s.back() == sep) out.emplace_back();
+    return out;
+}
+
+std::string trim(const std::string& s)
+{
+    const auto b = s.find_first_not_of(" \t");
+    if (b == std::string::npos) return {};
+    const auto e = s.find_last_not_of(" \t");
+    return s.substr(b, e - b + 1);
+}
+
+double parse_number(const std::string& text, const std::string& what)
+{
+    std::string t = trim(text);
+    if (t == "inf" || t == "none") return std::numeric_limits<double>::infinity();
+    char* end = nullptr;
+    const double v = std::strtod(t.c_str(), &end);
+    if (t.empty() || *end != '\0') throw config_error(fmt::format("{}: \"{}\" is not a number", what, text));
+    return v;
+}
+
+bool name_ok(const std::string& n)
+{
+    return !n.empty() && n != "." && n != ".." &&
+           std::all_of(n.begin(), n.end(), [](unsigned char c) { return std::isalnum(c) || c == '-' || c == '_' || c == '.'; });
+}
+
+/// Value text as it appears in a name: numbers compacted, words kept.
+std::string value_tag(const std::string& v)
+{
+    char* end = nullptr;
+    const std::string t = trim(v);
+    const double x = std::strtod(t.c_str(), &end);
+    if (t == "inf" || t == "none") return "none";
+    if (!t.empty() && *end == '\0') return short_si(x);
+    std::string s;
+    for (char c : t) s += (std::isalnum(static_cast<unsigned char>(c)) || c == '-' || c == '.') ? c : '_';
+    return s;
+}
+
+std::string json_cell(const nlohmann::json& j, int digits, bool csv)
+{
+    if (j.is_null()) return "";
+    if (j.is_number_float()) {
+        const double v = j.get<double>();
+        if (!std::isfinite(v)) return v > 0 ? "inf" : (v < 0 ? "-inf" : "nan");
+        return csv ? fmt::format("{:.10g}", v) : fmt::format("{:.{}g}", v, digits);
+    }
+    if (j.is_number()) return j.dump();
+    if (j.is_boolean()) return j.get<bool>() ? "true" : "false";
+    if (j.is_string()) return j.get<std::string>();
+    if (j.is_array()) return std::to_string(j.size());
+    return j.dump();
+}
+
+std::string csv_quote(const std::string& s)
+{
+    if (s.find_first_of(",\"\n") == std::string::npos) return s;
+    std::string o = "\"";
+    for (char c : s) o += c == '"' ? std::string("\"\"") : std::string(1, c);
+    return o + "\"";
+}
+
+} // namespace
+
+std::string short_si(double v)
+{
+    if (std::isinf(v)) return v > 0 ? "none" : "-inf";
+    if (v == 0.0) return "0";
+    static const std::pair<double, const char*> units[] = {{1e9, "G"}, {1e6, "M"}, {1e3, "k"}, {1.0, ""},
+                                                           {1e-3, "m"}, {1e-6, "u"}, {1e-9, "n"}, {1e-12, "p"}};
+    const double a = std::fabs(v);
+    for (const auto& [scale, suffix] : units)
+        if (a >= scale * 0.9999999) return fmt::format("{:.4g}{}", v / scale, suffix);
+    return fmt::format("{:.4g}", v);
+}
+
+sweep_axis parse_sweep_axis(const std::string& spec)
+{
+    const auto eq = spec.find('=');
+    const auto dot = spec.find('.');
+    if (eq == std::string::npos || dot == std::string::npos || dot > eq || eq + 1 >= spec.size())
+        throw config_error(fmt::format("--vary {}: must look like section.key=a,b,c or section.key=log:LO:HI:COUNT", spec));
+    sweep_axis a;
+    a.key = trim(spec.substr(0, eq));
+    const std::string rhs = trim(spec.substr(eq + 1));
+    if (rhs.rfind("log:", 0) == 0) {
+        const auto parts = split(rhs.substr(4), ':');
+        if (parts.size() != 3)
+            throw config_error(fmt::format("--vary {}: a log range is log:LO:HI:COUNT", spec));
+        const double lo = parse_number(parts[0], "--vary " + spec + ": LO");
+        const double hi = parse_number(parts[1], "--vary " + spec + ": HI");
+        const double n = parse_number(parts[2], "--vary " + spec + ": COUNT");
+        if (!(lo > 0.0) || !(hi > lo) || !std::isfinite(hi))
+            throw config_error(fmt::format("--vary {}: a log range needs 0 < LO < HI < inf", spec));
+        if (!(n >= 2.0) || n > 1000.0 || n != std::floor(n))
+            throw config_error(fmt::format("--vary {}: COUNT = {}: must be a whole number in [2, 1000]", spec, parts[2]));
+        const int count = static_cast<int>(n);
+        for (int i = 0; i < count; ++i) {
+            const double v = lo * std::pow(hi / lo, static_cast<double>(i) / (count - 1));
+            a.values.push_back(fmt::format("{:.6g}", i == count - 1 ? hi : v));
+        }
+    } else if (rhs == "presets") {
+        if (a.key != "diode.preset")
+            throw config_error(fmt::format("--vary {}: \"presets\" applies to diode.preset only", spec));
+        for (const auto& p : diode_presets()) a.values.emplace_back(p.name);
+    } else {
+        for (const auto& v : split(rhs, ',')) {
+            const std::string t = trim(v);
+            if (t.empty()) throw config_error(fmt::format("--vary {}: empty value in the list", spec));
+            a.values.push_back(t);
+        }
+    }
+    return a;
+}
+
+variant_spec parse_variant(const std::string& spec)
+{
+    const auto colon = spec.find(':');
+    if (colon == std::string::npos)
+        throw config_error(fmt::format("--variant {}: must look like NAME:section.key=value,section.key=value", spec));
+    variant_spec v;
+    v.name = trim(spec.substr(0, colon));
+    if (!name_ok(v.name))
+        throw config_error(fmt::format("--variant {}: NAME \"{}\" may hold only letters, digits, '-', '_' and '.'", spec, v.name));
+    v.label = v.name;
+    for (const auto& o : split(spec.substr(colon + 1), ',')) {
+        const std::string t = trim(o);
+        if (t.empty()) continue;
+        if (t.find('=') == std::string::npos || t.find('.') > t.find('='))
+            throw config_error(fmt::format("--variant {}: \"{}\" must look like section.key=value", spec, t));
+        v.overrides.push_back(t);
+    }
+    return v;
+}
+
+std::vector<variant_spec> expand_sweep(const std::vector<sweep_axis>& axes)
+{
+    if (axes.empty()) throw config_error("sweep: no --vary given; name at least one key to vary");
+    std::size_t total = 1;
+    for (const auto& a : axes) {
+        if (a.values.empty()) throw config_error(fmt::format("--vary {}: no values", a.key));
+        total *= a.values.size();
+        if (total > 1000) throw config_error("sweep: more than 1000 variants; narrow the ranges");
+    }
+    std::vector<variant_spec> out;
+    const int width = total >= 100 ? 3 : 2;
+    for (std::size_t i = 0; i < total; ++i) {
+        variant_spec v;
+        v.name = fmt::format("{:0{}}", i + 1, width);
+        std::size_t rest = i;
+        std::vector<std::size_t> idx(axes.size());
+        for (std::size_t k = axes.size(); k-- > 0;) {
+            idx[k] = rest % axes[k].values.size();
+            rest /= axes[k].values.size();
+        }
+        for (std::size_t k = 0; k < axes.size(); ++k) {
+            const auto& a = axes[k];
+            const std::string& val = a.values[idx[k]];
+            const std::string short_key = a.key.substr(a.key.find('.') + 1);
+            v.name += "-" + short_key + "-" + value_tag(val);
+            if (!v.label.empty()) v.label += ", ";
+            v.label += short_key + " = " + value_tag(val);
+            v.overrides.push_back(a.key + "=" + val);
+        }
+        out.push_back(std::move(v));
+    }
+    return out;
+}
+
+pack_spec load_pack(const fs::path& file)
+{
+    toml::table root;
+    try {
+        root = toml::parse_file(file.string());
+    } catch (const toml::parse_error& e) {
+        throw config_error(fmt::format("{}:{}: malformed TOML: {}", file.string(), e.source().begin.line, e.description()));
+    }
+    pack_spec p;
+    p.file = file;
+    const auto* pack = root["pack"].as_table();
+    if (pack == nullptr) throw config_error(fmt::format("{}: [pack]: missing section (needs pack.scenario)", file.string()));
+    for (const auto& [k, v] : *pack) {
+        const std::string key(k.str());
+        if (key != "title" && key != "scenario" && key != "measure_tone_hz" && key != "measure_duration_s")
+            throw config_error(fmt::format("{}: pack.{}: unknown key (known: title, scenario, measure_tone_hz, measure_duration_s)",
+                                           file.string(), key));
+    }
+    p.title = (*pack)["title"].value_or(std::string("galena comparison"));
+    const auto sc = (*pack)["scenario"].value<std::string>();
+    if (!sc) throw config_error(fmt::format("{}: pack.scenario: missing (the base scenario file)", file.string()));
+    p.scenario = fs::path(*sc).is_absolute() ? fs::path(*sc) : file.parent_path() / *sc;
+    p.measure_tone_hz = (*pack)["measure_tone_hz"].value_or(0.0);
+    p.measure_duration_s = (*pack)["measure_duration_s"].value_or(0.3);
+    if (!(p.measure_tone_hz >= 0.0) || p.measure_tone_hz > 20000.0)
+        throw config_error(fmt::format("{}: pack.measure_tone_hz = {}: must be 0 (off) or in (0, 20000] Hz", file.string(), p.measure_tone_hz));
+    if (!(p.measure_duration_s > 0.0) || p.measure_duration_s > 10.0)
+        throw config_error(fmt::format("{}: pack.measure_duration_s = {}: must be in (0, 10] s", file.string(), p.measure_duration_s));
+    const auto* arr = root["variant"].as_array();
+    if (arr == nullptr || arr->empty())
+        throw config_error(fmt::format("{}: [[variant]]: at least one variant is needed", file.string()));
+    for (std::size_t i = 0; i < arr->size(); ++i) {
+        const auto* t = (*arr)[i].as_table();
+        const std::string where = fmt::format("{}: variant {}", file.string(), i + 1);
+        if (t == nullptr) throw config_error(where + ": must be a table [[variant]]");
+        variant_spec v;
+        v.name = (*t)["name"].value_or(std::string());
+        if (!name_ok(v.name))
+            throw config_error(fmt::format("{}: name = \"{}\": needs letters, digits, '-', '_' or '.' only", where, v.name));
+        v.label = (*t)["label"].value_or(v.name);
+        if (const auto* set = (*t)["set"].as_array()) {
+            for (const auto& e : *set) {
+                const auto s = e.value<std::string>();
+                if (!s) throw config_error(where + ": set: must be a list of strings \"section.key=value\"");
+                v.overrides.push_back(*s);
+            }
+        }
+        p.variants.push_back(std::move(v));
+    }
+    return p;
+}
+
+fs::path find_bundled_file(const fs::path& relative, const fs::path& executable, const fs::path& installed_data_dir)
+{
+    std::vector<fs::path> tried;
+    auto hit = [&](const fs::path& dir) {
+        tried.push_back(dir);
+        std::error_code ec;
+        return !dir.empty() && fs::is_regular_file(dir / relative, ec);
+    };
+    if (const char* env = std::getenv("GALENA_DATA_DIR"); env != nullptr && hit(env)) return fs::path(env) / relative;
+    std::error_code ec;
+    for (fs::path start : {fs::weakly_canonical(executable, ec).parent_path(), fs::current_path(ec)}) {
+        for (fs::path d = start; !d.empty(); d = d.parent_path()) {
+            if (hit(d)) return d / relative;
+            if (d == d.parent_path()) break;
+        }
+    }
+    if (!installed_data_dir.empty() && hit(installed_data_dir)) return installed_data_dir / relative;
+    std::string where;
+    for (const auto& t : tried) where += (where.empty() ? "" : ", ") + t.string();
+    throw config_error(fmt::format("{}: bundled file not found (searched {}); set GALENA_DATA_DIR to the galena source folder",
+                                   relative.string(), where));
+}
+
+const std::vector<std::string>& table_columns()
+{
+    static const std::vector<std::string> c = {"carrier_peak_v", "dc_v",       "audio_rms_v",   "a_weighted_dbv",
+                                               "fundamental_v",  "h2_ratio",   "h3_ratio",      "thd_percent",
+                                               "thd_n_percent",  "sinad_db",   "peak_audio_v",  "clipped_samples"};
+    return c;
+}
+
+std::string table_csv(const std::vector<variant_result>& rows)
+{
+    std::string o = "variant,label";
+    for (const auto& c : table_columns()) o += "," + c;
+    o += ",warnings\n";
+    for (const auto& r : rows) {
+        o += csv_quote(r.spec.name) + "," + csv_quote(r.spec.label);
+        for (const auto& c : table_columns()) o += "," + (r.metrics.contains(c) ? json_cell(r.metrics[c], 10, true) : std::string());
+        o += "," + std::to_string(r.metrics.contains("warnings") ? r.metrics["warnings"].size() : 0) + "\n";
+    }
+    return o;
+}
+
+std::string table_markdown(const std::vector<variant_result>& rows)
+{
+    static const std::vector<std::pair<std::string, std::string>> heads = {
+        {"carrier_peak_v", "carrier V"}, {"dc_v", "DC V"},          {"audio_rms_v", "audio rms V"},
+        {"a_weighted_dbv", "dBV(A)"},    {"fundamental_v", "tone V"}, {"h2_ratio", "H2/H1"},
+        {"h3_ratio", "H3/H1"},           {"thd_percent", "THD %"},   {"thd_n_percent", "THD+N %"},
+        {"sinad_db", "SINAD dB"},        {"peak_audio_v", "peak V"}, {"clipped_samples", "clipped"}};
+    std::string o = "| variant | label |";
+    std::string rule = "|---|---|";
+    for (const auto& [k, h] : heads) {
+        o += " " + h + " |";
+        rule += "---:|";
+    }
+    o += "\n" + rule + "\n";
+    for (const auto& r : rows) {
+        o += "| " + r.spec.name + " | " + r.spec.label + " |";
+        for (const auto& [k, h] : heads) {
+            const std::string cell = r.metrics.contains(k) ? json_cell(r.metrics[k], 4, false) : std::string();
+            o += " " + (cell.empty() ? std::string("-") : cell) + " |";
+        }
+        o += "\n";
+    }
+    return o;
+}
+
+sweep_result run_sweep(const fs::path& base_file, const std::vector<std::string>& base_overrides,
+                       const std::vector<variant_spec>& variants, const fs::path& out_dir, const sweep_options& opt)
+{
+    if (variants.empty()) throw config_error("sweep: no variants to render");
+    sweep_result res;
+    res.variants.resize(variants.size());
+    // Validate everything first: a bad key in variant 9 must not cost eight renders.
+    for (std::size_t i = 0; i < variants.size(); ++i) {
+        auto& r = res.variants[i];
+        r.spec = variants[i];
+        for (std::size_t j = 0; j < i; ++j)
+            if (variants[j].name == r.spec.name)
+                throw config_error(fmt::format("variant {}: name \"{}\" is used twice", i + 1, r.spec.name));
+        std::vector<std::string> ov = base_overrides;
+        ov.insert(ov.end(), r.spec.overrides.begin(), r.spec.overrides.end());
+        try {
+            r.scene = load_scenario(base_file, ov);
+        } catch (const config_error& e) {
+            throw config_error(fmt::format("variant {}: {}", r.spec.name, e.what()));
+        }
+        r.dir = out_dir / r.spec.name;
+        r.measured_separately = opt.measure_tone_hz > 0.0 && r.scene.programme.kind == programme_kind::clip;
+        if (r.measured_separately) {
+            r.measure_scene = r.scene;
+            r.measure_scene.programme.kind = programme_kind::tone;
+            r.measure_scene.programme.tone_hz = opt.measure_tone_hz;
+            r.measure_scene.programme.duration_s = opt.measure_duration_s;
+            r.measure_scene.programme.audio.clear();
+        }
+        if (i > 0 && r.scene.render.audio_rate_hz != res.variants[0].scene.render.audio_rate_hz)
+            throw config_error(fmt::format("variant {}: output.sample_rate_hz = {}: every variant needs the same rate ({})",
+                                           r.spec.name, r.scene.render.audio_rate_hz, res.variants[0].scene.render.audio_rate_hz));
+    }
+    res.csv = out_dir / "table.csv";
+    res.markdown = out_dir / "table.md";
+    std::error_code ec;
+    if (!opt.overwrite)
+        for (const auto& p : {res.csv, res.markdown})
+            if (fs::exists(p, ec)) throw audio_error(fmt::format("{}: already exists (pass --overwrite to replace it)", p.string()));
+    fs::create_directories(out_dir, ec);
+    if (ec) throw audio_error(fmt::format("{}: cannot create the output directory: {}", out_dir.string(), ec.message()));
+
+    unsigned threads = opt.threads != 0 ? opt.threads : std::max(1u, std::thread::hardware_concurrency());
+    threads = std::min<unsigned>(threads, static_cast<unsigned>(variants.size()));
+    std::atomic<std::size_t> next{0};
+    std::atomic<bool> failed{false};
+    std::exception_ptr first_error;
+    std::size_t first_error_index = variants.size();
+    std::mutex m;
+    std::size_t finished = 0;
+    auto work = [&] {
+        for (;;) {
+            const std::size_t i = next.fetch_add(1);
+            if (i >= variants.size() || failed.load()) return;
+            try {
+                auto& r = res.variants[i];
+                job_options jo;
+                jo.overwrite = opt.overwrite;
+                r.job = run_render_job(r.scene, r.dir, jo);
+                r.metrics = r.job.metrics;
+                if (r.measured_separately) {
+                    job_outcome mo = run_render_job(r.measure_scene, r.dir / "measure", jo);
+                    r.measure_earpiece_v = std::move(mo.analysis_v);
+                    // Levels of the programme itself; distortion figures from the tone.
+                    nlohmann::json merged = mo.metrics;
+                    for (const char* k : {"dc_v", "audio_rms_v", "audio_peak_v", "a_weighted_rms_v", "a_weighted_dbv", "peak_audio_v",
+                                          "clipped_samples"})
+                        if (r.job.metrics.contains(k)) merged[k] = r.job.metrics[k];
+                    merged["measure_dc_v"] = mo.metrics["dc_v"];
+                    merged["measure_audio_rms_v"] = mo.metrics["audio_rms_v"];
+                    std::vector<std::string> w;
+                    for (const auto& x : r.job.metrics["warnings"])
+                        if (x.get<std::string>().rfind("no distortion figures", 0) != 0) w.push_back(x.get<std::string>());
+                    for (const auto& x : mo.metrics["warnings"]) w.push_back("tone measurement: " + x.get<std::string>());
+                    merged["warnings"] = w;
+                    merged["distortion_from"] = fmt::format("{:.6g} Hz tone render in measure/", opt.measure_tone_hz);
+                    r.metrics = merged;
+                }
+                write_text_atomic(r.dir / "variant.json",
+                                  nlohmann::json{{"name", r.spec.name}, {"label", r.spec.label}, {"set", r.spec.overrides}}.dump(2) + "\n");
+                std::lock_guard<std::mutex> lk(m);
+                ++finished;
+                if (opt.progress) opt.progress(finished, variants.size(), r.spec.name);
+            } catch (...) {
+                std::lock_guard<std::mutex> lk(m);
+                failed = true;
+                if (i < first_error_index) {
+                    first_error_index = i;
+                    first_error = std::current_exception();
+                }
+            }
+        }
+    };
+    if (threads <= 1) {
+        work();
+    } else {
+        std::vector<std::thread> pool;
+        for (unsigned t = 0; t < threads; ++t) pool.emplace_back(work);
+        for (auto& t : pool) t.join();
+    }
+    if (first_error) {
+        try {
+            std::rethrow_exception(first_error);
+        } catch (const config_error& e) {
+            throw config_error(fmt::format("variant {}: {}", variants[first_error_index].name, e.what()));
+        } catch (const audio_error& e) {
+            throw audio_error(fmt::format("variant {}: {}", variants[first_error_index].name, e.what()));
+        } catch (const integration_error& e) {
+            throw integration_error(fmt::format("variant {}: {}", variants[first_error_index].name, e.what()), e.time_s());
+        }
+    }
+    write_text_atomic(res.csv, table_csv(res.variants));
+    write_text_atomic(res.markdown, table_markdown(res.variants));
+    return res;
+}
+
+} // namespace galena
