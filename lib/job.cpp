@@ -42,50 +42,32 @@ void transcode(const fs::path& src, const fs::path& target, double fs, wav_forma
 }
 } // namespace
 
-nlohmann::json measure_render(const scenario& s, std::span<const float> earpiece_v, double fade_s,
-                              const std::vector<std::string>& warnings)
+nlohmann::json job_metrics(const scenario& s, std::span<const float> earpiece_v, const std::vector<std::string>& warnings)
 {
     const double fs_hz = s.render.audio_rate_hz;
-    const detector_network net(s.circuit);
-    const settling_window win = choose_settling_window(net);
-    const auto first = static_cast<std::size_t>(std::ceil(std::max(win.settle_s, fade_s) * fs_hz));
-    const auto tail = static_cast<std::size_t>(std::ceil(fade_s * fs_hz));
-    if (earpiece_v.size() < first + tail + 64)
-        throw config_error(fmt::format("{}: signal.duration_s: {:.4g} s is too short to measure; at least {:.4g} s is needed "
-                                       "(settling {:.3g} s, fades {:.3g} s)",
-                                       s.file.string(), static_cast<double>(earpiece_v.size()) / fs_hz,
-                                       static_cast<double>(first + tail + 64) / fs_hz, win.settle_s, fade_s));
-    const std::vector<double> v(earpiece_v.begin() + static_cast<std::ptrdiff_t>(first),
-                                earpiece_v.end() - static_cast<std::ptrdiff_t>(tail));
-    // Audio band: 20 Hz (common practice) to the lower of 10 kHz (broadcast AM audio, NRSC-1) and Nyquist.
-    const double band_high = std::min(10000.0, 0.5 * fs_hz);
-    std::vector<nlohmann::json> parts;
-    std::vector<std::string> w = warnings;
-    parts.push_back(to_json(measure_levels(v, fs_hz, 20.0, band_high)));
-    parts.push_back(to_json(win));
-    const bool tone = s.programme.kind == programme_kind::tone;
-    const double f0 = s.programme.tone_hz;
-    const double periods = static_cast<double>(v.size()) / fs_hz * f0;
-    if (tone && f0 > 20.0 && f0 < 0.45 * fs_hz && f0 < band_high && periods >= 4.0) {
-        parts.push_back(to_json(analyze_tone(v, fs_hz, f0, 20.0, band_high)));
-        clipping_diagnosis d = diagnose_clipping(net, f0, s.am.modulation_index);
-        observe_failure_to_follow(d, net, v, fs_hz);
-        parts.push_back(to_json(d));
-        for (auto& c : clipping_warnings(d)) w.push_back(std::move(c));
-    } else {
-        nlohmann::json nulls;
-        for (const char* k : {"tone_hz", "fundamental_v", "h2_ratio", "h3_ratio", "thd_percent", "thd_n_percent", "sinad_db"})
-            nulls[k] = nullptr;
-        parts.push_back(nulls);
-        w.push_back(tone ? fmt::format("signal.tone_hz = {:.6g}: no distortion figures (needs 20 Hz < f < {:.6g} Hz and 4 "
-                                       "periods after settling)", f0, std::min(0.45 * fs_hz, band_high))
-                         : std::string("no distortion figures: the programme is not a single test tone"));
+    metrics_request rq;
+    // Audio band: 20 Hz (common practice) to 10 kHz (broadcast AM audio, NRSC-1), clamped to fs/2 by measure_render.
+    rq.band_low_hz = 20.0;
+    rq.band_high_hz = 10000.0;
+    const auto& p = s.programme;
+    if (p.kind == programme_kind::tone) rq.tone_hz = p.tone_hz;
+    if (p.kind == programme_kind::two_tone) {
+        rq.tone_hz = p.tone_hz;
+        rq.tone2_hz = p.tone2_hz;
+        rq.tone_ratio = p.tone_ratio;
     }
-    nlohmann::json j = merge_metrics(parts, w);
-    j["carrier_hz"] = s.am.carrier_hz;
-    j["carrier_peak_v"] = s.am.carrier_peak_v;
-    j["modulation_index"] = s.am.modulation_index;
-    j["analysed_s"] = static_cast<double>(v.size()) / fs_hz;
+    if (p.kind == programme_kind::clip || p.kind == programme_kind::log_sweep)
+        rq.clip_top_hz = std::min(p.kind == programme_kind::clip ? p.audio_cutoff_hz : p.sweep_stop_hz, 0.45 * fs_hz);
+    const std::vector<double> v(earpiece_v.begin(), earpiece_v.end());
+    const render_metrics m = measure_render(v, fs_hz, s.circuit, s.am, rq);
+    nlohmann::json j = m.json;
+    // The contract's keys are always present; null when the programme has no single tone.
+    for (const char* k : {"tone_hz", "fundamental_v", "h2_ratio", "h3_ratio", "thd_percent", "thd_n_percent", "sinad_db"})
+        if (!j.contains(k)) j[k] = nullptr;
+    std::vector<std::string> w = warnings;
+    for (const auto& x : j["warnings"]) w.push_back(x.get<std::string>());
+    if (!m.has_tone) w.push_back("no distortion figures: the programme is not a single test tone");
+    j["warnings"] = w;
     return j;
 }
 
@@ -142,7 +124,7 @@ job_outcome run_render_job(const scenario& s, const fs::path& out_dir, const job
         raw.commit();
     }
     // Measured before any output file exists, so a span too short to measure leaves nothing behind.
-    o.metrics = measure_render(s, o.analysis_v, opt.fade_s, o.render.warnings);
+    o.metrics = job_metrics(s, o.analysis_v, o.render.warnings);
     o.metrics["peak_audio_v"] = o.peak_audio_v;
     o.metrics["clipped_samples"] = o.clipped_samples;
     o.metrics["full_scale_v"] = o.full_scale_v;

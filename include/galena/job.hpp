@@ -37,14 +37,14 @@ struct job_outcome {
     std::vector<std::string> warnings;
 };
 
-/// Flat metrics of a rendered earpiece voltage: levels (dc_v, audio_rms_v, ...) always; for a tone
-/// programme also fundamental_v, h2_ratio.., thd_percent, thd_n_percent, sinad_db and the clipping limits
-/// (null for other programmes, with a warning saying why); plus `warnings`.
-/// The span analysed starts after the circuit's settling window and the fade, and stops before the end fade.
+/// Flat metrics of a rendered earpiece voltage (measure_render of the characterize module, with the request
+/// the programme implies): levels always; tone figures for a tone programme, IMD for two tones, clipping
+/// limits; the contract's keys fundamental_v, h2_ratio, h3_ratio, thd_percent, thd_n_percent, sinad_db are
+/// null when the programme is not one tone. `warnings` gathers the given ones and the analysis's.
 /// @param earpiece_v earpiece voltage, V, DC included, at s.render.audio_rate_hz, programme-aligned
-/// Throws config_error when the span is too short for the analysis (names the duration).
-[[nodiscard]] nlohmann::json measure_render(const scenario& s, std::span<const float> earpiece_v, double fade_s,
-                                            const std::vector<std::string>& warnings);
+/// Throws config_error when the span is too short to analyse after the settling window.
+[[nodiscard]] nlohmann::json job_metrics(const scenario& s, std::span<const float> earpiece_v,
+                                         const std::vector<std::string>& warnings);
 
 /// Renders `s` into `out_dir` (created if missing). Refuses to write over the scenario's own audio input.
 /// Throws config_error, audio_error or integration_error; on any failure no output file is left behind.
