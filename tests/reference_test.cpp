@@ -136,7 +136,8 @@ TEST_CASE("rectified DC of an exponential diode follows Is (I0(V/nVt) exp(-Vdc/n
     // Reference: CHECKS.md "Diode detector laws" item 1 [pub], solved here with Boost.Math cyl_bessel_i and
     // toms748_solve. The law assumes Rs = 0, Cj = 0, a source of zero resistance and negligible ripple.
     // The ripple is about Vdc / (fc RL C) peak to peak; RL C = 1000 carrier periods keeps its effect on the
-    // mean below 0.05 %, so the 1 % tolerance (the brief's bound) is dominated by nothing we know of.
+    // mean below 0.05 %. The tolerance, 0.2 %, leaves room for that and the stepper's error, and still
+    // catches a 0.6 % error in Vt (kT/q taken at 300 K instead of 298.15 K) in the square-law cases.
     constexpr double fc = 100e3; // Hz; the law does not depend on frequency when RL C >> 1/fc
     const double period = 1.0 / fc;
     const dc_case cases[] = {
@@ -201,16 +202,16 @@ TEST_CASE("rectified DC of an exponential diode follows Is (I0(V/nVt) exp(-Vdc/n
             const double err = std::fabs(v_sim / v_ref - 1.0);
             worst = std::max(worst, err);
             INFO(dc.name << ": V = " << v_peak << " V (" << a << " nVt), law " << v_ref << " V, simulated " << v_sim << " V");
-            CHECK(err <= 0.01);
+            CHECK(err <= 0.002);
             MESSAGE(fmt::format("DC law {:15s} a = {:5.2f}: law {:.6e} V, sim {:.6e} V, rel err {:.2e}", dc.name, a, v_ref,
                                 v_sim, err));
             if (a == levels[0]) {
                 // Small-signal limit [derived from the law: I0(a) ~ 1 + a^2/4, e^-y ~ 1 - y gives
                 // Is (a^2/4 - y) = y n Vt / RL, so Vdc = V^2/(4 n Vt) RL/(RL + Rv), Rv = n Vt / Is]; the
-                // neglected terms are O(a^2) ~ 3e-3 relative at a = 0.05.
+                // neglected terms are O(a^2), below 1e-3 relative at a = 0.05.
                 const double v_small = v_peak * v_peak / (4.0 * nvt) * dc.rl_ohm / (dc.rl_ohm + rv);
-                CHECK(rel_diff(v_sim, v_small) <= 0.01);
-                CHECK(rel_diff(v_ref, v_small) <= 0.01);
+                CHECK(rel_diff(v_sim, v_small) <= 0.002);
+                CHECK(rel_diff(v_ref, v_small) <= 0.002);
             }
         }
     }
@@ -442,7 +443,7 @@ std::vector<spice_case> spice_cases()
 
 } // namespace
 
-TEST_CASE("earpiece waveforms agree with ngspice (batch mode, tight tolerances) to 1e-3 relative RMS")
+TEST_CASE("earpiece waveforms agree with ngspice (batch mode, tight tolerances) to 5e-4 relative RMS")
 {
     // Reference: ngspice (Debian package), level-1 diode, trapezoidal integration with reltol 1e-6 and a
     // max step of period/200 [outside reference: general-purpose circuit simulator]. galena runs its
@@ -483,8 +484,11 @@ TEST_CASE("earpiece waveforms agree with ngspice (batch mode, tight tolerances) 
         const double rel_ac = relative_rms(ga, ra);
         MESSAGE(fmt::format("ngspice {}: relRMS {:.3e} (AC part {:.3e}), mean {:.6f} V vs {:.6f} V", k.name, rel, rel_ac, ma, mb));
         INFO(k.name);
-        CHECK(rel <= 1e-3);
-        CHECK(rel_ac <= 1e-3); // the same bound on the audio-carrying AC part (a choice of this test)
+        // The brief's bound is 1e-3; 5e-4 is used because a 2 % error in Is moves some of these circuits
+        // by only 5e-4 .. 1e-3 (the DC shifts by n Vt ln 1.02), measured by perturbing galena's Is. The AC
+        // part (mean removed) carries the audio and is checked to 1e-3.
+        CHECK(rel <= 5e-4);
+        CHECK(rel_ac <= 1e-3);
     }
 }
 
@@ -579,7 +583,7 @@ TEST_CASE("a piezo earpiece with no DC path dams up and goes quiet; a bleeder or
                         "diode leakage 500k mid {:.4g} late {:.4g}",
                         none.tone_v[0], none_late, bled_mid, bled_late, leak_mid, leak_late));
     // No DC path: loud while the charge builds in the first period, then quiet (the 5 % bound is loose: the
-    // sawtooth left by Is/C is about 1 mV against ~0.2 V).
+    // sawtooth left by Is/C, about 2 mV per modulation period, against the tens of mV of the charging period).
     CHECK(none_late < 0.05 * none.tone_v[0]);
     CHECK(none_late < 0.05 * bled_late);
     CHECK(none_late < 0.1 * leak_late);
