@@ -494,7 +494,7 @@ std::vector<std::string> clipping_warnings(const clipping_diagnosis& d)
 {
     std::vector<std::string> w;
     if (d.exceeds_diagonal)
-        w.push_back(fmt::format("modulation index {:.3g} exceeds the diagonal-clipping limit {:.3g} at {:.0f} Hz "
+        w.push_back(fmt::format("modulation index {:.3g} exceeds the diagonal-clipping limit {:.3g} for a full-depth tone at {:.0f} Hz "
                                 "(1/sqrt(1+(wm R C)^2), R = {:.4g} ohm, C = {:.4g} F)",
                                 d.modulation_index, d.diagonal_m_max, d.tone_hz, d.dc_load_ohm, d.node_capacitance_f));
     if (d.exceeds_negative_peak)

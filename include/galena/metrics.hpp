@@ -131,9 +131,11 @@ struct imd_metrics {
 };
 
 /// Fits DC, f1 and its harmonics 2..3, f2 and the sidebands f2 +- n f1 (n = 1..orders) by least squares.
-/// @param f1_hz < f2_hz, both in (0, 0.45 fs); f2 + orders f1 < fs/2; f2 - orders f1 > 2 f1 would not be
-///        needed, but all fitted frequencies must be distinct and > 0 (throws config_error otherwise)
+/// @param samples at least 64 samples and 4 periods of f1
+/// @param f1_hz, f2_hz 0 < f1 < f2, with f2 - orders f1 > 0 and f2 + orders f1 < 0.49 fs; every fitted
+///        frequency (f1, 2 f1, 3 f1, f2, f2 +- n f1) must be distinct (throws config_error otherwise)
 /// @param stimulus_ratio recorded in the result only
+/// @param orders sideband orders n; [1, 9]
 [[nodiscard]] imd_metrics analyze_two_tone(std::span<const double> samples, double fs_hz, double f1_hz, double f2_hz,
                                            double stimulus_ratio = 4.0, int orders = 3);
 
