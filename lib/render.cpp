@@ -92,6 +92,11 @@ render_result render(const circuit_params& circuit, am_params am, modulation& pr
 
     render_result res;
     res.audio_rate_hz = fs;
+    if (s.carrier_steps_floor < 30.0)
+        res.warnings.push_back(fmt::format(
+            "solver.carrier_steps_floor = {}: below 30 steps per carrier cycle the error accumulates over the cycles "
+            "(measured 1.5e-3 relRMS at 20 against 7e-6 at 40); keep 40 for comparisons",
+            detail::format_value(s.carrier_steps_floor)));
     res.preroll_s = am.preroll_s;
     const auto total = static_cast<std::size_t>(std::llround(programme.duration_s() * fs));
     const auto preroll_samples = static_cast<std::size_t>(std::llround(am.preroll_s * fs));
