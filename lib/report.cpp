@@ -339,6 +339,7 @@ void draw_bars(const std::string& stem, const std::string& title, const std::str
                const std::vector<std::string>& names, const std::vector<double>& values, const fs::path& dir,
                std::vector<std::string>& stems)
 {
+    if (std::none_of(values.begin(), values.end(), [](double v) { return std::isfinite(v); })) return; // nothing to draw
     std::string data;
     for (std::size_t i = 0; i < names.size(); ++i)
         data += fmt::format("\"{}\" {}\n", gp_escape(names[i]), std::isfinite(values[i]) ? fmt::format("{:.6g}", values[i]) : "NaN");

@@ -115,6 +115,8 @@ int main(int argc, char** argv)
     std::vector<std::string> cmp_sets, cmp_vary, cmp_variants;
     unsigned cmp_threads = 0;
     bool cmp_no_curves = false;
+    double cmp_tone_hz = 1000.0;
+    double cmp_tone_s = 0.3;
     std::string cmp_title;
     auto* compare = app.add_subcommand("compare", "make a comparison pack: WAVs, announced playlist, plots, offline HTML page");
     compare->add_option("input", cmp_input, "a pack file ([pack] + [[variant]]) or a base scenario with --vary/--variant")->required();
@@ -124,6 +126,9 @@ int main(int argc, char** argv)
     compare->add_option("--set,-s", cmp_sets, "override the base scenario: section.key=value (repeatable)");
     compare->add_option("--threads,-j", cmp_threads, "worker threads (0 = all cores)");
     compare->add_option("--title", cmp_title, "page title");
+    compare->add_option("--measure-tone", cmp_tone_hz, "for audio clips, also render a tone of this frequency for THD, Hz (0 = off)")
+        ->capture_default_str();
+    compare->add_option("--measure-duration", cmp_tone_s, "length of that tone render, s")->capture_default_str();
     compare->add_flag("--no-curves", cmp_no_curves, "skip the simulated response and transfer curves");
     compare->add_flag("--overwrite", overwrite, "replace existing output files");
     compare->add_flag("--quiet,-q", quiet, "no progress output");
@@ -194,6 +199,8 @@ int main(int argc, char** argv)
             } else {
                 base = input;
                 variants = collect_variants(cmp_vary, cmp_variants);
+                po.sweep.measure_tone_hz = cmp_tone_hz;
+                po.sweep.measure_duration_s = cmp_tone_s;
             }
             if (!cmp_title.empty()) po.title = cmp_title;
             const auto o = galena::make_pack(base, sets, variants, out, po);

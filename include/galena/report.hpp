@@ -73,7 +73,8 @@ void run_gnuplot(const std::string& script, const std::filesystem::path& work_di
 /// Draws the pack's plots into `dir` as NAME.svg and NAME.png: zoom (carrier band, envelope and earpiece
 /// waveform), spectrum, response, transfer, thd (bars), level (bars). Response and transfer curves are
 /// simulated per variant with the characterize module (cheaper 200 kHz carrier; the laws are frequency
-/// independent while R C >> 1/fc). Returns the stems drawn.
+/// independent while R C >> 1/fc). Bar charts with no finite value (e.g. THD of clips measured without a
+/// tone) are left out. Returns the stems drawn.
 std::vector<std::string> draw_pack_plots(const sweep_result& sweep, const std::filesystem::path& dir, bool curves = true);
 
 /// Draws zoom and spectrum plots for a single render (the `render` command).
