@@ -71,7 +71,7 @@ TEST_CASE("square-law detection: H2/H1 approaches m/4 at a carrier far below n V
     for (double m : {0.3, 0.8}) {
         const auto t = simulate_tone(c, 2e-3, m, 200.0, 0.02);
         INFO("m = " << m << ", H2/H1 = " << t.harmonic_ratio[2]);
-        CHECK(t.harmonic_ratio[2] == doctest::Approx(m / 4.0).epsilon(0.03));
+        CHECK(t.harmonic_ratio[2] == doctest::Approx(m / 4.0).epsilon(0.03).scale(0.0)); // relative: doctest adds scale 1 by default
         // The cube term of (1 + m cos)^2 is absent: H3 is far below H2.
         CHECK(t.harmonic_ratio[3] < 0.1 * t.harmonic_ratio[2]);
     }
@@ -84,9 +84,9 @@ TEST_CASE("clipping limits: diagonal 1/sqrt(1+(wm R C)^2), negative-peak R_ac/R_
     const detector_network net(c);
     const auto d = diagnose_clipping(net, 1000.0, 0.3);
     const double wrc = 2 * k_pi * 1000.0 * 27.57e3 * (10e-9 + 10e-12);
-    CHECK(d.diagonal_m_max == doctest::Approx(1.0 / std::sqrt(1.0 + wrc * wrc)).epsilon(1e-12));
+    CHECK(d.diagonal_m_max == doctest::Approx(1.0 / std::sqrt(1.0 + wrc * wrc)).epsilon(1e-12).scale(0.0));
     // For a pure R C load the general limit G_dc / |G + jwC| is the same number.
-    CHECK(d.combined_m_max == doctest::Approx(d.diagonal_m_max).epsilon(1e-12));
+    CHECK(d.combined_m_max == doctest::Approx(d.diagonal_m_max).epsilon(1e-12).scale(0.0));
     CHECK_FALSE(d.ac_coupled_load);
     CHECK(d.negative_peak_m_max == 1.0);
     CHECK_FALSE(d.exceeds_diagonal);
@@ -105,7 +105,7 @@ TEST_CASE("clipping limits: diagonal 1/sqrt(1+(wm R C)^2), negative-peak R_ac/R_
     const detector_network pn(p);
     const auto dp = diagnose_clipping(pn, 3000.0, 0.5);
     CHECK(dp.ac_coupled_load);
-    CHECK(dp.negative_peak_m_max == doctest::Approx(20e3 / (47e3 + 20e3)).epsilon(1e-9));
+    CHECK(dp.negative_peak_m_max == doctest::Approx(20e3 / (47e3 + 20e3)).epsilon(1e-9).scale(0.0));
     CHECK(dp.exceeds_negative_peak);
 }
 
@@ -116,7 +116,7 @@ TEST_CASE("diagonal clipping on the simulated circuit: THD low below m_max, risi
     const auto c = rc_detector("small-signal-schottky", r, cap);
     const detector_network net(c);
     const double m_max = diagnose_clipping(net, 1000.0, 0.0).diagonal_m_max;
-    REQUIRE(m_max == doctest::Approx(0.5).epsilon(1e-3));
+    REQUIRE(m_max == doctest::Approx(0.5).epsilon(1e-3).scale(0.0));
     std::vector<double> thd;
     std::vector<bool> observed;
     const std::vector<double> ms{0.2, 0.4, 0.45, 0.65, 0.85};
@@ -142,10 +142,10 @@ TEST_CASE("diagonal clipping on the simulated circuit: THD low below m_max, risi
         q.tone_hz = 1000.0;
         q.band_high_hz = 20000.0;
         const auto rm = measure_render(out.earpiece_v, 48000.0, c, am, q);
-        CHECK(rm.tone.thd_percent == doctest::Approx(t.thd_percent).epsilon(1e-9));
+        CHECK(rm.tone.thd_percent == doctest::Approx(t.thd_percent).epsilon(1e-9).scale(0.0));
         CHECK(rm.json.at("thd_percent").get<double>() == rm.tone.thd_percent);
         CHECK(rm.json.at("warnings").size() == (m > m_max ? 2u : 0u)); // predicted + observed
-        CHECK(rm.json.at("detection_efficiency").get<double>() == doctest::Approx(t.fundamental_v / (m * 3.0)));
+        CHECK(rm.json.at("detection_efficiency").get<double>() == doctest::Approx(t.fundamental_v / (m * 3.0)).scale(0.0));
     }
     // Below m_max a strong-signal (linear) detector follows the envelope: THD of a few percent at most.
     CHECK(thd[0] < 2.0);
@@ -191,12 +191,12 @@ TEST_CASE("transfer curve: about 2 dB/dB at low level and about 1 dB/dB at high 
         INFO(preset << ": slopes " << tc.low_slope_db_per_db << ", " << tc.high_slope_db_per_db << "; DC slopes "
                     << tc.low_dc_slope_db_per_db << ", " << tc.high_dc_slope_db_per_db << "; transition " << tc.transition_v
                     << " V, derived " << v_t << " V");
-        CHECK(tc.low_slope_db_per_db == doctest::Approx(2.0).epsilon(0.05));
-        CHECK(tc.high_slope_db_per_db == doctest::Approx(1.0).epsilon(0.1));
-        CHECK(tc.transition_v == doctest::Approx(v_t).epsilon(0.1));
+        CHECK(tc.low_slope_db_per_db == doctest::Approx(2.0).epsilon(0.05).scale(0.0));
+        CHECK(tc.high_slope_db_per_db == doctest::Approx(1.0).epsilon(0.1).scale(0.0));
+        CHECK(tc.transition_v == doctest::Approx(v_t).epsilon(0.1).scale(0.0));
         // DC follows V^2 at low level (CHECKS.md item 2). At high level V_dc ~ eta V - V_drop, the diode's
         // forward drop, so its log slope eta V / (eta V - V_drop) is above 1 and falls toward 1 (derived).
-        CHECK(tc.low_dc_slope_db_per_db == doctest::Approx(2.0).epsilon(0.05));
+        CHECK(tc.low_dc_slope_db_per_db == doctest::Approx(2.0).epsilon(0.05).scale(0.0));
         CHECK(tc.high_dc_slope_db_per_db > 1.0);
         CHECK(tc.high_dc_slope_db_per_db < 1.25);
         const auto j = to_json(tc);
@@ -218,14 +218,14 @@ TEST_CASE("weak-signal frequency response: the corner is the load pole behind th
     const auto s = fast_settings(400.0, 0.3);
     const auto r = measure_frequency_response(c, 2e-3, log_spaced(50.0, 6400.0, 15), s);
     INFO("expected corner " << fc << " Hz, measured " << r.high_corner_hz << " Hz");
-    CHECK(r.high_corner_hz == doctest::Approx(fc).epsilon(0.05));
+    CHECK(r.high_corner_hz == doctest::Approx(fc).epsilon(0.05).scale(0.0));
     // DC-coupled resistive load: no low corner inside the sweep.
     CHECK(std::isnan(r.low_corner_hz));
     // Far above the corner the first-order roll-off is 20 dB/decade: the top two points (ratio 1.41) differ by
     // 20 log10 of their frequency ratio within 0.5 dB.
     const auto& a = r.points[r.points.size() - 2];
     const auto& b = r.points.back();
-    CHECK(a.gain_db - b.gain_db == doctest::Approx(20 * std::log10(b.frequency_hz / a.frequency_hz)).epsilon(0.1));
+    CHECK(a.gain_db - b.gain_db == doctest::Approx(20 * std::log10(b.frequency_hz / a.frequency_hz)).epsilon(0.1).scale(0.0));
 }
 
 TEST_CASE("settling window follows the slowest time constant")
@@ -233,8 +233,8 @@ TEST_CASE("settling window follows the slowest time constant")
     // 5 time constants of the output node C / G (common practice: e^-5 < 1 %).
     const auto c = rc_detector("germanium-point-contact", 100e3, 100e-9);
     const auto w = choose_settling_window(detector_network(c));
-    CHECK(w.output_tau_s == doctest::Approx(100e3 * (100e-9 + 10e-12)).epsilon(1e-9));
-    CHECK(w.settle_s == doctest::Approx(5 * w.output_tau_s).epsilon(1e-9));
+    CHECK(w.output_tau_s == doctest::Approx(100e3 * (100e-9 + 10e-12)).epsilon(1e-9).scale(0.0));
+    CHECK(w.settle_s == doctest::Approx(5 * w.output_tau_s).epsilon(1e-9).scale(0.0));
     CHECK_THROWS_AS((void)measure_transfer_curve(c, {1e-3, 2e-3}, fast_settings(400.0, 0.3)), config_error);
 }
 
@@ -260,8 +260,8 @@ TEST_CASE("carrier ripple of a peak detector: the sawtooth V_dc / (fc R C)")
                << rip.harmonic_rms_v[0] << " (" << dv / (k_pi * std::sqrt(2.0)) << ")");
     CHECK(rip.dc_v < vdc);
     CHECK(rip.dc_v > vdc - 0.5);
-    CHECK(rip.ripple_rms_v == doctest::Approx(dv / (2 * std::sqrt(3.0))).epsilon(0.1));
-    CHECK(rip.harmonic_rms_v[0] == doctest::Approx(dv / (k_pi * std::sqrt(2.0))).epsilon(0.1));
+    CHECK(rip.ripple_rms_v == doctest::Approx(dv / (2 * std::sqrt(3.0))).epsilon(0.1).scale(0.0));
+    CHECK(rip.harmonic_rms_v[0] == doctest::Approx(dv / (k_pi * std::sqrt(2.0))).epsilon(0.1).scale(0.0));
     // Sawtooth harmonics fall as 1/k.
-    CHECK(rip.harmonic_rms_v[1] == doctest::Approx(rip.harmonic_rms_v[0] / 2).epsilon(0.15));
+    CHECK(rip.harmonic_rms_v[1] == doctest::Approx(rip.harmonic_rms_v[0] / 2).epsilon(0.15).scale(0.0));
 }

@@ -68,7 +68,7 @@ TEST_CASE("TR-BDF2 is second order on the harmonic oscillator")
     for (double h : {0.1, 0.05, 0.025, 0.0125}) err.push_back(fixed_step_error(sys, x0, h, 2.0, std::cos(2.0)));
     for (std::size_t i = 1; i < err.size(); ++i) {
         const double order = std::log2(err[i - 1] / err[i]);
-        CHECK(order == doctest::Approx(2.0).epsilon(0.05));
+        CHECK(order == doctest::Approx(2.0).epsilon(0.05).scale(0.0));
     }
 }
 
@@ -105,7 +105,7 @@ TEST_CASE("error control is real: global error follows tolerance proportionality
     }
     for (std::size_t i = 1; i < errs.size(); ++i) {
         const double slope = std::log10(errs[i - 1] / errs[i]) / std::log10(tols[i - 1] / tols[i]);
-        CHECK(slope == doctest::Approx(2.0 / 3.0).epsilon(0.1));
+        CHECK(slope == doctest::Approx(2.0 / 3.0).epsilon(0.1).scale(0.0));
     }
 }
 
@@ -191,8 +191,8 @@ TEST_CASE("RC discharge of the earpiece through the bleeder matches V0 exp(-t/RC
     detector_equations<false, 0>::vec x0;
     x0 << 0.5;
     for (double t : {0.5 * tau, tau, 3.0 * tau}) {
-        const double v = output_at(eq, x0, t, tau / 50.0);
-        CHECK(v == doctest::Approx(0.5 * std::exp(-t / tau)).epsilon(1e-5));
+        const double v = output_at(eq, x0, t, tau / 500.0);
+        CHECK(v == doctest::Approx(0.5 * std::exp(-t / tau)).epsilon(1e-5).scale(0.0));
     }
 }
 

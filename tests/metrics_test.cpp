@@ -41,17 +41,17 @@ TEST_CASE("half-wave rectified sine: DC 1/pi, H1 1/2, even harmonics 2/(pi(k^2-1
     const auto m = analyze_tone(y, fs, f0, 20.0, 0.49 * fs);
     REQUIRE(m.harmonics_fitted == 9);
     CHECK(std::fabs(db(m.fundamental_v / 0.5)) < 0.01);
-    CHECK(m.dc_v == doctest::Approx(1.0 / k_pi).epsilon(1e-3));
+    CHECK(m.dc_v == doctest::Approx(1.0 / k_pi).epsilon(1e-3).scale(0.0));
     double hsum = 0.0;
     for (int k = 2; k <= 9; ++k) {
         const double expected = (k % 2 == 0) ? 2.0 / (k_pi * (k * k - 1.0)) : 0.0;
         hsum += expected * expected;
         INFO("harmonic " << k);
-        if (expected > 0.0) CHECK(m.harmonic_v[k] == doctest::Approx(expected).epsilon(0.01));
+        if (expected > 0.0) CHECK(m.harmonic_v[k] == doctest::Approx(expected).epsilon(0.01).scale(0.0));
         else CHECK(m.harmonic_v[k] < 1e-4 * 0.5);
     }
     const double thd_expected = 100.0 * std::sqrt(hsum) / 0.5;
-    CHECK(m.thd_percent == doctest::Approx(thd_expected).epsilon(0.01));
+    CHECK(m.thd_percent == doctest::Approx(thd_expected).epsilon(0.01).scale(0.0));
 }
 
 TEST_CASE("symmetric clipped sine: odd harmonics from the closed form, checked by quadrature")
@@ -74,7 +74,7 @@ TEST_CASE("symmetric clipped sine: odd harmonics from the closed form, checked b
         const double q = 4 / k_pi *
                          (boost::math::quadrature::gauss_kronrod<double, 61>::integrate(f, 0.0, alpha) +
                           boost::math::quadrature::gauss_kronrod<double, 61>::integrate(f, alpha, k_pi / 2));
-        REQUIRE(bn_closed(n) == doctest::Approx(q).epsilon(1e-10));
+        REQUIRE(bn_closed(n) == doctest::Approx(q).epsilon(1e-10).scale(0.0));
     }
     const double f0 = 1013.0;
     const auto y = sample(36000, [&](double t) { return clipped(2 * k_pi * f0 * t); });
@@ -85,10 +85,10 @@ TEST_CASE("symmetric clipped sine: odd harmonics from the closed form, checked b
         const double e = (k % 2 == 1) ? std::fabs(bn_closed(k)) : 0.0;
         hsum += e * e;
         INFO("harmonic " << k);
-        if (e > 0.0) CHECK(m.harmonic_v[k] == doctest::Approx(e).epsilon(0.01));
+        if (e > 0.0) CHECK(m.harmonic_v[k] == doctest::Approx(e).epsilon(0.01).scale(0.0));
         else CHECK(m.harmonic_v[k] < 1e-5);
     }
-    CHECK(m.thd_percent == doctest::Approx(100.0 * std::sqrt(hsum) / bn_closed(1)).epsilon(0.01));
+    CHECK(m.thd_percent == doctest::Approx(100.0 * std::sqrt(hsum) / bn_closed(1)).epsilon(0.01).scale(0.0));
 }
 
 TEST_CASE("sum of chosen harmonics: THD, THD+N and SINAD from the chosen amplitudes")
@@ -107,18 +107,18 @@ TEST_CASE("sum of chosen harmonics: THD, THD+N and SINAD from the chosen amplitu
     const double h = std::sqrt(0.05 * 0.05 + 0.02 * 0.02 + 0.01 * 0.01);
     CHECK(std::fabs(db(m.fundamental_v / 0.8)) < 0.01);
     CHECK(std::fabs(m.fundamental_phase_rad) < 1e-6);
-    CHECK(m.harmonic_ratio[2] == doctest::Approx(0.05 / 0.8).epsilon(1e-3));
-    CHECK(m.harmonic_ratio[3] == doctest::Approx(0.02 / 0.8).epsilon(1e-3));
+    CHECK(m.harmonic_ratio[2] == doctest::Approx(0.05 / 0.8).epsilon(1e-3).scale(0.0));
+    CHECK(m.harmonic_ratio[3] == doctest::Approx(0.02 / 0.8).epsilon(1e-3).scale(0.0));
     CHECK(m.harmonic_ratio[4] < 1e-6);
-    CHECK(m.harmonic_ratio[5] == doctest::Approx(0.01 / 0.8).epsilon(1e-3));
-    CHECK(m.thd_percent == doctest::Approx(100.0 * h / 0.8).epsilon(0.01));
+    CHECK(m.harmonic_ratio[5] == doctest::Approx(0.01 / 0.8).epsilon(1e-3).scale(0.0));
+    CHECK(m.thd_percent == doctest::Approx(100.0 * h / 0.8).epsilon(0.01).scale(0.0));
     const double thdn = h / std::sqrt(h * h + 0.8 * 0.8);
-    CHECK(m.thd_n_percent == doctest::Approx(100.0 * thdn).epsilon(0.01));
-    CHECK(m.sinad_db == doctest::Approx(-20.0 * std::log10(thdn)).epsilon(1e-3));
+    CHECK(m.thd_n_percent == doctest::Approx(100.0 * thdn).epsilon(0.01).scale(0.0));
+    CHECK(m.sinad_db == doctest::Approx(-20.0 * std::log10(thdn)).epsilon(1e-3).scale(0.0));
     // A band that excludes the 5th harmonic (5 kHz) drops it from THD+N and from the harmonic fit.
     const auto mb = analyze_tone(y, fs, f0, 20.0, 4500.0);
     const double h4 = std::sqrt(0.05 * 0.05 + 0.02 * 0.02);
-    CHECK(mb.thd_n_percent == doctest::Approx(100.0 * h4 / std::sqrt(h4 * h4 + 0.64)).epsilon(0.01));
+    CHECK(mb.thd_n_percent == doctest::Approx(100.0 * h4 / std::sqrt(h4 * h4 + 0.64)).epsilon(0.01).scale(0.0));
     CHECK(mb.harmonics_fitted == 4);
 }
 
@@ -188,11 +188,11 @@ TEST_CASE("levels: DC, band-limited RMS and peak, A-weighted level of a known mi
         return 0.5 + 0.1 * std::sin(2 * k_pi * 2000 * t) + 0.05 * std::sin(2 * k_pi * 15000 * t);
     });
     const auto m = measure_levels(v, fs, 20.0, 10000.0);
-    CHECK(m.dc_v == doctest::Approx(0.5).epsilon(1e-9));
-    CHECK(m.audio_rms_v == doctest::Approx(0.1 / std::sqrt(2.0)).epsilon(1e-9));
-    CHECK(m.audio_peak_v == doctest::Approx(0.1).epsilon(1e-6));
+    CHECK(m.dc_v == doctest::Approx(0.5).epsilon(1e-9).scale(0.0));
+    CHECK(m.audio_rms_v == doctest::Approx(0.1 / std::sqrt(2.0)).epsilon(1e-9).scale(0.0));
+    CHECK(m.audio_peak_v == doctest::Approx(0.1).epsilon(1e-6).scale(0.0));
     CHECK(std::fabs(db(m.a_weighted_rms_v / (0.1 / std::sqrt(2.0))) - 1.2) < 0.1);
-    CHECK(m.a_weighted_dbv == doctest::Approx(db(m.a_weighted_rms_v)));
+    CHECK(m.a_weighted_dbv == doctest::Approx(db(m.a_weighted_rms_v)).scale(0.0));
     CHECK_THROWS_AS((void)measure_levels(v, fs, 100.0, 30000.0), config_error);
     const auto j = to_json(m);
     CHECK(j.at("dc_v").get<double>() == m.dc_v);
@@ -208,12 +208,12 @@ TEST_CASE("two-tone IMD: an amplitude-modulated high tone gives sidebands of hal
         return 0.8 * std::cos(2 * k_pi * f1 * t) + 0.2 * (1.0 + mu * std::cos(2 * k_pi * f1 * t)) * std::sin(2 * k_pi * f2 * t);
     });
     const auto m = analyze_two_tone(y, fs, f1, f2, 4.0, 3);
-    CHECK(m.f1_v == doctest::Approx(0.8).epsilon(1e-6));
-    CHECK(m.f2_v == doctest::Approx(0.2).epsilon(1e-6));
-    CHECK(m.sideband_v[0] == doctest::Approx(0.2 * mu / 2).epsilon(1e-6));
-    CHECK(m.sideband_v[1] == doctest::Approx(0.2 * mu / 2).epsilon(1e-6));
+    CHECK(m.f1_v == doctest::Approx(0.8).epsilon(1e-6).scale(0.0));
+    CHECK(m.f2_v == doctest::Approx(0.2).epsilon(1e-6).scale(0.0));
+    CHECK(m.sideband_v[0] == doctest::Approx(0.2 * mu / 2).epsilon(1e-6).scale(0.0));
+    CHECK(m.sideband_v[1] == doctest::Approx(0.2 * mu / 2).epsilon(1e-6).scale(0.0));
     CHECK(m.sideband_v[2] < 1e-9);
-    CHECK(m.imd_percent == doctest::Approx(100.0 * std::sqrt(2.0) * mu / 2).epsilon(1e-4));
+    CHECK(m.imd_percent == doctest::Approx(100.0 * std::sqrt(2.0) * mu / 2).epsilon(1e-4).scale(0.0));
     CHECK_THROWS_AS((void)analyze_two_tone(y, fs, 4000.0, 100.0), config_error);
 }
 
@@ -241,11 +241,11 @@ TEST_CASE("fidelity: gain, sub-sample delay, residual and correlation of a scale
     const auto ref = sample(24000, ref_at);
     const auto rec = sample(24000, [&](double t) { return g * ref_at(t - delay) + b * std::sin(2 * k_pi * 6000 * t); });
     const auto f = compare_to_reference(rec, ref, fs, 0.01, 20.0, 10000.0);
-    CHECK(f.delay_s * fs == doctest::Approx(23.4).epsilon(0.01 / 23.4));
-    CHECK(f.gain == doctest::Approx(g).epsilon(2e-3));
+    CHECK(f.delay_s * fs == doctest::Approx(23.4).epsilon(0.01 / 23.4).scale(0.0));
+    CHECK(f.gain == doctest::Approx(g).epsilon(2e-3).scale(0.0));
     const double expected_db = 10 * std::log10((b * b / 2) / (g * g * pref + b * b / 2));
-    CHECK(f.residual_db == doctest::Approx(expected_db).epsilon(0.3 / std::fabs(expected_db)));
-    CHECK(f.correlation == doctest::Approx(std::sqrt(g * g * pref / (g * g * pref + b * b / 2))).epsilon(1e-3));
+    CHECK(f.residual_db == doctest::Approx(expected_db).epsilon(0.3 / std::fabs(expected_db)).scale(0.0));
+    CHECK(f.correlation == doctest::Approx(std::sqrt(g * g * pref / (g * g * pref + b * b / 2))).epsilon(1e-3).scale(0.0));
     CHECK_THROWS_AS((void)compare_to_reference(rec, std::vector<double>(24000, 0.0), fs), audio_error);
 }
 
