@@ -462,7 +462,7 @@ std::string render_page(const pack_page& p)
     std::string h = "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\"><title>" + html_escape(p.title) +
                     "</title>\n<style>body{font-family:sans-serif;margin:2em;max-width:1200px;background:#fff;color:#111}"
                     "table{border-collapse:collapse;font-size:0.85em}td,th{border:1px solid #999;padding:3px 6px;text-align:right}"
-                    "td.l,th.l{text-align:left}figure{margin:1em 0}svg{max-width:100%;height:auto}.warn{color:#a40}</style>"
+                    "td.l,th.l{text-align:left}td.warn{max-width:22em;font-size:0.8em}audio{width:200px}figure{margin:1em 0}svg{max-width:100%;height:auto}.warn{color:#a40}</style>"
                     "</head><body>\n";
     h += "<h1>" + html_escape(p.title) + "</h1>\n";
     if (!p.note.empty()) h += "<p>" + html_escape(p.note) + "</p>\n";

@@ -44,6 +44,7 @@ struct run_result {
 /// Runs the built galena binary with `args` (already shell-quoted where needed).
 run_result galena_cli(const std::string& args, const fs::path& dir)
 {
+    REQUIRE_MESSAGE(std::string(GALENA_CLI).size() > 0, "the galena tool is not built (GALENA_BUILD_TOOLS=OFF)");
     fs::create_directories(dir);
     const std::string cmd = std::string("'") + GALENA_CLI + "' " + args + " > '" + (dir / "stdout.txt").string() + "' 2> '" +
                             (dir / "stderr.txt").string() + "'";
