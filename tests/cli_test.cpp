@@ -143,7 +143,7 @@ TEST_CASE("render of a weak tone: square-law H2/H1 = m/4, and the WAV's calibrat
     REQUIRE(r.rc == 0);
     const auto m = nlohmann::json::parse(slurp(d / "out/metrics.json"));
     const double h2 = m["h2_ratio"].get<double>();
-    CHECK(h2 == doctest::Approx(0.075).epsilon(0.04));
+    CHECK(h2 == doctest::Approx(0.075).epsilon(0.04).scale(0));
     // Round-trip of the calibration: WAV samples x full_scale_v are earpiece volts. Fit the 1 kHz amplitude
     // independently over the middle of the file (past the settling window and the 10 ms fades).
     double fs = 0.0;
@@ -152,7 +152,7 @@ TEST_CASE("render of a weak tone: square-law H2/H1 = m/4, and the WAV's calibrat
     for (double& x : v) x *= 1e-3;
     const double a = fit_amplitude(v, fs, 1000.0, static_cast<std::size_t>(0.03 * fs), static_cast<std::size_t>(0.11 * fs));
     // The WAV has the 10 Hz DC high-pass applied: at 1 kHz its 2nd-order gain is 1 - O((10/1000)^2) (derived).
-    CHECK(a == doctest::Approx(m["fundamental_v"].get<double>()).epsilon(0.005));
+    CHECK(a == doctest::Approx(m["fundamental_v"].get<double>()).epsilon(0.005).scale(0));
 }
 
 TEST_CASE("bad input: one-line errors naming the field, exit codes, no half-written outputs, inputs never overwritten")
@@ -253,7 +253,7 @@ TEST_CASE("announced playlist: each segment's audio sits exactly where the table
         const auto& s = segs[static_cast<std::size_t>(k)];
         CHECK(s.label == labels[static_cast<std::size_t>(k)]);
         REQUIRE(s.audio_samples == sig[static_cast<std::size_t>(k)].size());
-        CHECK(s.audio_start_s == doctest::Approx(static_cast<double>(s.audio_start_sample) / fs).epsilon(1e-6));
+        CHECK(s.audio_start_s == doctest::Approx(static_cast<double>(s.audio_start_sample) / fs).epsilon(1e-6).scale(0));
         // Samples equal to 24-bit resolution (2^-23 per step; written twice, so within 2 steps).
         double worst = 0.0;
         for (std::size_t i = 0; i < s.audio_samples; ++i)
