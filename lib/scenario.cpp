@@ -210,6 +210,11 @@ void apply_overrides(toml::table& root, const std::vector<std::string>& override
             root.insert(section, toml::table{});
             tab = root[section].as_table();
         }
+        if (section == "signal" && key == "audio") {
+            // A clip named on the command line is relative to the current directory, not to the file.
+            tab->insert_or_assign(key, fs::absolute(fs::path(value)).string());
+            continue;
+        }
         try {
             toml::table parsed = toml::parse("v = " + value);
             tab->insert_or_assign(key, *parsed["v"].node());
