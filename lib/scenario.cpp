@@ -290,6 +290,7 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
             if (field == "signal.audio") audio_set = true;
         }
     }
+    if (audio_set) s.programme.kind = programme_kind::clip; // a clip wins over test_signal
     if (audio_set && !s.programme.audio.is_absolute()) s.programme.audio = file.parent_path() / s.programme.audio;
     if (!audio_set && s.programme.kind == programme_kind::tone && s.programme.tone2_hz > 0.0)
         s.programme.kind = programme_kind::two_tone;
