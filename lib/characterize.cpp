@@ -247,7 +247,8 @@ frequency_response measure_frequency_response(const circuit_params& circuit, dou
     const settling_window sw = choose_settling_window(net);
     constexpr double fade_s = 2e-3; // stepped_tone_modulation's crossfade
     const double analysis = std::max(s.analysis_s, 4.0 / freqs.front());
-    const double dwell = std::ceil((sw.settle_s + analysis + 2.0 * fade_s) * fs) / fs;
+    // Two spare samples: the window edges below are rounded inward (ceil / floor).
+    const double dwell = (std::ceil((sw.settle_s + analysis + 2.0 * fade_s) * fs) + 2.0) / fs;
     stepped_tone_modulation prog(freqs, std::max(dwell, 0.01));
     am_params am;
     am.carrier_hz = s.carrier_hz;
