@@ -61,11 +61,8 @@ std::vector<double> run_galena(const Eq& eq, double t_end, double steps_per_cycl
     const auto t0 = clk::now();
     ig.advance_to(t_end, [&](double ta, const auto& xa, const auto& fa, double tb, const auto& xb, const auto& fb) {
         constexpr int o = Eq::output_index;
-        const double h = tb - ta;
         while (static_cast<double>(k) * sample_dt <= tb) {
-            const double s = (static_cast<double>(k) * sample_dt - ta) / h;
-            const double s2 = s * s, s3 = s2 * s;
-            out.push_back((2 * s3 - 3 * s2 + 1) * xa[o] + (s3 - 2 * s2 + s) * h * fa[o] + (3 * s2 - 2 * s3) * xb[o] + (s3 - s2) * h * fb[o]);
+            out.push_back(hermite_value(static_cast<double>(k) * sample_dt, ta, xa[o], fa[o], tb, xb[o], fb[o]));
             ++k;
         }
     });

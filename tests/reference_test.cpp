@@ -36,12 +36,6 @@ constexpr double k_pi = 3.14159265358979323846;
 /// kT/q at 25 deg C (galena's default junction temperature), V.
 const double vt_25c = k_boltzmann * (25.0 + 273.15) / k_charge;
 
-/// Cubic Hermite through (x0, f0) at s = 0 and (x1, f1) at s = 1 on a step of length h.
-double hermite(double s, double h, double x0, double f0, double x1, double f1)
-{
-    const double s2 = s * s, s3 = s2 * s;
-    return (2 * s3 - 3 * s2 + 1) * x0 + (s3 - 2 * s2 + s) * h * f0 + (3 * s2 - 2 * s3) * x1 + (s3 - s2) * h * f1;
-}
 
 /// The production stepper's settings as a render uses them: rtol 1e-3, atol 1e-6 V (the step_settings
 /// defaults) and h_max = carrier period / steps_per_cycle (render_settings.carrier_steps_floor).
@@ -67,12 +61,10 @@ std::vector<double> output_on_grid(const Eq& eq, const step_settings& st, const 
     std::size_t k = 0;
     const double t_end = t0 + static_cast<double>(n - 1) * dt;
     ig.advance_to(t_end, [&](double ta, const auto& xa, const auto& fa, double tb, const auto& xb, const auto& fb) {
-        const double h = tb - ta;
         while (k < n) {
             const double t = t0 + static_cast<double>(k) * dt;
             if (t > tb && !(k == n - 1 && tb >= t_end)) break;
-            const double s = std::clamp((t - ta) / h, 0.0, 1.0);
-            v.push_back(hermite(s, h, xa[out], fa[out], xb[out], fb[out]));
+            v.push_back(hermite_value(std::clamp(t, ta, tb), ta, xa[out], fa[out], tb, xb[out], fb[out]));
             ++k;
         }
     });

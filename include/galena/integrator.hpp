@@ -17,6 +17,19 @@
 
 namespace galena {
 
+/// Cubic Hermite through (x0, f0) at t0 and (x1, f1) at t1, evaluated at t (the steppers' dense output;
+/// t outside [t0, t1] extrapolates). Works for scalars and Eigen vectors.
+template <class T>
+[[nodiscard]] T hermite_value(double t, double t0, const T& x0, const T& f0, double t1, const T& x1, const T& f1)
+{
+    const double h = t1 - t0;
+    const double s = (t - t0) / h;
+    const double s2 = s * s;
+    const double s3 = s2 * s;
+    return (2.0 * s3 - 3.0 * s2 + 1.0) * x0 + ((s3 - 2.0 * s2 + s) * h) * f0 + (3.0 * s2 - 2.0 * s3) * x1 +
+           ((s3 - s2) * h) * f1;
+}
+
 /// Accuracy and limits of the adaptive stepper.
 struct step_settings {
     double relative_tolerance = 1e-3;   ///< rtol, dimensionless; [1e-10, 1e-1]
@@ -178,11 +191,7 @@ private:
     [[nodiscard]] vec predict(double dt) const
     {
         if (!m_have_prev) return m_x + dt * m_f;
-        const double s = 1.0 + dt / m_hp;
-        const double s2 = s * s;
-        const double s3 = s2 * s;
-        return (2.0 * s3 - 3.0 * s2 + 1.0) * m_xp + ((s3 - 2.0 * s2 + s) * m_hp) * m_fp + (3.0 * s2 - 2.0 * s3) * m_x +
-               ((s3 - s2) * m_hp) * m_f;
+        return hermite_value<vec>(m_hp + dt, 0.0, m_xp, m_fp, m_hp, m_x, m_f);
     }
 
     bool attempt(double h, vec& x1, vec& f1, double& err)
