@@ -212,7 +212,14 @@ void apply_overrides(toml::table& root, const std::vector<std::string>& override
         }
         if (section == "signal" && key == "audio") {
             // A clip named on the command line is relative to the current directory, not to the file.
-            tab->insert_or_assign(key, fs::absolute(fs::path(value)).string());
+            // The value may be a bare path or a quoted TOML string.
+            std::string path = value;
+            try {
+                toml::table parsed = toml::parse("v = " + value);
+                if (auto str = parsed["v"].value<std::string>()) path = *str;
+            } catch (const toml::parse_error&) {
+            }
+            tab->insert_or_assign(key, fs::absolute(fs::path(path)).string());
             continue;
         }
         try {
