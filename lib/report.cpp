@@ -462,7 +462,7 @@ std::string render_page(const pack_page& p)
     std::string h = "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\"><title>" + html_escape(p.title) +
                     "</title>\n<style>body{font-family:sans-serif;margin:2em;max-width:1200px;background:#fff;color:#111}"
                     "table{border-collapse:collapse;font-size:0.85em}td,th{border:1px solid #999;padding:3px 6px;text-align:right}"
-                    "td.l,th.l{text-align:left}td.warn{max-width:22em;font-size:0.8em}audio{width:200px}figure{margin:1em 0}svg{max-width:100%;height:auto}.warn{color:#a40}</style>"
+                    "td.l,th.l{text-align:left}td.warn{max-width:22em;font-size:0.8em}audio{width:170px}figure{margin:1em 0}svg{max-width:100%;height:auto}.warn{color:#a40}</style>"
                     "</head><body>\n";
     h += "<h1>" + html_escape(p.title) + "</h1>\n";
     if (!p.note.empty()) h += "<p>" + html_escape(p.note) + "</p>\n";
@@ -486,7 +486,9 @@ std::string render_page(const pack_page& p)
     h += "<h2>Variants</h2>\n<table><tr><th>#</th><th class=l>variant</th><th class=l>label</th><th>level-consistent</th>";
     if (!p.matched.empty()) h += "<th>loudness-matched</th><th>gain, dB</th>";
     h += "<th>carrier V</th><th>DC V</th><th>audio rms V</th><th>tone V</th><th>H2/H1</th><th>H3/H1</th><th>THD %</th>"
-         "<th>THD+N %</th><th>SINAD dB</th><th class=l>warnings</th></tr>\n";
+         "<th>THD+N %</th><th>SINAD dB</th></tr>\n";
+    // Warnings go in a list below the table: long text in a cell would stretch every row.
+    std::string warning_list;
     auto cell = [](const nlohmann::json& m, const char* k) {
         const double v = num_or_nan(m, k);
         return std::isfinite(v) ? fmt::format("{:.4g}", v) : std::string("-");
@@ -502,16 +504,18 @@ std::string render_page(const pack_page& p)
             h += fmt::format("<td><audio controls preload=\"none\" src=\"{}\"></audio></td><td>{:+.1f}{}</td>",
                              html_escape(fs::relative(g.wav, p.dir).generic_string()), g.gain_db, g.peak_limited ? " (peak-limited)" : "");
         }
-        std::string warns;
         if (r.metrics.contains("warnings"))
-            for (const auto& w : r.metrics["warnings"]) warns += html_escape(w.get<std::string>()) + "<br>";
+            for (const auto& w : r.metrics["warnings"])
+                warning_list += fmt::format("<li><b>{}</b>: {}</li>\n", html_escape(r.spec.name), html_escape(w.get<std::string>()));
         h += fmt::format("<td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td>"
-                         "<td class=\"l warn\">{}</td></tr>\n",
+                         "</tr>\n",
                          cell(r.metrics, "carrier_peak_v"), cell(r.metrics, "dc_v"), cell(r.metrics, "audio_rms_v"),
                          cell(r.metrics, "fundamental_v"), cell(r.metrics, "h2_ratio"), cell(r.metrics, "h3_ratio"),
-                         cell(r.metrics, "thd_percent"), cell(r.metrics, "thd_n_percent"), cell(r.metrics, "sinad_db"), warns);
+                         cell(r.metrics, "thd_percent"), cell(r.metrics, "thd_n_percent"), cell(r.metrics, "sinad_db"));
     }
-    h += "</table>\n<p>Tables: <a href=\"table.csv\">table.csv</a>, <a href=\"table.md\">table.md</a>.</p>\n<h2>Plots</h2>\n";
+    h += "</table>\n";
+    if (!warning_list.empty()) h += "<h3>Warnings</h3>\n<ul class=warn>\n" + warning_list + "</ul>\n";
+    h += "<p>Tables: <a href=\"table.csv\">table.csv</a>, <a href=\"table.md\">table.md</a>.</p>\n<h2>Plots</h2>\n";
     for (const auto& stem : p.plot_stems) {
         std::string svg = read_text(p.dir / "plots" / (stem + ".svg"));
         const auto at = svg.find("<svg");
