@@ -1,6 +1,6 @@
 #!/usr/bin/env bash
 # Installs what is missing (Debian packages, idempotent), builds galena, then either renders the bundled
-# demo pack (`demo`) or runs the whole test suite (`test`). Run from anywhere; needs root or sudo only
+# demo pack (`demo`), runs the whole test suite (`test`), or runs it again under ASan + UBSan (`sanitize`). Run from anywhere; needs root or sudo only
 # when a package is missing.
 set -euo pipefail
 mode="${1:-demo}"
@@ -12,8 +12,8 @@ build_pkgs=(build-essential cmake pkg-config libboost-dev libeigen3-dev libsndfi
 test_pkgs=(ngspice sox python3-numpy python3-scipy python3-pil chromium)
 case "$mode" in
   demo) pkgs=("${build_pkgs[@]}") ;;
-  test) pkgs=("${build_pkgs[@]}" "${test_pkgs[@]}") ;;
-  *) echo "usage: $0 demo|test" >&2; exit 2 ;;
+  test|sanitize) pkgs=("${build_pkgs[@]}" "${test_pkgs[@]}") ;;
+  *) echo "usage: $0 demo|test|sanitize" >&2; exit 2 ;;
 esac
 
 missing=()
@@ -29,6 +29,15 @@ if ((${#missing[@]})); then
 fi
 
 jobs="$(nproc 2>/dev/null || echo 2)"
+if [ "$mode" = sanitize ]; then
+  # The whole suite again under AddressSanitizer + UndefinedBehaviorSanitizer (the installed-package
+  # consumer test is left out: it would build a consumer without the sanitizer runtime).
+  san="${GALENA_SANITIZE_BUILD_DIR:-$here/build-asan}"
+  cmake -S "$here" -B "$san" -DCMAKE_BUILD_TYPE=RelWithDebInfo -DGALENA_SANITIZE=ON -DGALENA_BUILD_TESTS=ON
+  cmake --build "$san" -j "$jobs"
+  ctest --test-dir "$san" --output-on-failure -j "$jobs" -E package_consumer
+  exit 0
+fi
 cmake -S "$here" -B "$build" -DCMAKE_BUILD_TYPE=Release -DGALENA_BUILD_TESTS=$([ "$mode" = test ] && echo ON || echo OFF)
 cmake --build "$build" -j "$jobs"
 
