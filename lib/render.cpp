@@ -23,8 +23,7 @@ namespace {
 class decimation_chain {
 public:
     decimation_chain(double audio_rate, double carrier_hz)
-        : m_rate(audio_rate),
-          m_r1(static_cast<std::size_t>(std::ceil(8.0 * carrier_hz / (4.0 * audio_rate)))),
+        : m_r1(static_cast<std::size_t>(std::ceil(8.0 * carrier_hz / (4.0 * audio_rate)))),
           m_fine_period(1.0 / (audio_rate * 4.0 * static_cast<double>(m_r1))),
           m_stage1(bspline_kernel(m_r1, 3), m_r1),
           // Passband to 0.42 fs, stopband from 0.5 fs (in cycles per sample at 4 fs: 0.105 and 0.125).
@@ -56,7 +55,6 @@ public:
     }
 
 private:
-    double m_rate;
     std::size_t m_r1;
     double m_fine_period;
     fir_decimator m_stage1;
