@@ -1,0 +1,549 @@
+#include "galena/cycle_integrator.hpp"
+
+#include "galena/constants.hpp"
+#include "galena/error.hpp"
+#include "galena/validate.hpp"
+
+#include <Eigen/LU>
+#include <algorithm>
+#include <array>
+#include <boost/math/tools/roots.hpp>
+#include <cmath>
+#include <cstdint>
+#include <fmt/format.h>
+#include <limits>
+#include <map>
+#include <tuple>
+#include <utility>
+
+namespace galena {
+
+namespace {
+
+/// Inputs and outputs of the per-cycle batch: plain arrays so that the loops vectorise.
+struct batch_arrays {
+    const double* vp;   // linearisation points, 1..n
+    const double* u;    // source, 0..n
+    double* cap;        // C(vp), 0..n (index 0 = the previous cycle's last step, set by the caller)
+    double* g;          // i'(vp)
+    double* qa;         // q(vp) - C vp
+    double* ia;         // i(vp) - i' vp
+    double* f2;         // |F''| of the step equation at vp
+    double* thr;        // 2 eps F': a step is accepted when dv^2 f2 <= thr
+    double* inv_den;    // 1 / F'
+    double* cst;        // v_k = cst + ca v_k-1 + inv_den (cy . y_k-1)
+    double* ca;
+    double* m21;        // one-state networks: y_k = pu + m21 v_k-1 + m22 y_k-1
+    double* m22;
+    double* pu;
+};
+
+struct batch_constants {
+    int n;
+    double h;          // step, s
+    double inv_r;      // 1/R, S
+    double pb;         // c . p
+    double p;          // p (one-state networks)
+    double cy;         // cy (one-state networks)
+    double big_p;      // P (one-state networks)
+    double eps_v;      // Newton tolerance, V
+    bool algebraic;    // no junction charge
+    bool one_state;    // fill m21, m22, pu
+};
+
+/// The junction half of the batch: law values at the predicted voltages, the step equation's slope F' and
+/// curvature F'' there. Templated on the law's switches so that the loop has no branches.
+template <bool Breakdown, bool Charge, bool SquareRoot>
+[[gnu::always_inline]] inline void evaluate_points(const junction_law& law, int n, double hh, double lin, double eps2,
+                                                   const double* __restrict vp, double* __restrict cap, double* __restrict g,
+                                                   double* __restrict qa, double* __restrict ia, double* __restrict f2,
+                                                   double* __restrict thr, double* __restrict inv_den)
+{
+    for (int i = 1; i <= n; ++i) {
+        const double v = vp[i];
+        const junction_values r = law.template evaluate_as<Breakdown, Charge, SquareRoot>(v);
+        cap[i] = r.capacitance_f;
+        g[i] = r.conductance_s;
+        qa[i] = r.charge_c - r.capacitance_f * v;
+        ia[i] = r.current_a - r.conductance_s * v;
+        // Charge form: F' = C + h/2 (i' + (1 - pb)/R); algebraic form (no charge): F' = i' + (1 - pb)/R.
+        const double den = Charge ? r.capacitance_f + hh * (r.conductance_s + lin) : r.conductance_s + lin;
+        f2[i] = Charge ? std::fabs(r.capacitance_slope_f_per_v) + hh * std::fabs(r.conductance_slope_s_per_v)
+                       : std::fabs(r.conductance_slope_s_per_v);
+        thr[i] = eps2 * den;
+        inv_den[i] = 1.0 / den;
+    }
+}
+
+template <bool Breakdown, bool Charge, bool SquareRoot>
+[[gnu::always_inline]] inline void evaluate_points(const junction_law& law, const batch_arrays& a, const batch_constants& k)
+{
+    const double hh = 0.5 * k.h;
+    const double lin = k.inv_r * (1.0 - k.pb);
+    evaluate_points<Breakdown, Charge, SquareRoot>(law, k.n, hh, lin, 2.0 * k.eps_v, a.vp, a.cap, a.g, a.qa, a.ia, a.f2, a.thr,
+                                                   a.inv_den);
+}
+
+/// The affine step maps v_k = cst + ca v_k-1 + inv_den (cy . y_k-1) (and, for one-state networks,
+/// y_k = pu + m21 v_k-1 + m22 y_k-1) from the linearised junction.
+[[gnu::always_inline]] inline void assemble_steps(const batch_constants& k, const double* __restrict u, const double* __restrict cap,
+                                                  const double* __restrict g, const double* __restrict qa,
+                                                  const double* __restrict ia, const double* __restrict inv_den,
+                                                  double* __restrict cst, double* __restrict ca, double* __restrict m21,
+                                                  double* __restrict m22, double* __restrict pu)
+{
+    const int n = k.n;
+    const double hh = 0.5 * k.h;
+    const double inv_r = k.inv_r;
+    const double pb = k.pb;
+    const double lin = inv_r * (1.0 - pb);
+    if (k.algebraic) {
+        for (int i = 1; i <= n; ++i) {
+            cst[i] = (((1.0 - pb) * u[i] - pb * u[i - 1]) * inv_r - ia[i]) * inv_den[i];
+            ca[i] = pb * inv_r * inv_den[i];
+        }
+    } else {
+        for (int i = 1; i <= n; ++i) {
+            cst[i] = ((qa[i - 1] - qa[i]) + hh * (lin * (u[i - 1] + u[i]) - ia[i - 1] - ia[i])) * inv_den[i];
+            ca[i] = (cap[i - 1] - hh * (g[i - 1] + lin)) * inv_den[i];
+        }
+    }
+    if (k.one_state) {
+        const double p = k.p;
+        const double pcy = k.p * k.cy;
+        const double big_p = k.big_p;
+        for (int i = 1; i <= n; ++i) {
+            m21[i] = -p * (1.0 + ca[i]);
+            m22[i] = big_p - pcy * inv_den[i];
+            pu[i] = p * (u[i - 1] + u[i]) - p * cst[i];
+        }
+    }
+}
+
+// Evaluates the junction law at every predicted voltage of a cycle and assembles the affine step maps.
+// Cloned for AVX-512 and AVX2 machines (picked at load time); the default clone runs anywhere.
+__attribute__((target_clones("arch=x86-64-v4", "arch=x86-64-v3", "default"))) void
+linearise_cycle(const junction_law& law_in, const batch_arrays& a, const batch_constants& k)
+{
+    const junction_law law = law_in;
+    const bool sq = law.square_root_grading;
+    if (law.cj0_f > 0.0) {
+        if (law.breakdown) sq ? evaluate_points<true, true, true>(law, a, k) : evaluate_points<true, true, false>(law, a, k);
+        else sq ? evaluate_points<false, true, true>(law, a, k) : evaluate_points<false, true, false>(law, a, k);
+    } else {
+        if (law.breakdown) evaluate_points<true, false, true>(law, a, k);
+        else evaluate_points<false, false, true>(law, a, k);
+    }
+    assemble_steps(k, a.u, a.cap, a.g, a.qa, a.ia, a.inv_den, a.cst, a.ca, a.m21, a.m22, a.pu);
+}
+
+/// Root of an increasing function f(v) (f returns {F, F'}) near `guess`: bracket by doubling, then Newton
+/// with bisection fallback. Returns NaN when no bracket is found within 200 doublings.
+template <class F>
+double solve_increasing(F&& f, double guess, double initial_span, std::size_t& iterations)
+{
+    double v = guess;
+    auto [fv, dfv] = f(v);
+    double lo = v, hi = v, flo = fv, fhi = fv;
+    double span = initial_span;
+    for (int it = 0; it < 200 && flo > 0.0; ++it, span *= 2.0) {
+        lo -= span;
+        flo = f(lo).first;
+    }
+    span = initial_span;
+    for (int it = 0; it < 200 && fhi < 0.0; ++it, span *= 2.0) {
+        hi += span;
+        fhi = f(hi).first;
+    }
+    if (!(flo <= 0.0 && fhi >= 0.0)) return std::numeric_limits<double>::quiet_NaN();
+    for (int it = 0; it < 200; ++it) {
+        ++iterations;
+        std::tie(fv, dfv) = f(v);
+        if (fv > 0.0) hi = v;
+        else lo = v;
+        double vn = v - fv / dfv;
+        if (!(vn > lo && vn < hi)) vn = 0.5 * (lo + hi);
+        const bool done = std::fabs(vn - v) <= 1e-15 + 1e-13 * std::fabs(v) || hi - lo <= 1e-15 + 1e-13 * std::fabs(v);
+        v = vn;
+        if (done) break;
+    }
+    return v;
+}
+
+/// The ladder of step counts tried by choose_steps_per_cycle.
+constexpr std::array<int, 24> step_ladder{16,  20,  24,  32,  40,  48,   64,   80,   96,   128,  160,  192,
+                                          256, 320, 384, 512, 640, 768, 1024, 1280, 1536, 2048, 3072, 4096};
+
+} // namespace
+
+template <int Dim>
+cycle_integrator<Dim>::cycle_integrator(const one_junction_network<Dim>& net, double carrier_hz, const cycle_settings& s)
+    : m_net(net), m_s(s), m_n(s.steps_per_cycle)
+{
+    detail::require_above("series resistance R_src + R_s", net.series_ohm, 0.0, 1e12, "ohm");
+    detail::require_above("signal.carrier_hz", carrier_hz, 0.0, 1e9, "Hz");
+    detail::require_range("solver.steps_per_cycle", static_cast<double>(s.steps_per_cycle), 8.0, 4096.0);
+    detail::require_above("solver.newton_tolerance", s.newton_tolerance, 0.0, 1e-3);
+    detail::require_above("voltage scale", s.voltage_scale_v, 0.0, 1e6, "V");
+    m_period = 1.0 / carrier_hz;
+    m_h = m_period / static_cast<double>(m_n);
+    m_inv_r = 1.0 / net.series_ohm;
+    m_algebraic = !(net.junction.cj0_f > 0.0);
+    m_eps_v = s.newton_tolerance * s.voltage_scale_v;
+    const mat id = mat::Identity();
+    const mat lhs = id - 0.5 * m_h * net.a;
+    const Eigen::PartialPivLU<mat> lu(lhs);
+    m_p_mat = lu.solve(id + 0.5 * m_h * net.a);
+    m_p_vec = lu.solve(net.b) * (0.5 * m_h * m_inv_r);
+    m_pb = net.c.dot(m_p_vec);
+    m_cb = net.c.dot(net.b);
+    m_ct_a = net.a.transpose() * net.c;
+    if (m_algebraic) m_cy = -(m_p_mat.transpose() * net.c) * m_inv_r;
+    else m_cy = -(0.5 * m_h * m_inv_r) * (net.c + m_p_mat.transpose() * net.c);
+    const auto sz = static_cast<std::size_t>(m_n + 1);
+    for (auto* v : {&m_u, &m_vp, &m_cap, &m_g, &m_qa, &m_ia, &m_f2, &m_thr, &m_inv_den, &m_cst, &m_ca, &m_m21, &m_m22, &m_pu,
+                    &m_v, &m_yb, &m_ya, &m_h1, &m_h2})
+        v->assign(sz, 0.0);
+}
+
+template <int Dim>
+void cycle_integrator<Dim>::initialize(double v0_v, const vec& y0, double u0_v)
+{
+    m_v0 = v0_v;
+    m_y = y0;
+    m_u[0] = u0_v;
+    const junction_values r = m_net.junction.evaluate(v0_v);
+    m_cap[0] = r.capacitance_f;
+    m_g[0] = r.conductance_s;
+    m_qa[0] = r.charge_c - r.capacitance_f * v0_v;
+    m_ia[0] = r.current_a - r.conductance_s * v0_v;
+    m_v[0] = v0_v;
+    m_yb[0] = m_net.c.dot(y0);
+    m_ya[0] = m_ct_a.dot(y0);
+    m_history = 0;
+    m_stats = {};
+}
+
+template <int Dim>
+double cycle_integrator<Dim>::output_slope_v_per_s(int k) const noexcept
+{
+    const auto i = static_cast<std::size_t>(k);
+    return m_ya[i] + m_cb * (m_u[i] - m_v[i]) * m_inv_r;
+}
+
+template <int Dim>
+double cycle_integrator<Dim>::output_mean_v() const noexcept
+{
+    double sum = 0.5 * (m_yb[0] + m_yb[static_cast<std::size_t>(m_n)]);
+    for (int k = 1; k < m_n; ++k) sum += m_yb[static_cast<std::size_t>(k)];
+    const double integral = m_h * sum + m_h * m_h / 12.0 * (output_slope_v_per_s(0) - output_slope_v_per_s(m_n));
+    return integral / m_period;
+}
+
+template <int Dim>
+bool cycle_integrator<Dim>::batched_cycle()
+{
+    const int n = m_n;
+    if (m_history >= 2)
+        for (int k = 1; k <= n; ++k) m_vp[k] = 2.0 * m_h1[k] - m_h2[k];
+    else
+        for (int k = 1; k <= n; ++k) m_vp[k] = m_h1[k];
+    const batch_arrays arr{m_vp.data(),  m_u.data(),       m_cap.data(), m_g.data(),   m_qa.data(),
+                           m_ia.data(),  m_f2.data(),      m_thr.data(), m_inv_den.data(), m_cst.data(),
+                           m_ca.data(),  m_m21.data(),     m_m22.data(), m_pu.data()};
+    const batch_constants bc{n,
+                             m_h,
+                             m_inv_r,
+                             m_pb,
+                             m_p_vec[0],
+                             m_cy[0],
+                             m_p_mat(0, 0),
+                             m_eps_v,
+                             m_algebraic,
+                             Dim == 1};
+    for (int pass = 0; pass < m_s.max_batched_passes; ++pass) {
+        ++m_stats.batched_passes;
+        linearise_cycle(m_net.junction, arr, bc);
+        double vk = m_v0;
+        vec yk = m_y;
+        if constexpr (Dim == 1) {
+            double y = yk[0];
+            for (int k = 1; k <= n; ++k) {
+                const double vn = m_cst[k] + m_ca[k] * vk + m_inv_den[k] * (m_cy[0] * y);
+                y = m_pu[k] + m_m21[k] * vk + m_m22[k] * y;
+                vk = vn;
+                m_v[k] = vn;
+                m_yb[k] = y;
+            }
+            yk[0] = y;
+        } else {
+            for (int k = 1; k <= n; ++k) {
+                const double vn = m_cst[k] + m_ca[k] * vk + m_inv_den[k] * m_cy.dot(yk);
+                yk = m_p_mat * yk + m_p_vec * (m_u[k - 1] + m_u[k] - vk - vn);
+                vk = vn;
+                m_v[k] = vn;
+                m_yb[k] = m_net.c.dot(yk);
+                m_ya[k] = m_ct_a.dot(yk);
+            }
+        }
+        bool ok = std::isfinite(vk);
+        for (int k = 1; k <= n; ++k) {
+            const double dv = m_v[k] - m_vp[k];
+            ok = ok && (dv * dv * m_f2[k] <= m_thr[k]);
+        }
+        if (ok) {
+            // The accepted step states are the linearised updates; make the state and the stored
+            // linearisation describe exactly those voltages (the difference is within the tolerance).
+            if constexpr (Dim == 1) {
+                for (int k = 1; k <= n; ++k) m_ya[k] = m_net.a(0, 0) * m_yb[k];
+            }
+            m_y = yk;
+            return true;
+        }
+        for (int k = 1; k <= n; ++k) m_vp[k] = m_v[k];
+    }
+    return false;
+}
+
+template <int Dim>
+double cycle_integrator<Dim>::solve_scalar_step(int k, double guess)
+{
+    // The step equation F(v) = 0 is strictly increasing in v (C >= 0, i' > 0), so a bracket plus Newton
+    // with bisection fallback always converges.
+    const auto i = static_cast<std::size_t>(k);
+    const double hh = 0.5 * m_h;
+    const double lin = m_inv_r * (1.0 - m_pb);
+    const double v0 = m_v[i - 1];
+    const double u0 = m_u[i - 1];
+    const double u1 = m_u[i];
+    const double cpy = m_net.c.dot(m_p_mat * m_y);
+    const double drive = ((1.0 - m_pb) * u1 - cpy - m_pb * (u0 - v0)) * m_inv_r;
+    double rhs;
+    if (m_algebraic) {
+        rhs = drive;
+    } else {
+        const double q0 = m_qa[i - 1] + m_cap[i - 1] * v0;
+        const double j0 = (u0 - v0 - m_net.c.dot(m_y)) * m_inv_r - (m_ia[i - 1] + m_g[i - 1] * v0);
+        rhs = q0 + hh * j0 + hh * drive;
+    }
+    auto f = [&](double v) {
+        const junction_values r = m_net.junction.evaluate(v);
+        if (m_algebraic) return std::pair{r.current_a + lin * v - rhs, r.conductance_s + lin};
+        return std::pair{r.charge_c + hh * (r.current_a + lin * v) - rhs, r.capacitance_f + hh * (r.conductance_s + lin)};
+    };
+    const double v = solve_increasing(f, std::isfinite(guess) ? guess : v0, std::max(1e-3, 0.1 * m_s.voltage_scale_v),
+                                      m_stats.scalar_newton_iterations);
+    if (!std::isfinite(v))
+        throw integration_error(fmt::format("the junction equation has no solution near t = {:.9g} s (step {} of the cycle); "
+                                            "the diode parameters are probably far out of range",
+                                            time_s() + k * m_h, k),
+                                time_s() + k * m_h);
+    const junction_values r = m_net.junction.evaluate(v);
+    m_cap[i] = r.capacitance_f;
+    m_g[i] = r.conductance_s;
+    m_qa[i] = r.charge_c - r.capacitance_f * v;
+    m_ia[i] = r.current_a - r.conductance_s * v;
+    return v;
+}
+
+template <int Dim>
+void cycle_integrator<Dim>::scalar_cycle()
+{
+    ++m_stats.scalar_cycles;
+    const int n = m_n;
+    m_v[0] = m_v0;
+    for (int k = 1; k <= n; ++k) {
+        const double guess = m_history >= 1 ? m_h1[k] : m_v[k - 1];
+        const double v = solve_scalar_step(k, guess);
+        const double v0 = m_v[k - 1];
+        m_y = m_p_mat * m_y + m_p_vec * (m_u[k - 1] + m_u[k] - v0 - v);
+        m_v[k] = v;
+        m_yb[k] = m_net.c.dot(m_y);
+        m_ya[k] = m_ct_a.dot(m_y);
+    }
+}
+
+template <int Dim>
+void cycle_integrator<Dim>::advance(std::span<const double> u_v)
+{
+    const int n = m_n;
+    if (static_cast<int>(u_v.size()) != n)
+        throw config_error(fmt::format("cycle_integrator::advance: {} source samples given, {} expected", u_v.size(), n));
+    std::copy(u_v.begin(), u_v.end(), m_u.begin() + 1);
+    m_v[0] = m_v0;
+    m_yb[0] = m_net.c.dot(m_y);
+    m_ya[0] = m_ct_a.dot(m_y);
+    // The linearised passes only write indices 1..n, so a failed attempt leaves the cycle's start intact
+    // for the step-by-step solve.
+    if (!(m_history >= 1 && batched_cycle())) scalar_cycle();
+    const auto last = static_cast<std::size_t>(n);
+    if (!std::isfinite(m_v[last]) || !m_y.allFinite())
+        throw integration_error(fmt::format("the solution became non-finite near t = {:.9g} s", time_s() + m_period),
+                                time_s() + m_period);
+    ++m_stats.cycles;
+    // Next cycle starts where this one ended.
+    m_v0 = m_v[last];
+    m_u[0] = m_u[last];
+    m_cap[0] = m_cap[last];
+    m_g[0] = m_g[last];
+    m_qa[0] = m_qa[last];
+    m_ia[0] = m_ia[last];
+    std::swap(m_h1, m_h2);
+    std::copy(m_v.begin(), m_v.end(), m_h1.begin());
+    m_history = std::min<std::size_t>(m_history + 1, 2);
+}
+
+// ---------------------------------------------------------------------------------------------------------
+// Step-count selection: the rectified DC with the output frozen at that DC.
+
+namespace {
+
+/// The junction alone, driven by u_k = E cos(2 pi k / n) through R with its far end held at vout, under the
+/// integrator's trapezoidal discretisation.
+class frozen_junction {
+public:
+    frozen_junction(const junction_law& law, double r_ohm, double period_s, double e_v, int n)
+        : m_law(law), m_inv_r(1.0 / r_ohm), m_hh(0.5 * period_s / n), m_e(e_v), m_n(n), m_u(static_cast<std::size_t>(n) + 1),
+          m_v(static_cast<std::size_t>(n) + 1)
+    {
+        for (int k = 0; k <= n; ++k) m_u[static_cast<std::size_t>(k)] = e_v * std::cos(two_pi * k / n);
+    }
+
+    /// Mean series current over one cycle of the periodic steady state, A.
+    double mean_current(double vout)
+    {
+        if (!(m_law.cj0_f > 0.0)) {
+            march_algebraic(vout);
+        } else {
+            // Periodic steady state: plain cycles first (the junction's R Cj is normally far below the
+            // period), then shooting on the cycle map if it has not settled.
+            double v0 = 0.0;
+            bool settled = false;
+            for (int it = 0; it < 4 && !settled; ++it) {
+                const double v1 = march(v0, vout);
+                settled = std::fabs(v1 - v0) <= 1e-13 * (m_e + std::fabs(vout));
+                v0 = v1;
+            }
+            if (!settled) {
+                auto g = [&](double x) { return march(x, vout) - x; };
+                const double lo = -(m_e + std::fabs(vout)) - 1.0, hi = m_e + 1.0;
+                std::uintmax_t iters = 100;
+                const auto r = boost::math::tools::toms748_solve(g, lo, hi, boost::math::tools::eps_tolerance<double>(48), iters);
+                v0 = 0.5 * (r.first + r.second);
+            }
+            march(v0, vout);
+        }
+        double sum = 0.0;
+        for (int k = 0; k < m_n; ++k) sum += m_u[static_cast<std::size_t>(k)] - m_v[static_cast<std::size_t>(k)] - vout;
+        return sum * m_inv_r / m_n; // trapezoid over a periodic cycle: the plain sum
+    }
+
+    std::size_t iterations = 0;
+
+private:
+    /// One cycle from junction voltage v0; returns the voltage at its end.
+    double march(double v0, double vout)
+    {
+        m_v[0] = v0;
+        junction_values r0 = m_law.evaluate(v0);
+        for (int k = 1; k <= m_n; ++k) {
+            const auto i = static_cast<std::size_t>(k);
+            const double j0 = (m_u[i - 1] - m_v[i - 1] - vout) * m_inv_r - r0.current_a;
+            const double rhs = r0.charge_c + m_hh * (j0 + (m_u[i] - vout) * m_inv_r);
+            auto f = [&](double v) {
+                const junction_values r = m_law.evaluate(v);
+                return std::pair{r.charge_c + m_hh * (r.current_a + m_inv_r * v) - rhs,
+                                 r.capacitance_f + m_hh * (r.conductance_s + m_inv_r)};
+            };
+            m_v[i] = solve_increasing(f, m_v[i - 1], 1e-3 + 0.1 * m_e, iterations);
+            r0 = m_law.evaluate(m_v[i]);
+        }
+        return m_v[static_cast<std::size_t>(m_n)];
+    }
+
+    void march_algebraic(double vout)
+    {
+        for (int k = 0; k <= m_n; ++k) {
+            const auto i = static_cast<std::size_t>(k);
+            const double drive = (m_u[i] - vout) * m_inv_r;
+            auto f = [&](double v) {
+                const junction_values r = m_law.evaluate(v);
+                return std::pair{r.current_a + m_inv_r * v - drive, r.conductance_s + m_inv_r};
+            };
+            m_v[i] = solve_increasing(f, k > 0 ? m_v[i - 1] : 0.0, 1e-3 + 0.1 * m_e, iterations);
+        }
+    }
+
+    junction_law m_law;
+    double m_inv_r, m_hh, m_e;
+    int m_n;
+    std::vector<double> m_u, m_v;
+};
+
+} // namespace
+
+template <int Dim>
+double frozen_output_dc_v(const one_junction_network<Dim>& net, double carrier_hz, double e_v, int n)
+{
+    detail::require_above("carrier level", e_v, 0.0, 1e6, "V");
+    detail::require_above("signal.carrier_hz", carrier_hz, 0.0, 1e9, "Hz");
+    if (n < 4) throw config_error(fmt::format("frozen_output_dc_v: {} steps per cycle; at least 4 are needed", n));
+    const double g_dc = net.dc_load_conductance_s();
+    frozen_junction fj(net.junction, net.series_ohm, 1.0 / carrier_hz, e_v, n);
+    // I(V) - G V decreases in V: positive at V = -E (the junction forward-biased all cycle), at most zero at
+    // V = E (reverse-biased all cycle).
+    auto balance = [&](double v) { return fj.mean_current(v) - g_dc * v; };
+    std::uintmax_t iters = 200;
+    const auto r = boost::math::tools::toms748_solve(balance, -e_v, e_v, boost::math::tools::eps_tolerance<double>(46), iters);
+    const double v = 0.5 * (r.first + r.second);
+    if (!std::isfinite(v))
+        throw integration_error(fmt::format("the rectified level at a {:.4g} V carrier could not be found", e_v), 0.0);
+    return v;
+}
+
+template <int Dim>
+step_choice choose_steps_per_cycle(const one_junction_network<Dim>& net, double carrier_hz, std::span<const double> levels,
+                                   double tolerance, int max_steps)
+{
+    detail::require_above("solver.dc_tolerance", tolerance, 0.0, 0.1);
+    std::map<std::pair<std::size_t, int>, double> cache;
+    auto level_v = [&](std::size_t l, int n) {
+        const auto key = std::pair{l, n};
+        const auto it = cache.find(key);
+        if (it != cache.end()) return it->second;
+        const double v = frozen_output_dc_v(net, carrier_hz, levels[l], n);
+        cache.emplace(key, v);
+        return v;
+    };
+    auto error_at = [&](int n) {
+        double worst = 0.0;
+        for (std::size_t l = 0; l < levels.size(); ++l) {
+            const double fine = level_v(l, 2 * n);
+            const double coarse = level_v(l, n);
+            const double scale = std::max(std::fabs(fine), 1e-300);
+            worst = std::max(worst, std::fabs(coarse - fine) / scale);
+        }
+        return worst;
+    };
+    step_choice best;
+    for (std::size_t i = 0; i + 1 < step_ladder.size() && step_ladder[i] <= max_steps; ++i) {
+        const int n = step_ladder[i];
+        const double e = error_at(n);
+        best = {n, e, false};
+        if (e > tolerance) continue;
+        if (error_at(step_ladder[i + 1]) <= tolerance) return {n, e, true};
+    }
+    return best;
+}
+
+template class cycle_integrator<1>;
+template class cycle_integrator<2>;
+template class cycle_integrator<3>;
+template double frozen_output_dc_v<1>(const one_junction_network<1>&, double, double, int);
+template double frozen_output_dc_v<2>(const one_junction_network<2>&, double, double, int);
+template double frozen_output_dc_v<3>(const one_junction_network<3>&, double, double, int);
+template step_choice choose_steps_per_cycle<1>(const one_junction_network<1>&, double, std::span<const double>, double, int);
+template step_choice choose_steps_per_cycle<2>(const one_junction_network<2>&, double, std::span<const double>, double, int);
+template step_choice choose_steps_per_cycle<3>(const one_junction_network<3>&, double, std::span<const double>, double, int);
+
+} // namespace galena
