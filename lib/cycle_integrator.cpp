@@ -47,14 +47,15 @@ struct batch_constants {
     double cy;         // cy (one-state networks)
     double big_p;      // P (one-state networks)
     double eps_v;      // Newton tolerance, V
-    bool algebraic;    // no junction charge
+    double wa;         // theta h: weight of the step end in the junction equation, s
+    double wb;         // (1 - theta) h: weight of the step start, s
     bool one_state;    // fill m21, m22, pu
 };
 
 /// The junction half of the batch: law values at the predicted voltages, the step equation's slope F' and
 /// curvature F'' there. Templated on the law's switches so that the loop has no branches.
 template <bool Breakdown, bool Charge, bool SquareRoot>
-[[gnu::always_inline]] inline void evaluate_points(const junction_law& law, int n, double hh, double lin, double eps2,
+[[gnu::always_inline]] inline void evaluate_points(const junction_law& law, int n, double wa, double lin, double eps2,
                                                    const double* __restrict vp, double* __restrict cap, double* __restrict g,
                                                    double* __restrict qa, double* __restrict ia, double* __restrict f2,
                                                    double* __restrict thr, double* __restrict inv_den)
@@ -66,10 +67,9 @@ template <bool Breakdown, bool Charge, bool SquareRoot>
         g[i] = r.conductance_s;
         qa[i] = r.charge_c - r.capacitance_f * v;
         ia[i] = r.current_a - r.conductance_s * v;
-        // Charge form: F' = C + h/2 (i' + (1 - pb)/R); algebraic form (no charge): F' = i' + (1 - pb)/R.
-        const double den = Charge ? r.capacitance_f + hh * (r.conductance_s + lin) : r.conductance_s + lin;
-        f2[i] = Charge ? std::fabs(r.capacitance_slope_f_per_v) + hh * std::fabs(r.conductance_slope_s_per_v)
-                       : std::fabs(r.conductance_slope_s_per_v);
+        // F(v) = q(v) + theta h (i(v) + (1 - pb) v / R) - rhs: F' and |F''| (q = 0 without junction charge).
+        const double den = r.capacitance_f + wa * (r.conductance_s + lin);
+        f2[i] = std::fabs(r.capacitance_slope_f_per_v) + wa * std::fabs(r.conductance_slope_s_per_v);
         thr[i] = eps2 * den;
         inv_den[i] = 1.0 / den;
     }
@@ -78,9 +78,8 @@ template <bool Breakdown, bool Charge, bool SquareRoot>
 template <bool Breakdown, bool Charge, bool SquareRoot>
 [[gnu::always_inline]] inline void evaluate_points(const junction_law& law, const batch_arrays& a, const batch_constants& k)
 {
-    const double hh = 0.5 * k.h;
     const double lin = k.inv_r * (1.0 - k.pb);
-    evaluate_points<Breakdown, Charge, SquareRoot>(law, k.n, hh, lin, 2.0 * k.eps_v, a.vp, a.cap, a.g, a.qa, a.ia, a.f2, a.thr,
+    evaluate_points<Breakdown, Charge, SquareRoot>(law, k.n, k.wa, lin, 2.0 * k.eps_v, a.vp, a.cap, a.g, a.qa, a.ia, a.f2, a.thr,
                                                    a.inv_den);
 }
 
@@ -93,20 +92,16 @@ template <bool Breakdown, bool Charge, bool SquareRoot>
                                                   double* __restrict m22, double* __restrict pu)
 {
     const int n = k.n;
-    const double hh = 0.5 * k.h;
+    const double wa = k.wa;
+    const double wb = k.wb;
     const double inv_r = k.inv_r;
     const double pb = k.pb;
-    const double lin = inv_r * (1.0 - pb);
-    if (k.algebraic) {
-        for (int i = 1; i <= n; ++i) {
-            cst[i] = (((1.0 - pb) * u[i] - pb * u[i - 1]) * inv_r - ia[i]) * inv_den[i];
-            ca[i] = pb * inv_r * inv_den[i];
-        }
-    } else {
-        for (int i = 1; i <= n; ++i) {
-            cst[i] = ((qa[i - 1] - qa[i]) + hh * (lin * (u[i - 1] + u[i]) - ia[i - 1] - ia[i])) * inv_den[i];
-            ca[i] = (cap[i - 1] - hh * (g[i - 1] + lin)) * inv_den[i];
-        }
+    // q(v1) - q(v0) = theta h j1 + (1 - theta) h j0, linearised at both ends, solved for v1 (see the header).
+    for (int i = 1; i <= n; ++i) {
+        cst[i] = ((qa[i - 1] - qa[i]) + wb * (u[i - 1] * inv_r - ia[i - 1]) - wa * ia[i] +
+                  wa * ((1.0 - pb) * u[i] - pb * u[i - 1]) * inv_r) *
+                 inv_den[i];
+        ca[i] = (cap[i - 1] - wb * (inv_r + g[i - 1]) + wa * pb * inv_r) * inv_den[i];
     }
     if (k.one_state) {
         const double p = k.p;
@@ -170,11 +165,21 @@ double solve_increasing(F&& f, double guess, double initial_span, std::size_t& i
     return v;
 }
 
+/// h / (R Cj0) above which the junction relaxes within a fraction of a step: its periodic steady state is
+/// reached in a cycle and the trapezoidal rule's junction mode is undamped (see frozen_junction).
+constexpr double stiff_junction_ratio = 8.0;
+
 /// The ladder of step counts tried by choose_steps_per_cycle.
 constexpr std::array<int, 24> step_ladder{16,  20,  24,  32,  40,  48,   64,   80,   96,   128,  160,  192,
                                           256, 320, 384, 512, 640, 768, 1024, 1280, 1536, 2048, 3072, 4096};
 
 } // namespace
+
+template <int Dim>
+double junction_theta(const one_junction_network<Dim>& net)
+{
+    return net.junction.cj0_f > 0.0 ? 0.5 : 1.0;
+}
 
 template <int Dim>
 cycle_integrator<Dim>::cycle_integrator(const one_junction_network<Dim>& net, double carrier_hz, const cycle_settings& s)
@@ -183,12 +188,20 @@ cycle_integrator<Dim>::cycle_integrator(const one_junction_network<Dim>& net, do
     detail::require_above("series resistance R_src + R_s", net.series_ohm, 0.0, 1e12, "ohm");
     detail::require_above("signal.carrier_hz", carrier_hz, 0.0, 1e9, "Hz");
     detail::require_range("solver.steps_per_cycle", static_cast<double>(s.steps_per_cycle), 8.0, 4096.0);
+    if (s.steps_per_cycle % 2 != 0)
+        throw config_error(fmt::format("solver.steps_per_cycle = {}: must be even (the trapezoidal junction mode (-1)^k then "
+                                       "cancels over a cycle)",
+                                       s.steps_per_cycle));
+    if (s.junction_theta != 0.0) detail::require_range("junction theta", s.junction_theta, 0.5, 1.0);
     detail::require_above("solver.newton_tolerance", s.newton_tolerance, 0.0, 1e-3);
     detail::require_above("voltage scale", s.voltage_scale_v, 0.0, 1e6, "V");
     m_period = 1.0 / carrier_hz;
     m_h = m_period / static_cast<double>(m_n);
     m_inv_r = 1.0 / net.series_ohm;
-    m_algebraic = !(net.junction.cj0_f > 0.0);
+    m_theta = s.junction_theta > 0.0 ? s.junction_theta : junction_theta(net);
+    if (!(net.junction.cj0_f > 0.0)) m_theta = 1.0; // no charge: the constraint holds at every step end
+    m_wa = m_theta * m_h;
+    m_wb = (1.0 - m_theta) * m_h;
     m_eps_v = s.newton_tolerance * s.voltage_scale_v;
     const mat id = mat::Identity();
     const mat lhs = id - 0.5 * m_h * net.a;
@@ -198,8 +211,7 @@ cycle_integrator<Dim>::cycle_integrator(const one_junction_network<Dim>& net, do
     m_pb = net.c.dot(m_p_vec);
     m_cb = net.c.dot(net.b);
     m_ct_a = net.a.transpose() * net.c;
-    if (m_algebraic) m_cy = -(m_p_mat.transpose() * net.c) * m_inv_r;
-    else m_cy = -(0.5 * m_h * m_inv_r) * (net.c + m_p_mat.transpose() * net.c);
+    m_cy = -(m_wb * m_inv_r) * net.c - (m_wa * m_inv_r) * (m_p_mat.transpose() * net.c);
     const auto sz = static_cast<std::size_t>(m_n + 1);
     for (auto* v : {&m_u, &m_vp, &m_cap, &m_g, &m_qa, &m_ia, &m_f2, &m_thr, &m_inv_den, &m_cst, &m_ca, &m_m21, &m_m22, &m_pu,
                     &m_v, &m_yb, &m_ya, &m_h1, &m_h2})
@@ -259,7 +271,8 @@ bool cycle_integrator<Dim>::batched_cycle()
                              m_cy[0],
                              m_p_mat(0, 0),
                              m_eps_v,
-                             m_algebraic,
+                             m_wa,
+                             m_wb,
                              Dim == 1};
     for (int pass = 0; pass < m_s.max_batched_passes; ++pass) {
         ++m_stats.batched_passes;
@@ -311,25 +324,20 @@ double cycle_integrator<Dim>::solve_scalar_step(int k, double guess)
     // The step equation F(v) = 0 is strictly increasing in v (C >= 0, i' > 0), so a bracket plus Newton
     // with bisection fallback always converges.
     const auto i = static_cast<std::size_t>(k);
-    const double hh = 0.5 * m_h;
     const double lin = m_inv_r * (1.0 - m_pb);
     const double v0 = m_v[i - 1];
     const double u0 = m_u[i - 1];
     const double u1 = m_u[i];
     const double cpy = m_net.c.dot(m_p_mat * m_y);
     const double drive = ((1.0 - m_pb) * u1 - cpy - m_pb * (u0 - v0)) * m_inv_r;
-    double rhs;
-    if (m_algebraic) {
-        rhs = drive;
-    } else {
-        const double q0 = m_qa[i - 1] + m_cap[i - 1] * v0;
-        const double j0 = (u0 - v0 - m_net.c.dot(m_y)) * m_inv_r - (m_ia[i - 1] + m_g[i - 1] * v0);
-        rhs = q0 + hh * j0 + hh * drive;
-    }
+    // q(v1) + theta h (i(v1) + (1 - pb) v1 / R) = q0 + (1 - theta) h j0 + theta h drive; q0 and j0 from the
+    // previous step's linearisation (exact there after a scalar step, within the tolerance after a batch).
+    const double q0 = m_qa[i - 1] + m_cap[i - 1] * v0;
+    const double j0 = (u0 - v0 - m_net.c.dot(m_y)) * m_inv_r - (m_ia[i - 1] + m_g[i - 1] * v0);
+    const double rhs = q0 + m_wb * j0 + m_wa * drive;
     auto f = [&](double v) {
         const junction_values r = m_net.junction.evaluate(v);
-        if (m_algebraic) return std::pair{r.current_a + lin * v - rhs, r.conductance_s + lin};
-        return std::pair{r.charge_c + hh * (r.current_a + lin * v) - rhs, r.capacitance_f + hh * (r.conductance_s + lin)};
+        return std::pair{r.charge_c + m_wa * (r.current_a + lin * v) - rhs, r.capacitance_f + m_wa * (r.conductance_s + lin)};
     };
     const double v = solve_increasing(f, std::isfinite(guess) ? guess : v0, std::max(1e-3, 0.1 * m_s.voltage_scale_v),
                                       m_stats.scalar_newton_iterations);
@@ -399,12 +407,13 @@ void cycle_integrator<Dim>::advance(std::span<const double> u_v)
 namespace {
 
 /// The junction alone, driven by u_k = E cos(2 pi k / n) through R with its far end held at vout, under the
-/// integrator's trapezoidal discretisation.
+/// integrator's discretisation (the same theta as cycle_integrator would use).
 class frozen_junction {
 public:
-    frozen_junction(const junction_law& law, double r_ohm, double period_s, double e_v, int n)
-        : m_law(law), m_inv_r(1.0 / r_ohm), m_hh(0.5 * period_s / n), m_e(e_v), m_n(n), m_u(static_cast<std::size_t>(n) + 1),
-          m_v(static_cast<std::size_t>(n) + 1)
+    frozen_junction(const junction_law& law, double r_ohm, double period_s, double theta, double e_v, int n)
+        : m_law(law), m_inv_r(1.0 / r_ohm), m_wa(theta * period_s / n), m_wb((1.0 - theta) * period_s / n), m_e(e_v), m_n(n),
+          m_stiff(!(law.cj0_f > 0.0) || period_s / n > stiff_junction_ratio * r_ohm * law.cj0_f),
+          m_u(static_cast<std::size_t>(n) + 1), m_v(static_cast<std::size_t>(n) + 1)
     {
         for (int k = 0; k <= n; ++k) m_u[static_cast<std::size_t>(k)] = e_v * std::cos(two_pi * k / n);
     }
@@ -412,27 +421,38 @@ public:
     /// Mean series current over one cycle of the periodic steady state, A.
     double mean_current(double vout)
     {
-        if (!(m_law.cj0_f > 0.0)) {
-            march_algebraic(vout);
-        } else {
-            // Periodic steady state: plain cycles first (the junction's R Cj is normally far below the
-            // period), then shooting on the cycle map if it has not settled.
-            double v0 = 0.0;
-            bool settled = false;
-            for (int it = 0; it < 4 && !settled; ++it) {
-                const double v1 = march(v0, vout);
-                settled = std::fabs(v1 - v0) <= 1e-13 * (m_e + std::fabs(vout));
-                v0 = v1;
+        // Periodic steady state. Start on the quasi-static point (the charge ignored), then plain cycles: the
+        // junction's R Cj is normally far below the period. A stiff junction (R Cj < h/8) has settled after
+        // two cycles except for the trapezoidal rule's undamped mode (-1)^k, which the mean over an even
+        // number of steps does not see. A slow one that has not settled is found by shooting on the cycle map.
+        const double drive0 = (m_u[0] - vout) * m_inv_r;
+        auto f0 = [&](double v) {
+            const junction_values r = m_law.evaluate(v);
+            return std::pair{r.current_a + m_inv_r * v - drive0, r.conductance_s + m_inv_r};
+        };
+        double v0 = solve_increasing(f0, 0.0, 1e-3 + 0.1 * m_e, iterations);
+        const double tol = 1e-12 * (m_e + std::fabs(vout));
+        // Fixed-point iteration of the cycle map, with Aitken's delta-squared extrapolation every third
+        // cycle for slow junctions (R Cj comparable with the period).
+        std::array<double, 3> hist{};
+        int have = 0;
+        for (int it = 0; it < 120; ++it) {
+            const double v1 = march(v0, vout);
+            if (std::fabs(v1 - v0) <= tol || (m_stiff && it >= 1) || !std::isfinite(v1)) {
+                v0 = std::isfinite(v1) ? v1 : v0;
+                break;
             }
-            if (!settled) {
-                auto g = [&](double x) { return march(x, vout) - x; };
-                const double lo = -(m_e + std::fabs(vout)) - 1.0, hi = m_e + 1.0;
-                std::uintmax_t iters = 100;
-                const auto r = boost::math::tools::toms748_solve(g, lo, hi, boost::math::tools::eps_tolerance<double>(48), iters);
-                v0 = 0.5 * (r.first + r.second);
+            hist[static_cast<std::size_t>(have++)] = v0;
+            v0 = v1;
+            if (have == 3) {
+                const double d1 = hist[2] - hist[1], d2 = v0 - hist[2]; // three consecutive iterates
+                const double den = d2 - d1;
+                const double acc = v0 - d2 * d2 / den;
+                if (den != 0.0 && std::isfinite(acc) && std::fabs(acc - v0) < 10.0 * std::fabs(d2) + tol) v0 = acc;
+                have = 0;
             }
-            march(v0, vout);
         }
+        march(v0, vout);
         double sum = 0.0;
         for (int k = 0; k < m_n; ++k) sum += m_u[static_cast<std::size_t>(k)] - m_v[static_cast<std::size_t>(k)] - vout;
         return sum * m_inv_r / m_n; // trapezoid over a periodic cycle: the plain sum
@@ -449,11 +469,11 @@ private:
         for (int k = 1; k <= m_n; ++k) {
             const auto i = static_cast<std::size_t>(k);
             const double j0 = (m_u[i - 1] - m_v[i - 1] - vout) * m_inv_r - r0.current_a;
-            const double rhs = r0.charge_c + m_hh * (j0 + (m_u[i] - vout) * m_inv_r);
+            const double rhs = r0.charge_c + m_wb * j0 + m_wa * (m_u[i] - vout) * m_inv_r;
             auto f = [&](double v) {
                 const junction_values r = m_law.evaluate(v);
-                return std::pair{r.charge_c + m_hh * (r.current_a + m_inv_r * v) - rhs,
-                                 r.capacitance_f + m_hh * (r.conductance_s + m_inv_r)};
+                return std::pair{r.charge_c + m_wa * (r.current_a + m_inv_r * v) - rhs,
+                                 r.capacitance_f + m_wa * (r.conductance_s + m_inv_r)};
             };
             m_v[i] = solve_increasing(f, m_v[i - 1], 1e-3 + 0.1 * m_e, iterations);
             r0 = m_law.evaluate(m_v[i]);
@@ -461,22 +481,10 @@ private:
         return m_v[static_cast<std::size_t>(m_n)];
     }
 
-    void march_algebraic(double vout)
-    {
-        for (int k = 0; k <= m_n; ++k) {
-            const auto i = static_cast<std::size_t>(k);
-            const double drive = (m_u[i] - vout) * m_inv_r;
-            auto f = [&](double v) {
-                const junction_values r = m_law.evaluate(v);
-                return std::pair{r.current_a + m_inv_r * v - drive, r.conductance_s + m_inv_r};
-            };
-            m_v[i] = solve_increasing(f, k > 0 ? m_v[i - 1] : 0.0, 1e-3 + 0.1 * m_e, iterations);
-        }
-    }
-
     junction_law m_law;
-    double m_inv_r, m_hh, m_e;
+    double m_inv_r, m_wa, m_wb, m_e;
     int m_n;
+    bool m_stiff;
     std::vector<double> m_u, m_v;
 };
 
@@ -489,13 +497,19 @@ double frozen_output_dc_v(const one_junction_network<Dim>& net, double carrier_h
     detail::require_above("signal.carrier_hz", carrier_hz, 0.0, 1e9, "Hz");
     if (n < 4) throw config_error(fmt::format("frozen_output_dc_v: {} steps per cycle; at least 4 are needed", n));
     const double g_dc = net.dc_load_conductance_s();
-    frozen_junction fj(net.junction, net.series_ohm, 1.0 / carrier_hz, e_v, n);
+    const double theta = junction_theta(net);
+    frozen_junction fj(net.junction, net.series_ohm, 1.0 / carrier_hz, theta, e_v, n);
     // I(V) - G V decreases in V: positive at V = -E (the junction forward-biased all cycle), at most zero at
     // V = E (reverse-biased all cycle).
     auto balance = [&](double v) { return fj.mean_current(v) - g_dc * v; };
     std::uintmax_t iters = 200;
-    const auto r = boost::math::tools::toms748_solve(balance, -e_v, e_v, boost::math::tools::eps_tolerance<double>(46), iters);
-    const double v = 0.5 * (r.first + r.second);
+    double v = std::numeric_limits<double>::quiet_NaN();
+    try {
+        const auto r = boost::math::tools::toms748_solve(balance, -e_v, e_v, boost::math::tools::eps_tolerance<double>(46), iters);
+        v = 0.5 * (r.first + r.second);
+    } catch (const std::exception&) {
+        // Left as NaN: reported below.
+    }
     if (!std::isfinite(v))
         throw integration_error(fmt::format("the rectified level at a {:.4g} V carrier could not be found", e_v), 0.0);
     return v;
@@ -539,6 +553,9 @@ step_choice choose_steps_per_cycle(const one_junction_network<Dim>& net, double 
 template class cycle_integrator<1>;
 template class cycle_integrator<2>;
 template class cycle_integrator<3>;
+template double junction_theta<1>(const one_junction_network<1>&);
+template double junction_theta<2>(const one_junction_network<2>&);
+template double junction_theta<3>(const one_junction_network<3>&);
 template double frozen_output_dc_v<1>(const one_junction_network<1>&, double, double, int);
 template double frozen_output_dc_v<2>(const one_junction_network<2>&, double, double, int);
 template double frozen_output_dc_v<3>(const one_junction_network<3>&, double, double, int);

@@ -40,6 +40,11 @@ double tone_modulation::value(double t) const noexcept
     return x;
 }
 
+double tone_modulation::max_frequency_hz() const noexcept
+{
+    return *std::max_element(m_frequencies_hz.begin(), m_frequencies_hz.end());
+}
+
 stepped_tone_modulation::stepped_tone_modulation(std::vector<double> f, double dwell_s)
     : m_frequencies_hz(std::move(f)), m_dwell_s(dwell_s)
 {
@@ -51,6 +56,12 @@ stepped_tone_modulation::stepped_tone_modulation(std::vector<double> f, double d
 double stepped_tone_modulation::duration_s() const noexcept
 {
     return m_dwell_s * static_cast<double>(m_frequencies_hz.size());
+}
+
+double stepped_tone_modulation::max_frequency_hz() const noexcept
+{
+    // The highest tone; the 2 ms raised-cosine crossfades add nothing above a few hundred hertz.
+    return *std::max_element(m_frequencies_hz.begin(), m_frequencies_hz.end());
 }
 
 double stepped_tone_modulation::value(double t) const noexcept
@@ -195,6 +206,7 @@ clip_modulation::clip_modulation(std::unique_ptr<sample_reader> reader, const co
     require_range("signal.audio_cutoff_hz", s.cutoff_hz, 100.0, 0.45 * in_rate, "Hz (at most 0.45 x the clip's sample rate)");
     require_range("signal.duration_s", s.max_duration_s, 0.0, 1e6, "s");
     m_rate_hz = s.internal_rate_hz > 0.0 ? s.internal_rate_hz : std::max(192000.0, 16.0 * s.cutoff_hz);
+    m_cutoff_hz = s.cutoff_hz;
     std::size_t frames = reader->frames();
     if (s.max_duration_s > 0.0) frames = std::min(frames, static_cast<std::size_t>(std::llround(s.max_duration_s * in_rate)));
     if (frames == 0) throw audio_error("audio clip has no samples");

@@ -20,6 +20,9 @@ public:
     [[nodiscard]] virtual double duration_s() const noexcept = 0;
     /// Ensures value() is valid for t in [t0_s, t1_s]; t0_s never decreases between calls.
     virtual void prepare(double /*t0_s*/, double /*t1_s*/) {}
+    /// Highest frequency the waveform carries with significant amplitude, Hz (the solver samples the
+    /// envelope finely enough for it). The default assumes a full audio band.
+    [[nodiscard]] virtual double max_frequency_hz() const noexcept { return 20000.0; }
 };
 
 /// A sum of sinusoids sum_k a_k sin(2 pi f_k t), scaled so the peak is exactly `peak` (<= 1).
@@ -35,6 +38,7 @@ public:
     /// Amplitude of tone k in x (peak-normalised), dimensionless.
     [[nodiscard]] double amplitude(std::size_t k) const { return m_amplitudes.at(k); }
     [[nodiscard]] const std::vector<double>& frequencies_hz() const noexcept { return m_frequencies_hz; }
+    [[nodiscard]] double max_frequency_hz() const noexcept override;
 
 private:
     std::vector<double> m_frequencies_hz;
@@ -51,6 +55,7 @@ public:
     [[nodiscard]] double duration_s() const noexcept override;
     [[nodiscard]] double dwell_s() const noexcept { return m_dwell_s; }
     [[nodiscard]] const std::vector<double>& frequencies_hz() const noexcept { return m_frequencies_hz; }
+    [[nodiscard]] double max_frequency_hz() const noexcept override;
 
 private:
     std::vector<double> m_frequencies_hz;
@@ -65,6 +70,7 @@ public:
     [[nodiscard]] double duration_s() const noexcept override { return m_duration_s; }
     /// Instantaneous frequency at time t, Hz.
     [[nodiscard]] double frequency_at(double t_s) const noexcept;
+    [[nodiscard]] double max_frequency_hz() const noexcept override { return m_f2; }
 
 private:
     double m_f1, m_f2, m_duration_s, m_k;
@@ -121,6 +127,8 @@ public:
     /// Gain applied to reach peak 1 (input full scale -> x), dimensionless.
     [[nodiscard]] double normalisation_gain() const noexcept { return m_gain; }
     [[nodiscard]] double internal_rate_hz() const noexcept { return m_rate_hz; }
+    /// The band limit plus its FIR's transition band, Hz.
+    [[nodiscard]] double max_frequency_hz() const noexcept override { return 1.1 * m_cutoff_hz; }
 
 private:
     class pipeline;
@@ -128,6 +136,7 @@ private:
     double m_duration_s = 0.0;
     double m_rate_hz = 0.0;
     double m_gain = 1.0;
+    double m_cutoff_hz = 5000.0;
     std::vector<float> m_buf;   // samples [m_buf_first, m_buf_first + m_buf.size())
     std::size_t m_buf_first = 0;
     std::size_t m_buf_start_offset = 0; // index in m_buf of the first live sample
