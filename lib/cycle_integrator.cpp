@@ -36,6 +36,7 @@ struct batch_arrays {
     double* m21;        // one-state networks: y_k = pu + m21 v_k-1 + m22 y_k-1
     double* m22;
     double* pu;
+    double* cyd;        // one-state networks: inv_den cy
 };
 
 struct batch_constants {
@@ -89,7 +90,7 @@ template <bool Breakdown, bool Charge, bool SquareRoot>
                                                   const double* __restrict g, const double* __restrict qa,
                                                   const double* __restrict ia, const double* __restrict inv_den,
                                                   double* __restrict cst, double* __restrict ca, double* __restrict m21,
-                                                  double* __restrict m22, double* __restrict pu)
+                                                  double* __restrict m22, double* __restrict pu, double* __restrict cyd)
 {
     const int n = k.n;
     const double wa = k.wa;
@@ -111,6 +112,7 @@ template <bool Breakdown, bool Charge, bool SquareRoot>
             m21[i] = -p * (1.0 + ca[i]);
             m22[i] = big_p - pcy * inv_den[i];
             pu[i] = p * (u[i - 1] + u[i]) - p * cst[i];
+            cyd[i] = k.cy * inv_den[i];
         }
     }
 }
@@ -129,7 +131,44 @@ linearise_cycle(const junction_law& law_in, const batch_arrays& a, const batch_c
         if (law.breakdown) evaluate_points<true, false, true>(law, a, k);
         else evaluate_points<false, false, true>(law, a, k);
     }
-    assemble_steps(k, a.u, a.cap, a.g, a.qa, a.ia, a.inv_den, a.cst, a.ca, a.m21, a.m22, a.pu);
+    assemble_steps(k, a.u, a.cap, a.g, a.qa, a.ia, a.inv_den, a.cst, a.ca, a.m21, a.m22, a.pu, a.cyd);
+}
+
+/// The recurrence of a one-state network's cycle (the sequential part; two FMAs deep per step):
+/// v_k = cst + ca v_k-1 + cyd y_k-1, y_k = pu + m21 v_k-1 + m22 y_k-1. Stores v and y at the steps, returns
+/// the end state, the sum of y over the interior steps 1..n-1, and whether every step's linearisation error
+/// dv^2 |F''| / (2 F') is within the tolerance.
+__attribute__((target_clones("arch=x86-64-v4", "arch=x86-64-v3", "default"))) bool
+sweep_one_state(const batch_arrays& a, int n, double v0, double y0, double* __restrict v_out, double* __restrict y_out,
+                double& v_end, double& y_end, double& y_interior_sum)
+{
+    const double* __restrict cst = a.cst;
+    const double* __restrict ca = a.ca;
+    const double* __restrict cyd = a.cyd;
+    const double* __restrict pu = a.pu;
+    const double* __restrict m21 = a.m21;
+    const double* __restrict m22 = a.m22;
+    double v = v0, y = y0, sum = 0.0;
+    for (int k = 1; k <= n; ++k) {
+        const double vn = cst[k] + ca[k] * v + cyd[k] * y;
+        y = pu[k] + m21[k] * v + m22[k] * y;
+        v = vn;
+        v_out[k] = v;
+        y_out[k] = y;
+        sum += y;
+    }
+    v_end = v;
+    y_end = y;
+    y_interior_sum = sum - y;
+    const double* __restrict vp = a.vp;
+    const double* __restrict f2 = a.f2;
+    const double* __restrict thr = a.thr;
+    bool ok = std::isfinite(v) && std::isfinite(y);
+    for (int k = 1; k <= n; ++k) {
+        const double dv = v_out[k] - vp[k];
+        ok &= dv * dv * f2[k] <= thr[k];
+    }
+    return ok;
 }
 
 /// Root of an increasing function f(v) (f returns {F, F'}) near `guess`: bracket by doubling, then Newton
@@ -213,7 +252,7 @@ cycle_integrator<Dim>::cycle_integrator(const one_junction_network<Dim>& net, do
     m_ct_a = net.a.transpose() * net.c;
     m_cy = -(m_wb * m_inv_r) * net.c - (m_wa * m_inv_r) * (m_p_mat.transpose() * net.c);
     const auto sz = static_cast<std::size_t>(m_n + 1);
-    for (auto* v : {&m_u, &m_vp, &m_cap, &m_g, &m_qa, &m_ia, &m_f2, &m_thr, &m_inv_den, &m_cst, &m_ca, &m_m21, &m_m22, &m_pu,
+    for (auto* v : {&m_u, &m_vp, &m_cap, &m_g, &m_qa, &m_ia, &m_f2, &m_thr, &m_inv_den, &m_cst, &m_ca, &m_m21, &m_m22, &m_pu, &m_cyd,
                     &m_v, &m_yb, &m_ya, &m_h1, &m_h2})
         v->assign(sz, 0.0);
 }
@@ -240,14 +279,14 @@ template <int Dim>
 double cycle_integrator<Dim>::output_slope_v_per_s(int k) const noexcept
 {
     const auto i = static_cast<std::size_t>(k);
-    return m_ya[i] + m_cb * (m_u[i] - m_v[i]) * m_inv_r;
+    const double ya = Dim == 1 ? m_net.a(0, 0) * m_yb[i] : m_ya[i];
+    return ya + m_cb * (m_u[i] - m_v[i]) * m_inv_r;
 }
 
 template <int Dim>
 double cycle_integrator<Dim>::output_mean_v() const noexcept
 {
-    double sum = 0.5 * (m_yb[0] + m_yb[static_cast<std::size_t>(m_n)]);
-    for (int k = 1; k < m_n; ++k) sum += m_yb[static_cast<std::size_t>(k)];
+    const double sum = 0.5 * (m_yb[0] + m_yb[static_cast<std::size_t>(m_n)]) + m_yb_interior_sum;
     const double integral = m_h * sum + m_h * m_h / 12.0 * (output_slope_v_per_s(0) - output_slope_v_per_s(m_n));
     return integral / m_period;
 }
@@ -260,36 +299,21 @@ bool cycle_integrator<Dim>::batched_cycle()
         for (int k = 1; k <= n; ++k) m_vp[k] = 2.0 * m_h1[k] - m_h2[k];
     else
         for (int k = 1; k <= n; ++k) m_vp[k] = m_h1[k];
-    const batch_arrays arr{m_vp.data(),  m_u.data(),       m_cap.data(), m_g.data(),   m_qa.data(),
-                           m_ia.data(),  m_f2.data(),      m_thr.data(), m_inv_den.data(), m_cst.data(),
-                           m_ca.data(),  m_m21.data(),     m_m22.data(), m_pu.data()};
-    const batch_constants bc{n,
-                             m_h,
-                             m_inv_r,
-                             m_pb,
-                             m_p_vec[0],
-                             m_cy[0],
-                             m_p_mat(0, 0),
-                             m_eps_v,
-                             m_wa,
-                             m_wb,
-                             Dim == 1};
+    const batch_arrays arr{m_vp.data(), m_u.data(),   m_cap.data(), m_g.data(),   m_qa.data(), m_ia.data(),  m_f2.data(), m_thr.data(),
+                           m_inv_den.data(), m_cst.data(), m_ca.data(), m_m21.data(), m_m22.data(), m_pu.data(), m_cyd.data()};
+    const batch_constants bc{n, m_h, m_inv_r, m_pb, m_p_vec[0], m_cy[0], m_p_mat(0, 0), m_eps_v, m_wa, m_wb, Dim == 1};
     for (int pass = 0; pass < m_s.max_batched_passes; ++pass) {
         ++m_stats.batched_passes;
         linearise_cycle(m_net.junction, arr, bc);
-        double vk = m_v0;
+        bool ok;
         vec yk = m_y;
         if constexpr (Dim == 1) {
-            double y = yk[0];
-            for (int k = 1; k <= n; ++k) {
-                const double vn = m_cst[k] + m_ca[k] * vk + m_inv_den[k] * (m_cy[0] * y);
-                y = m_pu[k] + m_m21[k] * vk + m_m22[k] * y;
-                vk = vn;
-                m_v[k] = vn;
-                m_yb[k] = y;
-            }
-            yk[0] = y;
+            double v_end = 0.0, y_end = 0.0;
+            ok = sweep_one_state(arr, n, m_v0, yk[0], m_v.data(), m_yb.data(), v_end, y_end, m_yb_interior_sum);
+            yk[0] = y_end;
         } else {
+            double vk = m_v0;
+            double sum = 0.0;
             for (int k = 1; k <= n; ++k) {
                 const double vn = m_cst[k] + m_ca[k] * vk + m_inv_den[k] * m_cy.dot(yk);
                 yk = m_p_mat * yk + m_p_vec * (m_u[k - 1] + m_u[k] - vk - vn);
@@ -297,19 +321,19 @@ bool cycle_integrator<Dim>::batched_cycle()
                 m_v[k] = vn;
                 m_yb[k] = m_net.c.dot(yk);
                 m_ya[k] = m_ct_a.dot(yk);
+                sum += m_yb[k];
             }
-        }
-        bool ok = std::isfinite(vk);
-        for (int k = 1; k <= n; ++k) {
-            const double dv = m_v[k] - m_vp[k];
-            ok = ok && (dv * dv * m_f2[k] <= m_thr[k]);
+            m_yb_interior_sum = sum - m_yb[static_cast<std::size_t>(n)];
+            ok = std::isfinite(vk) && yk.allFinite();
+            for (int k = 1; k <= n; ++k) {
+                const double dv = m_v[k] - m_vp[k];
+                ok = ok && (dv * dv * m_f2[k] <= m_thr[k]);
+            }
         }
         if (ok) {
-            // The accepted step states are the linearised updates; make the state and the stored
-            // linearisation describe exactly those voltages (the difference is within the tolerance).
-            if constexpr (Dim == 1) {
-                for (int k = 1; k <= n; ++k) m_ya[k] = m_net.a(0, 0) * m_yb[k];
-            }
+            // Accepted: the step voltages are the linearised updates. The stored linearisation (at the
+            // predicted voltages) stays the model for the next step's q0 and j0; it differs from the
+            // law at the accepted voltages by less than the tolerance.
             m_y = yk;
             return true;
         }
@@ -369,6 +393,9 @@ void cycle_integrator<Dim>::scalar_cycle()
         m_yb[k] = m_net.c.dot(m_y);
         m_ya[k] = m_ct_a.dot(m_y);
     }
+    double sum = 0.0;
+    for (int k = 1; k < n; ++k) sum += m_yb[static_cast<std::size_t>(k)];
+    m_yb_interior_sum = sum;
 }
 
 template <int Dim>

@@ -77,15 +77,6 @@ private:
     std::vector<double> m_fine;
 };
 
-/// Samples per carrier cycle at which the envelope is evaluated (cubic Lagrange interpolation between
-/// them): enough that 2 pi f_max T / K <= 0.05, where the interpolation error is below 2e-7 of the
-/// modulation (the 4-point error bound 9/16 (w h)^4 / 24).
-int envelope_samples_per_cycle(double fc, double max_frequency_hz)
-{
-    const double wt = two_pi * max_frequency_hz / fc;
-    return std::clamp(static_cast<int>(std::ceil(wt / 0.05)), 1, 64);
-}
-
 /// Steps per cycle when the automatic choice fails (measured: relRMS 8e-7 on the benchmark circuit).
 constexpr int fallback_steps_per_cycle = 64;
 
@@ -214,28 +205,7 @@ render_result render(const circuit_params& circuit, am_params am, modulation& pr
             cycle_integrator<dim> ig(oj, fc, cs);
             ig.initialize(0.0, cycle_integrator<dim>::vec::Zero(), src.voltage(0.0));
 
-            // The envelope is sampled K times per cycle (index j at time j T / K) and interpolated to the
-            // steps by 4-point Lagrange; the carrier phase of step k is exactly 2 pi k / N.
-            const int k_env = envelope_samples_per_cycle(fc, programme.max_frequency_hz());
-            struct step_weights {
-                int sub;                 // envelope interval within the cycle
-                std::array<double, 4> w; // weights of env[j-1 .. j+2]
-                double carrier;          // cos(2 pi k / N)
-            };
-            std::vector<step_weights> sw(static_cast<std::size_t>(n));
-            for (int k = 1; k <= n; ++k) {
-                const double pos = static_cast<double>(k) * k_env / n; // in envelope intervals
-                int sub = std::min(static_cast<int>(pos), k_env - 1);
-                const double f = pos - sub;
-                auto& e = sw[static_cast<std::size_t>(k - 1)];
-                e.sub = sub;
-                e.w = {-f * (f - 1.0) * (f - 2.0) / 6.0, (f + 1.0) * (f - 1.0) * (f - 2.0) / 2.0,
-                       -(f + 1.0) * f * (f - 2.0) / 2.0, (f + 1.0) * f * (f - 1.0) / 6.0};
-                e.carrier = std::cos(two_pi * k / n);
-            }
-            const double env_dt = period / k_env;
-            // env window for the current cycle c: values at j = c K - 1 .. c K + K + 2.
-            std::vector<double> env(static_cast<std::size_t>(k_env + 3));
+            phase_locked_source sampler(src, n);
             std::vector<double> u(static_cast<std::size_t>(n));
             for (std::size_t c0 = 0; c0 < cycles_total && delivered < total; c0 += cycles_per_chunk) {
                 const std::size_t c1 = std::min(cycles_total, c0 + cycles_per_chunk);
@@ -243,15 +213,7 @@ render_result render(const circuit_params& circuit, am_params am, modulation& pr
                 const double tb = static_cast<double>(c1) * period;
                 programme.prepare(ta - am.preroll_s - 2.0 * period, tb - am.preroll_s + 3.0 * period);
                 for (std::size_t c = c0; c < c1; ++c) {
-                    const auto j0 = static_cast<long long>(c) * k_env - 1;
-                    for (std::size_t i = 0; i < env.size(); ++i)
-                        env[i] = src.envelope(static_cast<double>(j0 + static_cast<long long>(i)) * env_dt);
-                    for (int k = 0; k < n; ++k) {
-                        const auto& e = sw[static_cast<std::size_t>(k)];
-                        const double* ep = env.data() + e.sub;
-                        u[static_cast<std::size_t>(k)] =
-                            (e.w[0] * ep[0] + e.w[1] * ep[1] + e.w[2] * ep[2] + e.w[3] * ep[3]) * e.carrier;
-                    }
+                    sampler.cycle(c, u);
                     ig.advance(u);
                     chain.add_cycle_mean(ig.output_mean_v(), raw);
                 }

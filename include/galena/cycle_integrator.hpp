@@ -132,7 +132,8 @@ private:
     std::size_t m_history = 0; // how many past cycles m_h1 / m_h2 hold (0, 1, 2)
 
     // Per-step arrays of the current cycle, index 0 = cycle start, 1..N = step ends.
-    std::vector<double> m_u, m_vp, m_cap, m_g, m_qa, m_ia, m_f2, m_thr, m_inv_den, m_cst, m_ca, m_m21, m_m22, m_pu;
+    std::vector<double> m_u, m_vp, m_cap, m_g, m_qa, m_ia, m_f2, m_thr, m_inv_den, m_cst, m_ca, m_m21, m_m22, m_pu, m_cyd;
+    double m_yb_interior_sum = 0.0; // sum of the output over steps 1..N-1 of the last cycle, V
     std::vector<double> m_v, m_yb, m_ya, m_h1, m_h2;
     cycle_stats m_stats;
 };

@@ -167,10 +167,39 @@ public:
     [[nodiscard]] const am_params& params() const noexcept { return m_p; }
     /// Simulation time at which the programme ends, s.
     [[nodiscard]] double end_s() const noexcept;
+    /// The modulation's highest significant frequency, Hz (0 without a modulation).
+    [[nodiscard]] double modulation_max_frequency_hz() const noexcept;
 
 private:
     am_params m_p;
     const modulation* m_x;
+};
+
+/// The AM source sampled on a carrier-phase-locked grid: cycle c, step k (1..N) is time (c + k/N) / fc,
+/// where the carrier is exactly cos(2 pi k / N). The envelope is evaluated K times per cycle (K chosen
+/// from the programme's highest frequency so that 2 pi f_max T / K <= 0.05) and interpolated to the steps
+/// by 4-point Lagrange (error below 2e-7 of the modulation: the bound 9/16 (w h)^4 / 24). Cheaper than
+/// evaluating the source at every step by a factor of about N / K in envelope evaluations.
+class phase_locked_source {
+public:
+    /// @param steps_per_cycle N; >= 2. The source (and its modulation) must outlive this object.
+    phase_locked_source(const am_source& source, int steps_per_cycle);
+    /// Source voltage at the N step ends of cycle c (phases 1/N .. N/N), V. Sequential calls (c, c + 1,
+    /// ...) evaluate K new envelope samples each; any other order re-evaluates the window.
+    void cycle(std::size_t c, std::span<double> u_v);
+    /// Envelope samples per carrier cycle, K.
+    [[nodiscard]] int envelope_samples_per_cycle() const noexcept { return m_k; }
+
+private:
+    const am_source* m_src;
+    int m_n;
+    int m_k;
+    double m_env_dt;
+    std::vector<int> m_sub_first;              // first step (0-based) of each envelope interval; [K] = N
+    std::vector<double> m_w0, m_w1, m_w2, m_w3; // Lagrange weights times the carrier, per step
+    std::vector<double> m_env;                 // envelope at j = c K - 1 .. c K + K + 1
+    std::size_t m_cycle = 0;                   // cycle the window holds
+    bool m_valid = false;
 };
 
 } // namespace galena
