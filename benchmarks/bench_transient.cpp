@@ -1,13 +1,20 @@
 // Full-transient speed and accuracy on the reference detector circuit, side by side with Boost.Odeint's
 // rosenbrock4 and Debian's ngspice, all measured in this run. Prints wall seconds per simulated second,
-// relRMS against a converged reference, and each method's speed ratio to galena.
+// relRMS against a converged reference, and galena's speed-up over each peer; then the same at 0.55, 1.0
+// and 1.6 MHz, and the cost against the simulated length.
 //
 // Circuit: 1 MHz carrier, 0.5 V peak, m = 0.5 at 1 kHz; 20k source; Is = 2 uA, n = 1.5, Rs = 20 ohm,
 // Cj0 = 0.5 pF, 2 Mohm leakage; 68k bleeder, 1 nF filter, 10 nF piezo with 10 Mohm leakage.
-// Usage: bench_transient [simulated_ms = 2]
+// Converged reference: galena's adaptive TR-BDF2 (a different method from the production one) at 640 steps
+// per cycle and rtol 1e-9, itself checked against rosenbrock4 at rtol 1e-8.
+//
+// Usage: bench_transient [accuracy_ms = 2] [timing_ms = 200]
 #include "galena/circuit.hpp"
+#include "galena/cycle_integrator.hpp"
 #include "galena/integrator.hpp"
 #include "galena/reference_integrator.hpp"
+#include "galena/render.hpp"
+#include "galena/signal.hpp"
 
 #include <chrono>
 #include <cmath>
@@ -16,7 +23,6 @@
 #include <filesystem>
 #include <fmt/format.h>
 #include <fstream>
-#include <sstream>
 #include <string>
 #include <vector>
 
@@ -25,7 +31,6 @@ using clk = std::chrono::steady_clock;
 
 namespace {
 
-constexpr double fc = 1e6;
 constexpr double sample_dt = 1e-8; // compare on a 100 MHz grid
 
 circuit_params circuit()
@@ -44,15 +49,34 @@ circuit_params circuit()
     return c;
 }
 
-/// Runs the production stepper with a per-cycle step bound; returns samples of v_b on the grid.
+/// The benchmark's source: A (1 + m sin(2 pi 1000 t)) cos(2 pi fc t) from t = 0 (no ramp, as the ngspice
+/// B-source), with the tone lasting long enough for any run here.
+struct bench_source {
+    tone_modulation tone{{1000.0}, {1.0}, 100.0};
+    am_params am;
+    am_source src;
+    explicit bench_source(double fc) : am(make_am(fc)), src(am, &tone) {}
+    static am_params make_am(double fc)
+    {
+        am_params a;
+        a.carrier_hz = fc;
+        a.carrier_peak_v = 0.5;
+        a.modulation_index = 0.5;
+        return a;
+    }
+};
+
+double seconds_since(clk::time_point t0) { return std::chrono::duration<double>(clk::now() - t0).count(); }
+
+/// galena's adaptive TR-BDF2 with a per-cycle step bound; v_b on the grid.
 template <class Eq>
-std::vector<double> run_galena(const Eq& eq, double t_end, double steps_per_cycle, double rtol, double& wall)
+std::vector<double> run_adaptive(const Eq& eq, double fc, double t_end, double steps_per_cycle, double rtol, double atol, double& wall)
 {
     step_settings st;
     st.relative_tolerance = rtol;
-    st.absolute_tolerance_v = 1e-6;
+    st.absolute_tolerance_v = atol;
     st.max_step_s = 1.0 / (fc * steps_per_cycle);
-    st.initial_step_s = 1e-10;
+    st.initial_step_s = 1e-12;
     tr_bdf2<Eq> ig(eq, st);
     ig.initialize(Eq::vec::Zero(), 0.0);
     std::vector<double> out;
@@ -66,7 +90,48 @@ std::vector<double> run_galena(const Eq& eq, double t_end, double steps_per_cycl
             ++k;
         }
     });
-    wall = std::chrono::duration<double>(clk::now() - t0).count();
+    wall = seconds_since(t0);
+    return out;
+}
+
+/// galena's production phase-locked integrator. With dense = true it returns v_b on the grid (cubic
+/// Hermite between steps); otherwise it only runs (the timing run) and returns the last cycle mean.
+std::vector<double> run_phase_locked(const detector_network& net, const bench_source& bs, double t_end, int n, bool dense,
+                                     double& wall)
+{
+    const double fc = bs.am.carrier_hz;
+    const auto oj = make_one_junction_network<1>(net);
+    cycle_settings cs;
+    cs.steps_per_cycle = n;
+    cs.voltage_scale_v = bs.am.carrier_peak_v * (1.0 + bs.am.modulation_index);
+    cycle_integrator<1> ig(oj, fc, cs);
+    ig.initialize(0.0, cycle_integrator<1>::vec::Zero(), bs.src.voltage(0.0));
+    phase_locked_source sampler(bs.src, n);
+    std::vector<double> u(static_cast<std::size_t>(n));
+    std::vector<double> out;
+    if (dense) out.reserve(static_cast<std::size_t>(t_end / sample_dt) + 2);
+    const auto cycles = static_cast<std::size_t>(std::llround(t_end * fc));
+    const double period = 1.0 / fc, h = period / n;
+    std::size_t k = 0;
+    double last_mean = 0.0;
+    const auto t0 = clk::now();
+    for (std::size_t c = 0; c < cycles; ++c) {
+        sampler.cycle(c, u);
+        ig.advance(u);
+        last_mean = ig.output_mean_v();
+        if (!dense) continue;
+        const auto yb = ig.output_v();
+        const double tc = static_cast<double>(c) * period;
+        while (static_cast<double>(k) * sample_dt < tc + period - 1e-15 && static_cast<double>(k) * sample_dt <= t_end) {
+            const double s = (static_cast<double>(k) * sample_dt - tc) / h;
+            const int m = std::min(n - 1, static_cast<int>(s));
+            out.push_back(hermite_value(s, double(m), yb[m], ig.output_slope_v_per_s(m) * h, double(m + 1), yb[m + 1],
+                                        ig.output_slope_v_per_s(m + 1) * h));
+            ++k;
+        }
+    }
+    wall = seconds_since(t0);
+    if (!dense) out.push_back(last_mean);
     return out;
 }
 
@@ -82,7 +147,7 @@ double rel_rms(const std::vector<double>& a, const std::vector<double>& ref, std
 }
 
 /// ngspice batch run of the same circuit; returns v_b on the grid (linear interpolation of its output).
-std::vector<double> run_ngspice(double t_end, double& wall, bool& ok)
+std::vector<double> run_ngspice(double t_end, double reltol, double max_step_s, double& wall, bool& ok)
 {
     namespace fs = std::filesystem;
     const fs::path dir = fs::temp_directory_path() / "galena-bench-ngspice";
@@ -97,14 +162,16 @@ std::vector<double> run_ngspice(double t_end, double& wall, bool& ok)
         << ".model dmod D(IS=2e-6 N=1.5 RS=0 CJO=0.5p VJ=0.5 M=0.5 FC=0.5)\n"
         << "Cb b 0 " << (c.load.filter_capacitance_f + c.earpiece.capacitance_f + c.load.stray_capacitance_f) << "\n"
         << "Rb b 0 68k\nRe b 0 10meg\n"
-        << ".options reltol=1e-3 temp=25 tnom=25\n"
-        << ".tran 1n " << t_end << " 0 25n uic\n"
+        << ".options reltol=" << reltol << " temp=25 tnom=25\n"
+        << ".tran 1n " << t_end << " 0 " << max_step_s << " uic\n"
         << ".control\nrun\nwrdata " << (dir / "out.txt").string() << " v(b)\n.endc\n.end\n";
     net.close();
+    fs::remove(dir / "out.txt");
     const auto t0 = clk::now();
     const int rc = std::system(fmt::format("ngspice -b {} > {} 2>&1", (dir / "detector.cir").string(), (dir / "log.txt").string()).c_str());
-    wall = std::chrono::duration<double>(clk::now() - t0).count();
-    ok = rc == 0 || std::filesystem::exists(dir / "out.txt");
+    wall = seconds_since(t0);
+    (void)rc; // ngspice exits 1 after a batch run without .plot lines; the output file is what counts
+    ok = fs::exists(dir / "out.txt");
     std::vector<double> ts, vs;
     std::ifstream in(dir / "out.txt");
     double t, v;
@@ -125,49 +192,119 @@ std::vector<double> run_ngspice(double t_end, double& wall, bool& ok)
     return out;
 }
 
+/// The reference at carrier fc: adaptive TR-BDF2, 640 steps per cycle, rtol 1e-9.
+std::vector<double> reference(const detector_network& net, const bench_source& bs, double t_end)
+{
+    detector_equations<true, 0> eq(net, bs.src);
+    double w = 0.0;
+    return run_adaptive(eq, bs.am.carrier_hz, t_end, 640.0, 1e-9, 1e-10, w);
+}
+
 } // namespace
 
 int main(int argc, char** argv)
 {
-    const double t_end = (argc > 1 ? std::atof(argv[1]) : 2.0) * 1e-3;
+    const double t_acc = (argc > 1 ? std::atof(argv[1]) : 2.0) * 1e-3;
+    const double t_time = (argc > 2 ? std::atof(argv[2]) : 200.0) * 1e-3;
     const detector_network net(circuit());
-    tone_modulation tone({1000.0}, {1.0}, 10.0);
-    am_params am;
-    am.carrier_hz = fc;
-    am.carrier_peak_v = 0.5;
-    am.modulation_index = 0.5;
-    // The tone_modulation is a sine starting at t = 0, as the ngspice B-source.
-    const am_source src(am, &tone);
-    detector_equations<true, 0> eq(net, src);
-    const std::size_t from = static_cast<std::size_t>(0.5 * t_end / sample_dt); // compare the second half
+    const std::size_t from = static_cast<std::size_t>(0.5 * t_acc / sample_dt); // compare the second half
 
-    double w_ref, w_gal, w_ode, w_spice;
-    std::fprintf(stderr, "converged reference (TR-BDF2, 640 steps/cycle, rtol 1e-9)...\n");
-    const auto ref = run_galena(eq, t_end, 640.0, 1e-9, w_ref);
-    std::fprintf(stderr, "galena default (40 steps/cycle)...\n");
-    const auto gal = run_galena(eq, t_end, 40.0, 1e-3, w_gal);
-    double w_20, w_10;
-    const auto gal20 = run_galena(eq, t_end, 25.0, 1e-2, w_20);
-    const auto gal10 = run_galena(eq, t_end, 20.0, 1e-2, w_10);
-    std::fprintf(stderr, "Boost.Odeint rosenbrock4, rtol 1e-4...\n");
+    const bench_source bs1(1e6);
+    std::fprintf(stderr, "converged reference (adaptive TR-BDF2, 640 steps/cycle, rtol 1e-9)...\n");
+    const auto ref = reference(net, bs1, t_acc);
+    detector_equations<true, 0> eq(net, bs1.src);
+    std::fprintf(stderr, "reference check: Boost.Odeint rosenbrock4 at rtol 1e-8...\n");
+    const auto ode_tight = reference_solve(erase_system(eq), {0.0, 0.0}, 0.0, sample_dt, ref.size(), 1, 1e-8, 1e-10, 1e-8);
+
+    // galena, automatic step count (what a render uses by default).
+    const auto oj = make_one_junction_network<1>(net);
+    const double levels[] = {0.75, 0.5, 0.25}; // crest, mean and trough of A (1 + m x)
     auto t0 = clk::now();
-    const auto ode = reference_solve(erase_system(eq), {0.0, 0.0}, 0.0, sample_dt, ref.size(), 1, 1e-4, 1e-6, 1.0 / (fc * 6.0));
-    w_ode = std::chrono::duration<double>(clk::now() - t0).count();
-    std::fprintf(stderr, "ngspice, reltol 1e-3, 25 ns max step...\n");
-    bool spice_ok = false;
-    const auto spice = run_ngspice(t_end, w_spice, spice_ok);
+    const step_choice ch = choose_steps_per_cycle(oj, 1e6, levels, render_settings{}.dc_tolerance, 4096);
+    const double choose_s = seconds_since(t0);
 
-    const double sim = t_end;
-    fmt::print("simulated {:.3g} ms at a 1 MHz carrier; relRMS over the second half, against the converged reference\n", sim * 1e3);
-    fmt::print("| method | wall s per simulated s | relRMS | galena speed-up |\n|---|---|---|---|\n");
-    auto row = [&](const char* name, double wall, const std::vector<double>& v) {
-        fmt::print("| {} | {:.2f} | {:.2e} | {:.1f}x |\n", name, wall / sim, rel_rms(v, ref, from), wall / w_gal);
+    struct row {
+        std::string name;
+        double wall_per_s;
+        double rel;
     };
-    row("galena TR-BDF2, 40 steps/cycle (default)", w_gal, gal);
-    row("galena TR-BDF2, 25 steps/cycle, rtol 1e-2", w_20, gal20);
-    row("galena TR-BDF2, 20 steps/cycle, rtol 1e-2", w_10, gal10);
-    row("Boost.Odeint rosenbrock4, rtol 1e-4", w_ode, ode);
-    if (spice_ok) row("ngspice, reltol 1e-3, 25 ns max step", w_spice, spice);
-    else fmt::print("| ngspice | not run (is the ngspice package installed?) | | |\n");
+    std::vector<row> rows;
+    auto galena_row = [&](int n, const std::string& name) {
+        double w_acc = 0.0, w_time = 0.0;
+        const auto v = run_phase_locked(net, bs1, t_acc, n, true, w_acc);
+        (void)run_phase_locked(net, bs1, t_time, n, false, w_time);
+        rows.push_back({name, w_time / t_time, rel_rms(v, ref, from)});
+    };
+    std::fprintf(stderr, "galena phase-locked (%.0f ms timed)...\n", t_time * 1e3);
+    galena_row(ch.steps_per_cycle, fmt::format("galena phase-locked, automatic N = {} (default)", ch.steps_per_cycle));
+    for (int n : {20, 24, 48, 64}) galena_row(n, fmt::format("galena phase-locked, N = {}", n));
+
+    // The whole render path (envelope, integrator, cycle means, resampler, FIR) on the same circuit, 1 kHz tone.
+    {
+        tone_modulation tone({1000.0}, {1.0}, t_time);
+        am_params am = bench_source::make_am(1e6);
+        render_settings rs;
+        rs.preroll_s = 5e-3;
+        const auto r = render(circuit(), am, tone, rs, [](const audio_block&) {});
+        rows.push_back({fmt::format("galena render() end to end (N = {}, 48 kHz audio out)", r.steps_per_cycle),
+                        r.wall_s / r.simulated_s, std::nan("")});
+    }
+    std::fprintf(stderr, "galena adaptive TR-BDF2 (the previous production path)...\n");
+    {
+        double w = 0.0;
+        const auto v = run_adaptive(eq, 1e6, t_acc, 40.0, 1e-3, 1e-6, w);
+        rows.push_back({"galena adaptive TR-BDF2, 40 steps/cycle", w / t_acc, rel_rms(v, ref, from)});
+    }
+    std::fprintf(stderr, "Boost.Odeint rosenbrock4, rtol 1e-4...\n");
+    {
+        t0 = clk::now();
+        const auto v = reference_solve(erase_system(eq), {0.0, 0.0}, 0.0, sample_dt, ref.size(), 1, 1e-4, 1e-6, 1.0 / 6e6);
+        const double w = seconds_since(t0);
+        rows.push_back({"Boost.Odeint rosenbrock4, rtol 1e-4", w / t_acc, rel_rms(v, ref, from)});
+    }
+    std::fprintf(stderr, "ngspice...\n");
+    bool spice_ok = false;
+    for (const auto& [reltol, step] : {std::pair{1e-3, 25e-9}, std::pair{1e-4, 5e-9}}) {
+        double w = 0.0;
+        const auto v = run_ngspice(t_acc, reltol, step, w, spice_ok);
+        if (spice_ok)
+            rows.push_back({fmt::format("ngspice, reltol {:g}, {:g} ns max step", reltol, step * 1e9), w / t_acc, rel_rms(v, ref, from)});
+    }
+
+    fmt::print("## Full transient at a 1 MHz carrier (one core)\n\n");
+    fmt::print("accuracy over the second half of {:.3g} ms on a 100 MHz grid against the converged reference; galena timed "
+               "over {:.3g} ms\n",
+               t_acc * 1e3, t_time * 1e3);
+    fmt::print("reference check: rosenbrock4 at rtol 1e-8 differs from the reference by relRMS {:.2e}\n",
+               rel_rms(ode_tight, ref, from));
+    fmt::print("automatic N: {} steps per cycle (estimated detected-level error {:.2e}, chosen in {:.0f} ms)\n\n",
+               ch.steps_per_cycle, ch.estimated_error, choose_s * 1e3);
+    const double g = rows.front().wall_per_s;
+    fmt::print("| method | wall s per simulated s | relRMS | galena default is faster by |\n|---|---:|---:|---:|\n");
+    for (const auto& r : rows)
+        fmt::print("| {} | {:.3f} | {} | {:.1f}x |\n", r.name, r.wall_per_s, std::isnan(r.rel) ? "-" : fmt::format("{:.2e}", r.rel),
+                   r.wall_per_s / g);
+    if (!spice_ok) fmt::print("| ngspice | not run (is the ngspice package installed?) | | |\n");
+
+    fmt::print("\n## Carrier frequency scaling (same circuit and modulation)\n\n");
+    fmt::print("| carrier | automatic N | wall s per simulated s | ns per carrier cycle | relRMS |\n|---|---:|---:|---:|---:|\n");
+    for (double fc : {0.55e6, 1.0e6, 1.6e6}) {
+        const bench_source bs(fc);
+        const step_choice c = choose_steps_per_cycle(oj, fc, levels, render_settings{}.dc_tolerance, 4096);
+        const auto r = fc == 1e6 ? ref : reference(net, bs, t_acc);
+        double w_acc = 0.0, w_time = 0.0;
+        const auto v = run_phase_locked(net, bs, t_acc, c.steps_per_cycle, true, w_acc);
+        (void)run_phase_locked(net, bs, t_time, c.steps_per_cycle, false, w_time);
+        fmt::print("| {:.2f} MHz | {} | {:.3f} | {:.0f} | {:.2e} |\n", fc * 1e-6, c.steps_per_cycle, w_time / t_time,
+                   w_time / (t_time * fc) * 1e9, rel_rms(v, r, from));
+    }
+
+    fmt::print("\n## Cost against simulated length (1 MHz, N = {})\n\n", ch.steps_per_cycle);
+    fmt::print("| simulated | wall s | wall s per simulated s |\n|---|---:|---:|\n");
+    for (double len : {0.25 * t_time, t_time, 4.0 * t_time}) {
+        double w = 0.0;
+        (void)run_phase_locked(net, bs1, len, ch.steps_per_cycle, false, w);
+        fmt::print("| {:.3g} s | {:.3f} | {:.3f} |\n", len, w, w / len);
+    }
     return 0;
 }

@@ -232,6 +232,7 @@ cycle_integrator<Dim>::cycle_integrator(const one_junction_network<Dim>& net, do
                                        "cancels over a cycle)",
                                        s.steps_per_cycle));
     if (s.junction_theta != 0.0) detail::require_range("junction theta", s.junction_theta, 0.5, 1.0);
+    detail::require_range("max_batched_passes", static_cast<double>(s.max_batched_passes), 0.0, 100.0);
     detail::require_above("solver.newton_tolerance", s.newton_tolerance, 0.0, 1e-3);
     detail::require_above("voltage scale", s.voltage_scale_v, 0.0, 1e6, "V");
     m_period = 1.0 / carrier_hz;
@@ -260,9 +261,21 @@ cycle_integrator<Dim>::cycle_integrator(const one_junction_network<Dim>& net, do
 template <int Dim>
 void cycle_integrator<Dim>::initialize(double v0_v, const vec& y0, double u0_v)
 {
-    m_v0 = v0_v;
     m_y = y0;
     m_u[0] = u0_v;
+    if (!(m_net.junction.cj0_f > 0.0)) {
+        // No junction charge: v is not a state; take the value the constraint (u0 - v - c.y0)/R = i(v) gives.
+        const double drive = (u0_v - m_net.c.dot(y0)) * m_inv_r;
+        auto f = [&](double v) {
+            const junction_values r = m_net.junction.evaluate(v);
+            return std::pair{r.current_a + m_inv_r * v - drive, r.conductance_s + m_inv_r};
+        };
+        v0_v = solve_increasing(f, v0_v, std::max(1e-3, 0.1 * m_s.voltage_scale_v), m_stats.scalar_newton_iterations);
+        if (!std::isfinite(v0_v))
+            throw integration_error("the junction equation has no solution at t = 0; the diode parameters are probably far out of range",
+                                    0.0);
+    }
+    m_v0 = v0_v;
     const junction_values r = m_net.junction.evaluate(v0_v);
     m_cap[0] = r.capacitance_f;
     m_g[0] = r.conductance_s;
@@ -272,7 +285,9 @@ void cycle_integrator<Dim>::initialize(double v0_v, const vec& y0, double u0_v)
     m_yb[0] = m_net.c.dot(y0);
     m_ya[0] = m_ct_a.dot(y0);
     m_history = 0;
+    const std::size_t init_iterations = m_stats.scalar_newton_iterations;
     m_stats = {};
+    m_stats.scalar_newton_iterations = init_iterations;
 }
 
 template <int Dim>
@@ -410,7 +425,7 @@ void cycle_integrator<Dim>::advance(std::span<const double> u_v)
     m_ya[0] = m_ct_a.dot(m_y);
     // The linearised passes only write indices 1..n, so a failed attempt leaves the cycle's start intact
     // for the step-by-step solve.
-    if (!(m_history >= 1 && batched_cycle())) scalar_cycle();
+    if (!(m_history >= 1 && m_s.max_batched_passes > 0 && batched_cycle())) scalar_cycle();
     const auto last = static_cast<std::size_t>(n);
     if (!std::isfinite(m_v[last]) || !m_y.allFinite())
         throw integration_error(fmt::format("the solution became non-finite near t = {:.9g} s", time_s() + m_period),

@@ -337,6 +337,13 @@ phase_locked_source::phase_locked_source(const am_source& source, int n) : m_src
     m_env.assign(static_cast<std::size_t>(m_k) + 3, 0.0);
 }
 
+double phase_locked_source::envelope_at(long long j) const noexcept
+{
+    // Before t = 0 the envelope is continued by its value at 0: the simulation starts there, and a source
+    // switched on abruptly at t = 0 must not be smeared into the first cycle by the interpolation.
+    return m_src->envelope(j > 0 ? static_cast<double>(j) * m_env_dt : 0.0);
+}
+
 void phase_locked_source::cycle(std::size_t c, std::span<double> u)
 {
     if (static_cast<int>(u.size()) != m_n)
@@ -346,11 +353,10 @@ void phase_locked_source::cycle(std::size_t c, std::span<double> u)
         // Shift by one cycle: keep the last three samples, evaluate K new ones.
         std::copy(m_env.end() - 3, m_env.end(), m_env.begin());
         const long long j_next = static_cast<long long>(c) * k + 2;
-        for (long long i = 0; i < k; ++i) m_env[static_cast<std::size_t>(i) + 3] = m_src->envelope(static_cast<double>(j_next + i) * m_env_dt);
+        for (long long i = 0; i < k; ++i) m_env[static_cast<std::size_t>(i) + 3] = envelope_at(j_next + i);
     } else if (!(m_valid && c == m_cycle)) {
         const long long j0 = static_cast<long long>(c) * k - 1;
-        for (std::size_t i = 0; i < m_env.size(); ++i)
-            m_env[i] = m_src->envelope(static_cast<double>(j0 + static_cast<long long>(i)) * m_env_dt);
+        for (std::size_t i = 0; i < m_env.size(); ++i) m_env[i] = envelope_at(j0 + static_cast<long long>(i));
     }
     m_cycle = c;
     m_valid = true;

@@ -21,7 +21,9 @@ struct cycle_settings {
     /// below this fraction of `voltage_scale_v`; (0, 1e-3]
     double newton_tolerance = 1e-8;
     double voltage_scale_v = 1.0;   ///< scale of the junction voltage swing (the carrier peak), V; > 0
-    int max_batched_passes = 4;     ///< linearised passes over a cycle before the per-step safeguarded solve; >= 1
+    /// Linearised passes over a cycle before the per-step safeguarded solve; [0, 100]. 0 solves every cycle
+    /// step by step (slow: for checking the batched path).
+    int max_batched_passes = 4;
     /// Weight theta of the step end in the junction's charge equation, [0.5, 1]; 0 = junction_theta()
     /// (the trapezoidal 1/2). Other values are for experiments: they make the method first order.
     double junction_theta = 0.0;
@@ -74,7 +76,8 @@ public:
     /// Throws config_error for R <= 0, a carrier outside (0, 1e9] Hz or settings out of range.
     cycle_integrator(const one_junction_network<Dim>& net, double carrier_hz, const cycle_settings& s);
 
-    /// Sets the state at t = 0: junction voltage v0_v, network state y0 and the source voltage u0_v.
+    /// Sets the state at t = 0: junction voltage v0_v, network state y0 and the source voltage u0_v. Without
+    /// junction charge v is not a state: v0_v is then only the starting guess for the constraint's solution.
     void initialize(double v0_v, const vec& y0, double u0_v);
 
     /// Advances one carrier cycle. u_v holds the source voltage at the N step ends of the cycle, phases

@@ -191,6 +191,7 @@ public:
     [[nodiscard]] int envelope_samples_per_cycle() const noexcept { return m_k; }
 
 private:
+    [[nodiscard]] double envelope_at(long long j) const noexcept; // envelope at j T / K, continued before 0
     const am_source* m_src;
     int m_n;
     int m_k;
