@@ -4,7 +4,9 @@
 #include "galena/validate.hpp"
 
 #include <algorithm>
+#include <cerrno>
 #include <cmath>
+#include <cstring>
 #include <fmt/format.h>
 #include <fstream>
 #include <functional>
@@ -33,6 +35,21 @@ std::string source_of(const toml::node& n, const fs::path& file)
     return file.string();
 }
 
+/// The node as TOML text, one line, for messages ("big" quoted, arrays and tables inline; long text cut).
+std::string node_text(const toml::node& n)
+{
+    std::ostringstream os;
+    n.visit([&](const auto& v) {
+        if constexpr (toml::is_table<decltype(v)>) os << "{ table }";
+        else os << v;
+    });
+    std::string t = os.str();
+    for (char& c : t)
+        if (c == '\n' || c == '\r') c = ' ';
+    if (t.size() > 60) t = t.substr(0, 57) + "...";
+    return t;
+}
+
 double as_number(const toml::node& n, const std::string& field, const std::string& where)
 {
     if (auto v = n.value_exact<double>()) return *v;
@@ -45,20 +62,19 @@ double as_number(const toml::node& n, const std::string& field, const std::strin
         const double v = std::strtod(s->c_str(), &end);
         if (end != s->c_str() && *end == '\0') return v;
     }
-    throw config_error(fmt::format("{}: {} = {}: must be a number (SI units; inf allowed)", where, field,
-                                   n.is_string() ? fmt::format("\"{}\"", *n.value<std::string>()) : std::string("<non-number>")));
+    throw config_error(fmt::format("{}: {} = {}: must be a number (SI units; inf allowed)", where, field, node_text(n)));
 }
 
 std::string as_string(const toml::node& n, const std::string& field, const std::string& where)
 {
     if (auto s = n.value_exact<std::string>()) return *s;
-    throw config_error(fmt::format("{}: {}: must be a string", where, field));
+    throw config_error(fmt::format("{}: {} = {}: must be a string", where, field, node_text(n)));
 }
 
 bool as_bool(const toml::node& n, const std::string& field, const std::string& where)
 {
     if (auto b = n.value_exact<bool>()) return *b;
-    throw config_error(fmt::format("{}: {}: must be true or false", where, field));
+    throw config_error(fmt::format("{}: {} = {}: must be true or false", where, field, node_text(n)));
 }
 
 std::size_t edit_distance(std::string_view a, std::string_view b)
@@ -195,8 +211,10 @@ std::string nearest(std::string_view word, const std::vector<std::string>& candi
     return best_d <= std::max<std::size_t>(3, word.size() / 2) ? best : std::string();
 }
 
-void apply_overrides(toml::table& root, const std::vector<std::string>& overrides)
+/// Applies the overrides; returns, for each field set, the --set text that set it (for messages).
+std::map<std::string, std::string> apply_overrides(toml::table& root, const std::vector<std::string>& overrides)
 {
+    std::map<std::string, std::string> origin;
     for (const auto& o : overrides) {
         const auto eq = o.find('=');
         const auto dot = o.find('.');
@@ -205,6 +223,11 @@ void apply_overrides(toml::table& root, const std::vector<std::string>& override
         const std::string section = o.substr(0, dot);
         const std::string key = o.substr(dot + 1, eq - dot - 1);
         const std::string value = o.substr(eq + 1);
+        if (section.empty() || key.empty())
+            throw config_error(fmt::format("--set {}: must look like section.key=value", o));
+        origin[section + "." + key] = o;
+        if (root.contains(section) && !root[section].is_table())
+            throw config_error(fmt::format("--set {}: {} is not a section in the scenario file", o, section));
         toml::table* tab = root[section].as_table();
         if (tab == nullptr) {
             root.insert(section, toml::table{});
@@ -229,13 +252,25 @@ void apply_overrides(toml::table& root, const std::vector<std::string>& override
             tab->insert_or_assign(key, value); // a bare word: a string
         }
     }
+    return origin;
+}
+
+/// Where a field's value came from: "file:line", or "file (--set TEXT)" for an override.
+std::string origin_of(const toml::node& n, const std::string& field, const fs::path& file,
+                      const std::map<std::string, std::string>& overridden)
+{
+    if (auto it = overridden.find(field); it != overridden.end()) return fmt::format("{} (--set {})", file.string(), it->second);
+    return source_of(n, file);
 }
 
 /// Finds "file:line" for a dotted field name, for messages raised after parsing.
-std::string where_is(const toml::table& root, std::string_view field, const fs::path& file)
+std::string where_is(const toml::table& root, std::string_view field, const fs::path& file,
+                     const std::map<std::string, std::string>& overridden)
 {
     const auto dot = field.find('.');
     if (dot == std::string_view::npos) return file.string();
+    if (auto it = overridden.find(std::string(field)); it != overridden.end())
+        return fmt::format("{} (--set {})", file.string(), it->second);
     const toml::node* n = root.at_path(field).node();
     return n != nullptr ? source_of(*n, file) : file.string();
 }
@@ -250,13 +285,13 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
     } catch (const toml::parse_error& e) {
         throw config_error(fmt::format("{}:{}: malformed TOML: {}", file.string(), e.source().begin.line, e.description()));
     }
-    apply_overrides(root, overrides);
+    const auto overridden = apply_overrides(root, overrides);
 
     scenario s;
     s.file = file;
     // Preset first, so explicit diode fields override it.
     if (const toml::node* p = root.at_path("diode.preset").node()) {
-        const std::string w = source_of(*p, file);
+        const std::string w = origin_of(*p, "diode.preset", file, overridden);
         const std::string name = as_string(*p, "diode.preset", w);
         try {
             s.circuit.diode = find_diode_preset(name).params;
@@ -280,13 +315,14 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
                                            near.empty() ? "" : fmt::format(" (did you mean [{}]?)", near)));
         }
         const toml::table* tab = sec_node.as_table();
-        if (tab == nullptr) throw config_error(fmt::format("{}: {}: must be a table [{}]", w, sec, sec));
+        if (tab == nullptr)
+            throw config_error(fmt::format("{}: {} = {}: must be a section [{}], not a value", w, sec, node_text(sec_node), sec));
         std::vector<std::string> keys;
         for (const auto& [k, v] : it->second) keys.push_back(k);
         for (const auto& [key_name, node] : *tab) {
             const std::string key(key_name.str());
             const std::string field = sec + "." + key;
-            const std::string kw = source_of(node, file);
+            const std::string kw = origin_of(node, field, file, overridden);
             auto kt = it->second.find(key);
             if (kt == it->second.end()) {
                 const std::string near = nearest(key, keys);
@@ -341,7 +377,7 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
         const std::string msg = e.what();
         const auto sp = msg.find(' ');
         const std::string field = msg.substr(0, sp);
-        throw config_error(fmt::format("{}: {}", where_is(root, field, file), msg));
+        throw config_error(fmt::format("{}: {}", where_is(root, field, file, overridden), msg));
     }
     return s;
 }
@@ -351,7 +387,7 @@ scenario load_scenario(const fs::path& file, const std::vector<std::string>& ove
     std::error_code ec;
     if (fs::is_directory(file, ec)) throw config_error(fmt::format("{}: is a directory, not a scenario file", file.string()));
     std::ifstream in(file, std::ios::binary);
-    if (!in) throw config_error(fmt::format("{}: cannot open the scenario file", file.string()));
+    if (!in) throw config_error(fmt::format("{}: cannot open the scenario file: {}", file.string(), std::strerror(errno)));
     std::stringstream ss;
     ss << in.rdbuf();
     return parse_scenario(ss.str(), file, overrides);
@@ -367,9 +403,20 @@ std::unique_ptr<modulation> make_programme(const scenario& s)
         cs.max_duration_s = p.duration_s;
         auto reader = std::make_unique<wav_reader>(p.audio);
         if (p.audio_cutoff_hz > 0.45 * reader->sample_rate_hz())
-            throw config_error(fmt::format("{}: signal.audio_cutoff_hz = {}: must be at most 0.45 x the clip's sample rate ({} Hz)",
-                                           s.file.string(), p.audio_cutoff_hz, reader->sample_rate_hz()));
-        return std::make_unique<clip_modulation>(std::move(reader), cs);
+            throw config_error(fmt::format("{}: signal.audio_cutoff_hz = {}: must be at most 0.45 x the sample rate ({} Hz) of {}",
+                                           s.file.string(), detail::format_value(p.audio_cutoff_hz), reader->sample_rate_hz(),
+                                           p.audio.string()));
+        // The conditioning reads the whole clip once (peak, non-finite samples, truncation): name the file in
+        // what it reports unless the message already does.
+        const std::string name = p.audio.string();
+        auto named = [&](const std::string& msg) { return msg.rfind(name, 0) == 0 ? msg : name + ": " + msg; };
+        try {
+            return std::make_unique<clip_modulation>(std::move(reader), cs);
+        } catch (const audio_error& e) {
+            throw audio_error(named(e.what()));
+        } catch (const config_error& e) {
+            throw config_error(named(e.what()));
+        }
     }
     case programme_kind::tone: return std::make_unique<tone_modulation>(std::vector{p.tone_hz}, std::vector{1.0}, p.duration_s);
     case programme_kind::two_tone:
@@ -378,6 +425,15 @@ std::unique_ptr<modulation> make_programme(const scenario& s)
         return std::make_unique<log_sweep_modulation>(p.sweep_start_hz, p.sweep_stop_hz, p.duration_s);
     }
     throw config_error("unknown programme kind");
+}
+
+double programme_duration_s(const scenario& s)
+{
+    const auto& p = s.programme;
+    if (p.kind != programme_kind::clip) return p.duration_s;
+    const wav_reader r(p.audio);
+    const double whole = static_cast<double>(r.frames()) / r.sample_rate_hz();
+    return p.duration_s > 0.0 ? std::min(whole, p.duration_s) : whole;
 }
 
 namespace {

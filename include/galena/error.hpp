@@ -36,4 +36,16 @@ private:
     double m_time_s;
 };
 
+/// The work was stopped on request (Ctrl-C / SIGINT, SIGTERM, or a caller's cancel) before it finished.
+/// Every output it had started is removed before this reaches the caller.
+class cancelled_error : public error {
+public:
+    cancelled_error(const std::string& what, int signal_number) : error(what), m_signal(signal_number) {}
+    /// The signal that asked for the stop (SIGINT, SIGTERM), or 0 for a programmatic cancel.
+    [[nodiscard]] int signal_number() const noexcept { return m_signal; }
+
+private:
+    int m_signal;
+};
+
 } // namespace galena
