@@ -6,6 +6,7 @@
 #include <algorithm>
 #include <cerrno>
 #include <cmath>
+#include <cstdint>
 #include <cstring>
 #include <fmt/format.h>
 #include <fstream>
@@ -43,9 +44,7 @@ std::string node_text(const toml::node& n)
         if constexpr (toml::is_table<decltype(v)>) os << "{ table }";
         else os << v;
     });
-    std::string t = os.str();
-    for (char& c : t)
-        if (c == '\n' || c == '\r') c = ' ';
+    std::string t = detail::one_line(os.str());
     if (t.size() > 60) t = t.substr(0, 57) + "...";
     return t;
 }
@@ -211,6 +210,33 @@ std::string nearest(std::string_view word, const std::vector<std::string>& candi
     return best_d <= std::max<std::size_t>(3, word.size() / 2) ? best : std::string();
 }
 
+/// True for well-formed UTF-8 (no overlong forms, surrogates or code points above U+10FFFF).
+bool valid_utf8(std::string_view s)
+{
+    std::size_t i = 0;
+    while (i < s.size()) {
+        const auto c = static_cast<unsigned char>(s[i]);
+        std::size_t n = 0;
+        std::uint32_t cp = 0;
+        if (c < 0x80) { ++i; continue; }
+        if ((c & 0xE0) == 0xC0) { n = 1; cp = c & 0x1Fu; }
+        else if ((c & 0xF0) == 0xE0) { n = 2; cp = c & 0x0Fu; }
+        else if ((c & 0xF8) == 0xF0) { n = 3; cp = c & 0x07u; }
+        else return false;
+        if (i + n >= s.size()) return false;
+        for (std::size_t k = 1; k <= n; ++k) {
+            const auto d = static_cast<unsigned char>(s[i + k]);
+            if ((d & 0xC0) != 0x80) return false;
+            cp = (cp << 6) | (d & 0x3Fu);
+        }
+        if ((n == 1 && cp < 0x80) || (n == 2 && cp < 0x800) || (n == 3 && cp < 0x10000) || cp > 0x10FFFF ||
+            (cp >= 0xD800 && cp <= 0xDFFF))
+            return false;
+        i += n + 1;
+    }
+    return true;
+}
+
 /// Applies the overrides; returns, for each field set, the --set text that set it (for messages).
 std::map<std::string, std::string> apply_overrides(toml::table& root, const std::vector<std::string>& overrides)
 {
@@ -225,6 +251,7 @@ std::map<std::string, std::string> apply_overrides(toml::table& root, const std:
         const std::string value = o.substr(eq + 1);
         if (section.empty() || key.empty())
             throw config_error(fmt::format("--set {}: must look like section.key=value", o));
+        if (!valid_utf8(o)) throw config_error(fmt::format("--set {}: must be valid UTF-8 text", o));
         origin[section + "." + key] = o;
         if (root.contains(section) && !root[section].is_table())
             throw config_error(fmt::format("--set {}: {} is not a section in the scenario file", o, section));
@@ -283,7 +310,8 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
     try {
         root = toml::parse(text, file.string());
     } catch (const toml::parse_error& e) {
-        throw config_error(fmt::format("{}:{}: malformed TOML: {}", file.string(), e.source().begin.line, e.description()));
+        throw config_error(fmt::format("{}:{}: malformed TOML: {}", file.string(), e.source().begin.line,
+                                       detail::one_line(e.description())));
     }
     const auto overridden = apply_overrides(root, overrides);
 
@@ -437,6 +465,20 @@ double programme_duration_s(const scenario& s)
 }
 
 namespace {
+/// A TOML basic string: quotes, backslashes and control characters escaped.
+std::string toml_quote(std::string_view text)
+{
+    std::string o = "\"";
+    for (const char c : text) {
+        const auto u = static_cast<unsigned char>(c);
+        if (c == '"') o += "\\\"";
+        else if (c == '\\') o += "\\\\";
+        else if (u < 0x20 || u == 0x7f) o += fmt::format("\\u{:04x}", u);
+        else o += c;
+    }
+    return o + "\"";
+}
+
 std::string num(double v)
 {
     if (std::isinf(v)) return v > 0 ? "inf" : "-inf";
@@ -452,7 +494,7 @@ std::string to_toml(const scenario& s)
     const auto& e = s.circuit.earpiece;
     std::string o;
     o += "[signal]\n";
-    if (p.kind == programme_kind::clip) o += fmt::format("audio = \"{}\"\n", p.audio.string());
+    if (p.kind == programme_kind::clip) o += fmt::format("audio = {}\n", toml_quote(p.audio.string()));
     else o += fmt::format("test_signal = \"{}\"\n", p.kind == programme_kind::tone ? "tone" : p.kind == programme_kind::two_tone ? "two-tone" : "log-sweep");
     o += fmt::format("tone_hz = {}\ntone2_hz = {}\ntone_ratio = {}\nsweep_start_hz = {}\nsweep_stop_hz = {}\n", num(p.tone_hz),
                      num(p.tone2_hz), num(p.tone_ratio), num(p.sweep_start_hz), num(p.sweep_stop_hz));

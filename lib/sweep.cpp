@@ -4,6 +4,7 @@
 #include "galena/cancel.hpp"
 #include "galena/components.hpp"
 #include "galena/error.hpp"
+#include "galena/validate.hpp"
 
 #include <algorithm>
 #include <atomic>
@@ -207,7 +208,8 @@ pack_spec load_pack(const fs::path& file)
     try {
         root = toml::parse_file(file.string());
     } catch (const toml::parse_error& e) {
-        throw config_error(fmt::format("{}:{}: malformed TOML: {}", file.string(), e.source().begin.line, e.description()));
+        throw config_error(fmt::format("{}:{}: malformed TOML: {}", file.string(), e.source().begin.line,
+                                       detail::one_line(e.description())));
     }
     pack_spec p;
     p.file = file;
@@ -328,6 +330,12 @@ sweep_result prepare_sweep(const fs::path& base_file, const std::vector<std::str
     if (variants.empty()) throw config_error(fmt::format("{}: sweep: no variants to render", base_file.string()));
     if (variants.size() > sweep_hard_limit)
         throw config_error(fmt::format("{}: sweep: {} variants: must be at most {}", base_file.string(), variants.size(), sweep_hard_limit));
+    if (opt.measure_tone_hz != 0.0) {
+        if (!(opt.measure_tone_hz > 0.0 && opt.measure_tone_hz <= 20000.0))
+            throw config_error(fmt::format("--measure-tone = {}: must be 0 (off) or in (0, 20000] Hz", detail::format_value(opt.measure_tone_hz)));
+        if (!(opt.measure_duration_s > 0.0 && opt.measure_duration_s <= 10.0))
+            throw config_error(fmt::format("--measure-duration = {}: must be in (0, 10] s", detail::format_value(opt.measure_duration_s)));
+    }
     sweep_result res;
     res.variants.resize(variants.size());
     // Validate everything first: a bad key in variant 9 must not cost eight renders.
@@ -346,6 +354,8 @@ sweep_result prepare_sweep(const fs::path& base_file, const std::vector<std::str
         }
         r.measured_separately = opt.measure_tone_hz > 0.0 && r.scene.programme.kind == programme_kind::clip;
         if (r.measured_separately) {
+            detail::require_range("--measure-tone", opt.measure_tone_hz, 1.0, 0.45 * r.scene.render.audio_rate_hz,
+                                  "Hz (0.45 x output.sample_rate_hz)");
             r.measure_scene = r.scene;
             r.measure_scene.programme.kind = programme_kind::tone;
             r.measure_scene.programme.tone_hz = opt.measure_tone_hz;

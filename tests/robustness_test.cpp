@@ -571,6 +571,8 @@ TEST_CASE("sweeps: empty lists, no axes, and sizes above the confirmation limit 
     // 40 x 40: above the hard limit whatever the flags.
     expect_refused(galena_cli(base + "--allow-large --vary load.bleeder_ohm=log:1e3:1e6:40 --vary earpiece.capacitance_f=log:1e-9:1e-8:40", d / "f"),
                    2, {"--vary earpiece.capacitance_f", "1600 variants", "must hold at most 1000"}, d / "out", d);
+    expect_refused(galena_cli(base + "--vary load.bleeder_ohm=1e3,2e3 --measure-tone -5", d / "h"), 2,
+                   {"--measure-tone = -5", "must be 0 (off) or in (0, 20000] Hz"}, d / "out", d);
     // A variant with a bad value is named, and nothing is rendered.
     expect_refused(galena_cli(base + "--vary load.bleeder_ohm=1e3,-5", d / "g"), 2,
                    {"variant 02-bleeder_ohm--5", "load.bleeder_ohm = -5", "must be > 0"}, d / "out", d);

@@ -99,8 +99,8 @@ int main(int argc, char** argv)
     bool quiet = false;
     bool allow_long = false;
     bool allow_large = false;
-    const std::string long_help = "render more than the programme-time limit (README, \"Long inputs\")";
-    const std::string large_help = "render more variants than the sweep-size limit (README, \"Long inputs\")";
+    const std::string long_help = "render more than the programme-time limit (README, \"When something goes wrong\")";
+    const std::string large_help = "render more variants than the sweep-size limit (README, \"When something goes wrong\")";
     auto* render = app.add_subcommand("render", "render one scenario to DIR/recovered.wav");
     render->add_option("scenario", scenario_path, "scenario file (TOML)")->required();
     render->add_option("--out,-o", out_dir, "output directory")->required();
