@@ -1,5 +1,6 @@
 #include "galena/audio_io.hpp"
 
+#include "galena/cancel.hpp"
 #include "galena/error.hpp"
 #include "galena/validate.hpp"
 
@@ -127,6 +128,7 @@ wav_reader::~wav_reader()
 
 std::size_t wav_reader::read(std::span<float> out)
 {
+    throw_if_cancelled(); // a long clip's conditioning pass reads it all before the render starts
     const auto ch = static_cast<std::size_t>(m_info.channels);
     m_interleaved.resize(out.size() * ch);
     const sf_count_t got = sf_readf_float(static_cast<SNDFILE*>(m_file), m_interleaved.data(),

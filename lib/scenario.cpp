@@ -391,7 +391,9 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
         detail::require_above("output.full_scale_v", s.output.full_scale_v, 0.0, 1e4, "V");
         detail::require_range("solver.relative_tolerance", s.render.stepper.relative_tolerance, 1e-10, 1e-1);
         detail::require_above("solver.absolute_tolerance_v", s.render.stepper.absolute_tolerance_v, 0.0, 1.0, "V");
-        if (s.render.preroll_s >= 0.0) detail::require_range("solver.preroll_s", s.render.preroll_s, 1e-3, 100.0, "s");
+        // -1 (the default, written by to_toml) asks for the automatic preroll; any other value is a duration.
+        if (s.render.preroll_s != -1.0)
+            detail::require_range("solver.preroll_s", s.render.preroll_s, 1e-3, 100.0, "s, or -1 for the automatic preroll");
         detail::require_range("solver.dc_block_hz", s.render.dc_block_hz, 1e-3, 200.0, "Hz");
         detail::require_range("solver.carrier_steps_floor", s.render.carrier_steps_floor, 4.0, 1000.0);
         if (s.am.carrier_hz < 2.5 * nyq)

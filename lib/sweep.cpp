@@ -8,7 +8,11 @@
 
 #include <algorithm>
 #include <atomic>
+#include <cerrno>
 #include <cmath>
+#include <cstring>
+#include <fstream>
+#include <optional>
 #include <cstdlib>
 #include <exception>
 #include <fmt/format.h>
@@ -202,57 +206,110 @@ std::vector<variant_spec> expand_sweep(const std::vector<sweep_axis>& axes)
     return out;
 }
 
-pack_spec load_pack(const fs::path& file)
+namespace {
+std::string pack_where(const toml::node& n, const fs::path& file)
+{
+    const auto& src = n.source();
+    return src.begin.line > 0 ? fmt::format("{}:{}", file.string(), src.begin.line) : file.string();
+}
+
+std::string pack_string(const toml::table& t, const char* key, const std::string& field, const fs::path& file)
+{
+    const toml::node* n = t.get(key);
+    if (n == nullptr) return {};
+    if (auto v = n->value_exact<std::string>()) return *v;
+    throw config_error(fmt::format("{}: {}: must be a string", pack_where(*n, file), field));
+}
+
+std::optional<double> pack_number(const toml::table& t, const char* key, const std::string& field, const fs::path& file)
+{
+    const toml::node* n = t.get(key);
+    if (n == nullptr) return std::nullopt;
+    if (auto v = n->value_exact<double>()) return *v;
+    if (auto v = n->value_exact<int64_t>()) return static_cast<double>(*v);
+    throw config_error(fmt::format("{}: {}: must be a number", pack_where(*n, file), field));
+}
+} // namespace
+
+pack_spec parse_pack(const std::string& text, const fs::path& file)
 {
     toml::table root;
     try {
-        root = toml::parse_file(file.string());
+        root = toml::parse(text, file.string());
     } catch (const toml::parse_error& e) {
-        throw config_error(fmt::format("{}:{}: malformed TOML: {}", file.string(), e.source().begin.line,
-                                       detail::one_line(e.description())));
+        throw config_error(fmt::format("{}:{}: malformed TOML: {}", file.string(), e.source().begin.line, e.description()));
     }
     pack_spec p;
     p.file = file;
+    for (const auto& [k, v] : root) {
+        const std::string key(k.str());
+        if (key != "pack" && key != "variant")
+            throw config_error(fmt::format("{}: {}: unknown section (a pack file holds [pack] and [[variant]])", pack_where(v, file), key));
+    }
     const auto* pack = root["pack"].as_table();
-    if (pack == nullptr) throw config_error(fmt::format("{}: [pack]: missing section (needs pack.scenario)", file.string()));
+    if (pack == nullptr) throw config_error(fmt::format("{}: [pack]: missing section, or not a table (needs pack.scenario)", file.string()));
     for (const auto& [k, v] : *pack) {
         const std::string key(k.str());
         if (key != "title" && key != "scenario" && key != "measure_tone_hz" && key != "measure_duration_s")
             throw config_error(fmt::format("{}: pack.{}: unknown key (known: title, scenario, measure_tone_hz, measure_duration_s)",
-                                           file.string(), key));
+                                           pack_where(v, file), key));
     }
-    p.title = (*pack)["title"].value_or(std::string("galena comparison"));
-    const auto sc = (*pack)["scenario"].value<std::string>();
-    if (!sc) throw config_error(fmt::format("{}: pack.scenario: missing (the base scenario file)", file.string()));
-    p.scenario = fs::path(*sc).is_absolute() ? fs::path(*sc) : file.parent_path() / *sc;
-    p.measure_tone_hz = (*pack)["measure_tone_hz"].value_or(0.0);
-    p.measure_duration_s = (*pack)["measure_duration_s"].value_or(0.3);
+    p.title = pack_string(*pack, "title", "pack.title", file);
+    if (p.title.empty()) p.title = "galena comparison";
+    const std::string sc = pack_string(*pack, "scenario", "pack.scenario", file);
+    if (sc.empty()) throw config_error(fmt::format("{}: pack.scenario: missing (the base scenario file)", file.string()));
+    p.scenario = fs::path(sc).is_absolute() ? fs::path(sc) : file.parent_path() / sc;
+    p.measure_tone_hz = pack_number(*pack, "measure_tone_hz", "pack.measure_tone_hz", file).value_or(0.0);
+    p.measure_duration_s = pack_number(*pack, "measure_duration_s", "pack.measure_duration_s", file).value_or(0.3);
     if (!(p.measure_tone_hz >= 0.0) || p.measure_tone_hz > 20000.0)
-        throw config_error(fmt::format("{}: pack.measure_tone_hz = {}: must be 0 (off) or in (0, 20000] Hz", file.string(), p.measure_tone_hz));
+        throw config_error(fmt::format("{}: pack.measure_tone_hz = {}: must be 0 (off) or in (0, 20000] Hz",
+                                       pack_where(*pack->get("measure_tone_hz"), file), detail::format_value(p.measure_tone_hz)));
     if (!(p.measure_duration_s > 0.0) || p.measure_duration_s > 10.0)
-        throw config_error(fmt::format("{}: pack.measure_duration_s = {}: must be in (0, 10] s", file.string(), p.measure_duration_s));
+        throw config_error(fmt::format("{}: pack.measure_duration_s = {}: must be in (0, 10] s",
+                                       pack_where(*pack->get("measure_duration_s"), file), detail::format_value(p.measure_duration_s)));
     const auto* arr = root["variant"].as_array();
     if (arr == nullptr || arr->empty())
         throw config_error(fmt::format("{}: [[variant]]: at least one variant is needed", file.string()));
+    if (arr->size() > sweep_hard_limit)
+        throw config_error(fmt::format("{}: [[variant]]: {} variants: must be at most {}", file.string(), arr->size(), sweep_hard_limit));
     for (std::size_t i = 0; i < arr->size(); ++i) {
         const auto* t = (*arr)[i].as_table();
-        const std::string where = fmt::format("{}: variant {}", file.string(), i + 1);
+        const std::string where = fmt::format("{}: variant {}", pack_where((*arr)[i], file), i + 1);
         if (t == nullptr) throw config_error(where + ": must be a table [[variant]]");
+        for (const auto& [k, v] : *t) {
+            const std::string key(k.str());
+            if (key != "name" && key != "label" && key != "set")
+                throw config_error(fmt::format("{}: variant {}: {}: unknown key (known: name, label, set)", pack_where(v, file), i + 1, key));
+        }
         variant_spec v;
-        v.name = (*t)["name"].value_or(std::string());
+        v.name = pack_string(*t, "name", "name", file);
         if (!name_ok(v.name))
             throw config_error(fmt::format("{}: name = \"{}\": needs letters, digits, '-', '_' or '.' only", where, v.name));
-        v.label = (*t)["label"].value_or(v.name);
-        if (const auto* set = (*t)["set"].as_array()) {
-            for (const auto& e : *set) {
-                const auto s = e.value<std::string>();
-                if (!s) throw config_error(where + ": set: must be a list of strings \"section.key=value\"");
+        v.label = pack_string(*t, "label", "label", file);
+        if (v.label.empty()) v.label = v.name;
+        if (const toml::node* set = t->get("set")) {
+            const auto* list = set->as_array();
+            if (list == nullptr) throw config_error(fmt::format("{}: variant {}: set: must be a list of strings \"section.key=value\"", pack_where(*set, file), i + 1));
+            for (const auto& e : *list) {
+                const auto s = e.value_exact<std::string>();
+                if (!s) throw config_error(fmt::format("{}: variant {}: set: must be a list of strings \"section.key=value\"", pack_where(e, file), i + 1));
                 v.overrides.push_back(*s);
             }
         }
         p.variants.push_back(std::move(v));
     }
     return p;
+}
+
+pack_spec load_pack(const fs::path& file)
+{
+    std::error_code ec;
+    if (fs::is_directory(file, ec)) throw config_error(fmt::format("{}: is a directory, not a pack or scenario file", file.string()));
+    std::ifstream in(file, std::ios::binary);
+    if (!in) throw config_error(fmt::format("{}: cannot open the pack file: {}", file.string(), std::strerror(errno)));
+    std::stringstream ss;
+    ss << in.rdbuf();
+    return parse_pack(ss.str(), file);
 }
 
 fs::path find_bundled_file(const fs::path& relative, const fs::path& executable, const fs::path& installed_data_dir)

@@ -309,6 +309,8 @@ TEST_CASE("scenario: frequencies, sample rates, durations and solver settings ou
                     {"signal.duration_s = 0", "a test signal needs a duration > 0 s"});
     refuse_scenario("zero-rtol", quick_scenario(), "--set solver.relative_tolerance=0", 2,
                     {"solver.relative_tolerance = 0", "must be in [1e-10, 0.1]"});
+    refuse_scenario("negative-preroll", quick_scenario(), "--set solver.preroll_s=-5", 2,
+                    {"solver.preroll_s = -5", "must be in [0.001, 100] s, or -1 for the automatic preroll"});
     refuse_scenario("negative-full-scale", quick_scenario(), "--set output.full_scale_v=-2", 2,
                     {"output.full_scale_v = -2", "must be > 0 and <= 10000 V"});
 }
@@ -340,6 +342,31 @@ TEST_CASE("scenario files that are missing, directories or the wrong thing")
     expect_refused(r, 2, {d.string(), "is a directory, not a scenario file"}, d / "out", d);
     r = galena_cli("render " + q(src_dir / "audio-samples/tone-1khz.wav") + " --out " + q(d / "out") + " -q", d / "c");
     expect_refused(r, 2, {"tone-1khz.wav:", "malformed TOML"}, d / "out", d);
+}
+
+TEST_CASE("pack files: unknown sections and keys, wrong types and bad values name the file and line")
+{
+    const fs::path d = fresh("pack-files");
+    write_file(d / "base.toml", quick_scenario());
+    auto refuse_pack = [&](const std::string& name, const std::string& text, std::initializer_list<std::string> needles) {
+        CAPTURE(name);
+        write_file(d / (name + ".toml"), text);
+        const auto r = galena_cli("compare " + q(d / (name + ".toml")) + " --out " + q(d / "out") + " -q", d / ("run-" + name));
+        expect_refused(r, 2, needles, d / "out", d);
+    };
+    const std::string head = "[pack]\nscenario = \"base.toml\"\n";
+    refuse_pack("no-variants", head, {"no-variants.toml: [[variant]]: at least one variant is needed"});
+    refuse_pack("variant-key", head + "[[variant]]\nname = \"a\"\nsett = [\"load.bleeder_ohm=1e3\"]\n",
+                {"variant-key.toml:5: variant 1: sett: unknown key (known: name, label, set)"});
+    refuse_pack("set-type", head + "[[variant]]\nname = \"a\"\nset = \"load.bleeder_ohm=1e3\"\n",
+                {"set-type.toml:5: variant 1: set: must be a list of strings"});
+    refuse_pack("tone-type", head + "measure_tone_hz = \"loud\"\n[[variant]]\nname = \"a\"\n", {"tone-type.toml:3: pack.measure_tone_hz: must be a number"});
+    refuse_pack("tone-range", head + "measure_tone_hz = -1\n[[variant]]\nname = \"a\"\n",
+                {"tone-range.toml:3: pack.measure_tone_hz = -1: must be 0 (off) or in (0, 20000] Hz"});
+    refuse_pack("bad-name", head + "[[variant]]\nname = \"a/b\"\n", {"bad-name.toml:3: variant 1: name = \"a/b\"", "letters, digits"});
+    refuse_pack("section", head + "[varient]\nname = \"a\"\n", {"section.toml:3: varient: unknown section"});
+    refuse_pack("variant-value", head + "[[variant]]\nname = \"a\"\nset = [\"load.bleeder_ohm=-1\"]\n",
+                {"variant a:", "(--set load.bleeder_ohm=-1)", "load.bleeder_ohm = -1", "must be > 0"});
 }
 
 TEST_CASE("command line: unknown options and missing arguments cost one line (exit 2)")
@@ -642,6 +669,26 @@ TEST_CASE("SIGTERM during a sweep stops every variant: exit 143, no table, no va
     CHECK(err.rfind("galena: error: interrupted by SIGTERM", 0) == 0);
     CHECK(std::count(err.begin(), err.end(), '\n') == 1);
     CHECK_FALSE(fs::exists(d / "out"));
+    CHECK(leftovers(d).empty());
+}
+
+TEST_CASE("Ctrl-C during a comparison pack leaves no pack: no page, no playlist, no variant folder")
+{
+    const fs::path d = fresh("sigint-pack");
+    const fs::path scen = d / "scene.toml";
+    write_file(scen, quick_scenario());
+    const auto s = spawn_galena({"compare", scen.string(), "--out", (d / "pack").string(), "--set", "signal.duration_s=30", "--variant",
+                                 "a:load.bleeder_ohm=1e4", "--variant", "b:load.bleeder_ohm=1e5", "--threads", "2", "-q"},
+                                d / "run");
+    const bool running = wait_for_file(s, d, ".recovered.unclipped.wav", 4096);
+    const int rc = signal_and_wait(s, SIGINT);
+    REQUIRE(running);
+    const std::string err = slurp(s.err_file);
+    INFO("stderr: " << err);
+    CHECK(rc == 130);
+    CHECK(err.rfind("galena: error: interrupted by SIGINT (Ctrl-C)", 0) == 0);
+    CHECK(std::count(err.begin(), err.end(), '\n') == 1);
+    CHECK_FALSE(fs::exists(d / "pack"));
     CHECK(leftovers(d).empty());
 }
 

@@ -72,8 +72,11 @@ struct pack_spec {
     std::vector<variant_spec> variants;
 };
 
-/// Reads a pack file. Throws config_error "FILE: field: rule".
+/// Reads a pack file. Throws config_error "FILE:LINE: field: rule" (unknown sections and keys, wrong
+/// types and out-of-range values included).
 [[nodiscard]] pack_spec load_pack(const std::filesystem::path& file);
+/// Parses pack text (file is used in messages and to resolve the scenario path). Throws as load_pack.
+[[nodiscard]] pack_spec parse_pack(const std::string& text, const std::filesystem::path& file);
 
 /// Finds a bundled file (e.g. "scenarios/demo-pack.toml") for the demo: under $GALENA_DATA_DIR, then in
 /// the folders above `executable` (a build tree inside the source tree), then above the current

@@ -1,10 +1,12 @@
-// libFuzzer harness for the scenario contract: TOML text plus command-line overrides.
+// libFuzzer harness for the scenario contract: TOML text plus command-line overrides (and the same text as
+// a comparison-pack file).
 // Input: scenario text; lines that start with "@set " are taken out and passed as --set overrides.
 // Properties checked: every rejection is a galena::error with a one-line, non-empty message that names
 // the file; anything else escaping (std::exception, a crash, a sanitizer report) is a finding. A scenario
 // that parses renders to TOML that parses again to the same text (to_toml round trip).
 #include "galena/error.hpp"
 #include "galena/scenario.hpp"
+#include "galena/sweep.hpp"
 
 #include <cstddef>
 #include <cstdint>
@@ -42,6 +44,12 @@ extern "C" int LLVMFuzzerTestOneInput(const std::uint8_t* data, std::size_t size
         else text += line + "\n";
         if (nl == std::string::npos) break;
         at = nl + 1;
+    }
+    try {
+        const galena::pack_spec p = galena::parse_pack(text, "fuzz-pack.toml");
+        require(!p.variants.empty() && !p.scenario.empty(), "accepted pack without variants or scenario", text);
+    } catch (const galena::error& e) {
+        check_message(e);
     }
     galena::scenario s;
     try {
