@@ -107,6 +107,7 @@ const std::map<std::string, std::map<std::string, setter>>& key_table()
          {
              {"audio", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
                   s.programme.audio = as_string(n, f, w);
+                  if (s.programme.audio.empty()) throw config_error(fmt::format("{}: {} = \"\": must name an audio file", w, f));
                   s.programme.kind = programme_kind::clip;
               }},
              {"tone_hz", number_into([](scenario& s) -> double& { return s.programme.tone_hz; })},
@@ -269,7 +270,11 @@ std::map<std::string, std::string> apply_overrides(toml::table& root, const std:
                 if (auto str = parsed["v"].value<std::string>()) path = *str;
             } catch (const toml::parse_error&) {
             }
-            tab->insert_or_assign(key, fs::absolute(fs::path(path)).string());
+            if (path.empty()) throw config_error(fmt::format("--set {}: signal.audio: the clip path is empty", o));
+            std::error_code ec;
+            const fs::path abs = fs::absolute(fs::path(path), ec);
+            if (ec) throw config_error(fmt::format("--set {}: signal.audio: cannot resolve the path: {}", o, ec.message()));
+            tab->insert_or_assign(key, abs.string());
             continue;
         }
         try {

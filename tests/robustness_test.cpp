@@ -226,6 +226,8 @@ TEST_CASE("scenario: unknown sections and keys are named, with the nearest valid
     refuse_scenario("set-key", quick_scenario(), "--set load.bleder_ohm=1e3", 2,
                     {"set-key.toml (--set load.bleder_ohm=1e3)", "load.bleder_ohm", "unknown key", "did you mean load.bleeder_ohm?"});
     refuse_scenario("set-form", quick_scenario(), "--set bleeder=1e3", 2, {"--set bleeder=1e3", "must look like section.key=value"});
+    refuse_scenario("set-empty-audio", quick_scenario(), "--set signal.audio=", 2, {"--set signal.audio=", "the clip path is empty"});
+    refuse_scenario("empty-audio", quick_scenario("audio = \"\"\n"), "", 2, {"empty-audio.toml:8: signal.audio = \"\": must name an audio file"});
 }
 
 TEST_CASE("scenario: wrong types name the field, the value given and the type wanted")
