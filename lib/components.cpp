@@ -14,8 +14,6 @@ using detail::require_range;
 
 namespace {
 constexpr double inf = std::numeric_limits<double>::infinity();
-/// Beyond this many n*Vt the junction exponential is continued linearly (overflow guard for Newton).
-constexpr double exp_linear_above = 80.0;
 /// SPICE forward-bias depletion-capacitance coefficient Fc.
 constexpr double depletion_fc = 0.5;
 } // namespace
@@ -138,75 +136,26 @@ const diode_preset& find_diode_preset(std::string_view name)
 diode_model::diode_model(const diode_params& p) : m_params(p)
 {
     p.validate();
-    m_is = p.saturation_current_at_temperature();
     m_nvt = p.emission_coefficient * p.thermal_voltage();
-    m_inv_nvt = 1.0 / m_nvt;
-    m_leak_s = conductance_s(p.leakage_resistance_ohm);
-    m_breakdown = std::isfinite(p.breakdown_voltage_v);
-    m_bv = p.breakdown_voltage_v;
-    m_ibv = p.breakdown_current_a;
-    m_fc_v = depletion_fc * p.junction_potential_v;
-    // Linear continuation of Cj above Fc*Vj (SPICE): C(v) = Cj0 (1-Fc)^-(1+M) (1 - Fc(1+M) + M v / Vj).
+    junction_law& l = m_law;
+    l.saturation_current_a = p.saturation_current_at_temperature();
+    l.inv_emission_voltage = 1.0 / m_nvt;
+    l.leakage_s = conductance_s(p.leakage_resistance_ohm);
+    l.breakdown = std::isfinite(p.breakdown_voltage_v);
+    l.breakdown_voltage_v = l.breakdown ? p.breakdown_voltage_v : 0.0;
+    l.breakdown_current_a = p.breakdown_current_a;
+    l.cj0_f = p.junction_capacitance_f;
+    l.junction_potential_v = p.junction_potential_v;
     const double m = p.grading_coefficient;
+    l.grading = m;
+    l.square_root_grading = m == 0.5;
+    l.fc_v = depletion_fc * p.junction_potential_v;
+    // Linear continuation of Cj above Fc*Vj (SPICE): C(v) = Cj0 (1-Fc)^-(1+M) (1 - Fc(1+M) + M v / Vj).
     const double f2 = std::pow(1.0 - depletion_fc, -(1.0 + m));
-    m_cj_lin_a = p.junction_capacitance_f * f2 * (1.0 - depletion_fc * (1.0 + m));
-    m_cj_lin_b = p.junction_capacitance_f * f2 * m / p.junction_potential_v;
-}
-
-junction_point diode_model::junction(double v) const noexcept
-{
-    const double x = v * m_inv_nvt;
-    double e;
-    double de;
-    if (x <= exp_linear_above) {
-        e = std::exp(x);
-        de = e;
-    } else {
-        const double e0 = std::exp(exp_linear_above);
-        e = e0 * (1.0 + x - exp_linear_above);
-        de = e0;
-    }
-    double i = m_is * (e - 1.0) + m_leak_s * v;
-    double g = m_is * de * m_inv_nvt + m_leak_s;
-    if (m_breakdown) {
-        const double xb = -(v + m_bv) * m_inv_nvt;
-        double eb;
-        double deb;
-        if (xb <= exp_linear_above) {
-            eb = std::exp(xb);
-            deb = eb;
-        } else {
-            const double e0 = std::exp(exp_linear_above);
-            eb = e0 * (1.0 + xb - exp_linear_above);
-            deb = e0;
-        }
-        i -= m_ibv * eb;
-        g += m_ibv * deb * m_inv_nvt;
-    }
-    return {i, g};
-}
-
-double diode_model::capacitance_f(double v) const noexcept
-{
-    const double cj0 = m_params.junction_capacitance_f;
-    if (cj0 == 0.0) return 0.0;
-    if (v < m_fc_v) return cj0 * std::pow(1.0 - v / m_params.junction_potential_v, -m_params.grading_coefficient);
-    return m_cj_lin_a + m_cj_lin_b * v;
-}
-
-std::pair<double, double> diode_model::capacitance_and_slope(double v) const noexcept
-{
-    const double cj0 = m_params.junction_capacitance_f;
-    if (cj0 == 0.0) return {0.0, 0.0};
-    if (v < m_fc_v) {
-        const double vj = m_params.junction_potential_v;
-        const double base = 1.0 - v / vj;
-        // M = 1/2 (abrupt junction, the presets' value) is a square root: much cheaper than pow().
-        const double c = m_params.grading_coefficient == 0.5 ? cj0 / std::sqrt(base)
-                                                             : cj0 * std::pow(base, -m_params.grading_coefficient);
-        return {c, c * m_params.grading_coefficient / (vj - v)};
-    }
-    return {m_cj_lin_a + m_cj_lin_b * v, m_cj_lin_b};
+    l.linear_a_f = p.junction_capacitance_f * f2 * (1.0 - depletion_fc * (1.0 + m));
+    l.linear_b_f_per_v = p.junction_capacitance_f * f2 * m / p.junction_potential_v;
+    l.charge_at_fc_c = p.junction_capacitance_f * p.junction_potential_v / (1.0 - m) *
+                       (1.0 - std::pow(1.0 - depletion_fc, 1.0 - m));
 }
 
 std::string_view to_string(earpiece_kind k) noexcept

@@ -7,6 +7,7 @@
 #include <algorithm>
 #include <cassert>
 #include <cmath>
+#include <fmt/format.h>
 
 namespace galena {
 
@@ -163,6 +164,81 @@ void box_sampler::add_segment(double t0, double t1, double p0, double p1, double
         m_accum = 0.0;
         ++m_count;
         a = bin_end;
+    }
+}
+
+namespace {
+constexpr double table_per_input = 1024.0;
+} // namespace
+
+sinc_resampler::sinc_resampler(double in_rate, double in_t0, double out_rate, double out_t0, double pass_hz, double stop_hz,
+                               double attenuation_db)
+    : m_in_rate(in_rate), m_p0((out_t0 - in_t0) * in_rate), m_ratio(in_rate / out_rate)
+{
+    detail::require_above("resampler input_rate_hz", in_rate, 0.0, 1e12, "Hz");
+    detail::require_above("resampler output_rate_hz", out_rate, 0.0, 1e12, "Hz");
+    detail::require_above("resampler pass_hz", pass_hz, 0.0, stop_hz, "Hz");
+    detail::require_range("resampler attenuation_db", attenuation_db, 21.0, 200.0, "dB");
+    // Kaiser's length estimate in seconds, L = (A - 8) / (2.285 * 2 pi * transition).
+    const double length_s = (attenuation_db - 8.0) / (2.285 * two_pi * (stop_hz - pass_hz));
+    m_half_in = 0.5 * length_s * in_rate;
+    if (m_half_in > 1e5)
+        throw config_error(fmt::format("resampler: the kernel would span {:.3g} inputs; the transition band is too narrow "
+                                       "for the input rate",
+                                       2.0 * m_half_in));
+    const double cutoff_hz = 0.5 * (pass_hz + stop_hz);
+    const double beta = kaiser_beta(attenuation_db);
+    const double i0b = std::cyl_bessel_i(0.0, beta);
+    const auto size = static_cast<std::size_t>(std::ceil(m_half_in * table_per_input)) + 2;
+    m_table.resize(size);
+    for (std::size_t k = 0; k < size; ++k) {
+        const double d = static_cast<double>(k) / table_per_input; // input spacings
+        const double t = d / in_rate;                             // s
+        const double r = d / m_half_in;
+        const double w = r < 1.0 ? std::cyl_bessel_i(0.0, beta * std::sqrt(1.0 - r * r)) / i0b : 0.0;
+        const double x = two_pi * cutoff_hz * t;
+        m_table[k] = (k == 0 ? 1.0 : std::sin(x) / x) * w;
+    }
+}
+
+double sinc_resampler::kernel(double d_in) const noexcept
+{
+    const double pos = std::fabs(d_in) * table_per_input;
+    const auto k = static_cast<std::size_t>(pos);
+    if (k + 1 >= m_table.size()) return 0.0;
+    const double f = pos - static_cast<double>(k);
+    return m_table[k] + f * (m_table[k + 1] - m_table[k]);
+}
+
+void sinc_resampler::push(double x, std::vector<double>& out)
+{
+    if (m_pushed == 0) m_first_value = x;
+    m_buf.push_back(x);
+    ++m_pushed;
+    const double newest = static_cast<double>(m_pushed - 1);
+    while (true) {
+        // Position of output m_next_out in input-sample units (derived from its index, never accumulated).
+        const double p = m_p0 + static_cast<double>(m_next_out) * m_ratio;
+        if (p + m_half_in > newest) break;
+        const auto lo = static_cast<long long>(std::ceil(p - m_half_in));
+        const auto hi = static_cast<long long>(std::floor(p + m_half_in));
+        double acc = 0.0;
+        double wsum = 0.0;
+        for (long long i = lo; i <= hi; ++i) {
+            const double w = kernel(p - static_cast<double>(i));
+            const double xi = i < m_buf_first ? m_first_value : m_buf[static_cast<std::size_t>(i - m_buf_first)];
+            acc += w * xi;
+            wsum += w;
+        }
+        out.push_back(acc / wsum);
+        ++m_next_out;
+        // Drop inputs no later output can reach (keep the buffer bounded).
+        const auto keep_from = static_cast<long long>(std::floor(m_p0 + static_cast<double>(m_next_out) * m_ratio - m_half_in)) - 1;
+        if (keep_from - m_buf_first > 4096) {
+            const auto drop = static_cast<std::size_t>(keep_from - m_buf_first);
+            m_buf.erase(m_buf.begin(), m_buf.begin() + static_cast<std::ptrdiff_t>(drop));
+            m_buf_first = keep_from;
+        }
     }
 }
 

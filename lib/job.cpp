@@ -263,6 +263,11 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
     j["steps_accepted"] = o.render.stats.accepted;
     j["steps_rejected"] = o.render.stats.rejected_error + o.render.stats.rejected_newton;
     j["newton_iterations"] = o.render.stats.newton_iterations;
+    j["solver_method"] = std::string(to_string(o.render.method));
+    j["steps_per_cycle"] = o.render.steps_per_cycle;
+    j["estimated_dc_error"] = o.render.estimated_dc_error;
+    j["linearised_passes"] = o.render.cycles.batched_passes;
+    j["step_by_step_cycles"] = o.render.cycles.scalar_cycles;
     j["warnings"] = o.warnings;
     write_text_atomic(o.sidecar, j.dump(2) + "\n");
     write_text_atomic(o.metrics_file, o.metrics.dump(2) + "\n");

@@ -5,10 +5,15 @@
 
 #include <Eigen/Dense>
 #include <boost/math/tools/minima.hpp>
+// FFTW behind Eigen's FFT interface: O(N log N) at every length (kissfft's generic butterfly is O(N p) for a
+// large prime factor p of N, and analysis windows have arbitrary lengths). FFTW_ESTIMATE plans are
+// deterministic.
+#define EIGEN_FFTW_DEFAULT
 #include <unsupported/Eigen/FFT>
 
 #include <algorithm>
 #include <cmath>
+#include <mutex>
 #include <complex>
 #include <fmt/format.h>
 #include <limits>
@@ -35,12 +40,21 @@ void check_band(double lo, double hi, double fs, const char* fn)
             fmt::format("{}: band [{}, {}] Hz: need 0 <= low < high <= fs/2 = {} Hz", fn, lo, hi, 0.5 * fs));
 }
 
+/// FFTW's planner (plan creation and destruction, which Eigen::FFT does in each call) is not thread-safe;
+/// sweeps measure on several threads.
+std::mutex& fft_mutex()
+{
+    static std::mutex m;
+    return m;
+}
+
 cvec forward_fft(std::span<const double> x, std::size_t padded = 0)
 {
     const std::size_t n = std::max(padded, x.size());
     cvec in(n, {0.0, 0.0});
     for (std::size_t i = 0; i < x.size(); ++i) in[i] = x[i];
     cvec out;
+    const std::lock_guard lock(fft_mutex());
     Eigen::FFT<double> fft;
     fft.fwd(out, in);
     return out;
@@ -49,6 +63,7 @@ cvec forward_fft(std::span<const double> x, std::size_t padded = 0)
 cvec inverse_fft(const cvec& x)
 {
     cvec out;
+    const std::lock_guard lock(fft_mutex());
     Eigen::FFT<double> fft; // scaled by 1/N by default
     fft.inv(out, x);
     return out;

@@ -192,6 +192,22 @@ const std::map<std::string, std::map<std::string, setter>>& key_table()
              {"preroll_s", number_into([](scenario& s) -> double& { return s.render.preroll_s; })},
              {"dc_block_hz", number_into([](scenario& s) -> double& { return s.render.dc_block_hz; })},
              {"carrier_steps_floor", number_into([](scenario& s) -> double& { return s.render.carrier_steps_floor; })},
+             {"method", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
+                  try {
+                      s.render.method = parse_solver_method(as_string(n, f, w));
+                  } catch (const config_error& e) {
+                      throw config_error(fmt::format("{}: {}", w, e.what()));
+                  }
+              }},
+             {"steps_per_cycle", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
+                  const double v = as_number(n, f, w);
+                  if (!(v == 0.0 || (v >= 8.0 && v <= 4096.0 && std::floor(v) == v && std::fmod(v, 2.0) == 0.0)))
+                      throw config_error(fmt::format("{}: {} = {}: must be 0 (automatic) or an even whole number in [8, 4096]", w,
+                                                     f, detail::format_value(v)));
+                  s.render.steps_per_cycle = static_cast<int>(v);
+              }},
+             {"dc_tolerance", number_into([](scenario& s) -> double& { return s.render.dc_tolerance; })},
+             {"newton_tolerance", number_into([](scenario& s) -> double& { return s.render.newton_tolerance; })},
          }},
     };
     return t;
@@ -401,6 +417,8 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
             detail::require_range("solver.preroll_s", s.render.preroll_s, 1e-3, 100.0, "s, or -1 for the automatic preroll");
         detail::require_range("solver.dc_block_hz", s.render.dc_block_hz, 1e-3, 200.0, "Hz");
         detail::require_range("solver.carrier_steps_floor", s.render.carrier_steps_floor, 4.0, 1000.0);
+        detail::require_above("solver.dc_tolerance", s.render.dc_tolerance, 0.0, 0.1);
+        detail::require_above("solver.newton_tolerance", s.render.newton_tolerance, 0.0, 1e-3);
         if (s.am.carrier_hz < 2.5 * nyq)
             throw config_error(fmt::format("signal.carrier_hz = {}: must be at least 2.5 x the audio Nyquist frequency "
                                            "({} Hz) so the sidebands stay clear of DC and the audio band",
@@ -527,7 +545,9 @@ std::string to_toml(const scenario& s)
                      num(e.loss_resistance_ohm));
     o += fmt::format("\n[output]\nsample_rate_hz = {}\nformat = \"{}\"\nfull_scale_v = {}\n", num(s.render.audio_rate_hz),
                      to_string(s.output.format), num(s.output.full_scale_v));
-    o += fmt::format("\n[solver]\nrelative_tolerance = {}\nabsolute_tolerance_v = {}\npreroll_s = {}\ndc_block_hz = {}\ncarrier_steps_floor = {}\n",
+    o += fmt::format("\n[solver]\nmethod = \"{}\"\nsteps_per_cycle = {}\ndc_tolerance = {}\nnewton_tolerance = {}\n"
+                     "relative_tolerance = {}\nabsolute_tolerance_v = {}\npreroll_s = {}\ndc_block_hz = {}\ncarrier_steps_floor = {}\n",
+                     to_string(s.render.method), s.render.steps_per_cycle, num(s.render.dc_tolerance), num(s.render.newton_tolerance),
                      num(s.render.stepper.relative_tolerance), num(s.render.stepper.absolute_tolerance_v),
                      num(s.render.preroll_s), num(s.render.dc_block_hz), num(s.render.carrier_steps_floor));
     return o;

@@ -40,6 +40,11 @@ double tone_modulation::value(double t) const noexcept
     return x;
 }
 
+double tone_modulation::max_frequency_hz() const noexcept
+{
+    return *std::max_element(m_frequencies_hz.begin(), m_frequencies_hz.end());
+}
+
 stepped_tone_modulation::stepped_tone_modulation(std::vector<double> f, double dwell_s)
     : m_frequencies_hz(std::move(f)), m_dwell_s(dwell_s)
 {
@@ -51,6 +56,12 @@ stepped_tone_modulation::stepped_tone_modulation(std::vector<double> f, double d
 double stepped_tone_modulation::duration_s() const noexcept
 {
     return m_dwell_s * static_cast<double>(m_frequencies_hz.size());
+}
+
+double stepped_tone_modulation::max_frequency_hz() const noexcept
+{
+    // The highest tone; the 2 ms raised-cosine crossfades add nothing above a few hundred hertz.
+    return *std::max_element(m_frequencies_hz.begin(), m_frequencies_hz.end());
 }
 
 double stepped_tone_modulation::value(double t) const noexcept
@@ -195,6 +206,7 @@ clip_modulation::clip_modulation(std::unique_ptr<sample_reader> reader, const co
     require_range("signal.audio_cutoff_hz", s.cutoff_hz, 100.0, 0.45 * in_rate, "Hz (at most 0.45 x the clip's sample rate)");
     require_range("signal.duration_s", s.max_duration_s, 0.0, 1e6, "s");
     m_rate_hz = s.internal_rate_hz > 0.0 ? s.internal_rate_hz : std::max(192000.0, 16.0 * s.cutoff_hz);
+    m_cutoff_hz = s.cutoff_hz;
     std::size_t frames = reader->frames();
     if (s.max_duration_s > 0.0) frames = std::min(frames, static_cast<std::size_t>(std::llround(s.max_duration_s * in_rate)));
     if (frames == 0) throw audio_error("audio clip has no samples");
@@ -290,6 +302,64 @@ double am_source::voltage(double t) const noexcept
     return envelope(t) * std::cos(two_pi * (cycles - std::floor(cycles)));
 }
 
+double am_source::modulation_max_frequency_hz() const noexcept
+{
+    return m_x != nullptr ? m_x->max_frequency_hz() : 0.0;
+}
+
 double am_source::end_s() const noexcept { return m_p.preroll_s + (m_x != nullptr ? m_x->duration_s() : 0.0); }
+
+phase_locked_source::phase_locked_source(const am_source& source, int n) : m_src(&source), m_n(n)
+{
+    if (n < 2) throw config_error(fmt::format("phase_locked_source: {} steps per cycle; at least 2", n));
+    const double fc = source.params().carrier_hz;
+    const double f_max = source.modulation_max_frequency_hz();
+    m_k = std::clamp(static_cast<int>(std::ceil(two_pi * f_max / fc / 0.05)), 1, 64);
+    m_env_dt = 1.0 / (fc * m_k);
+    m_sub_first.assign(static_cast<std::size_t>(m_k) + 1, n);
+    for (auto* w : {&m_w0, &m_w1, &m_w2, &m_w3}) w->assign(static_cast<std::size_t>(n), 0.0);
+    for (int k = n; k >= 1; --k) {
+        const double pos = static_cast<double>(k) * m_k / n; // in envelope intervals
+        const int sub = std::min(static_cast<int>(pos), m_k - 1);
+        const double f = pos - sub;
+        const double c = std::cos(two_pi * k / n);
+        const auto i = static_cast<std::size_t>(k - 1);
+        m_w0[i] = -f * (f - 1.0) * (f - 2.0) / 6.0 * c;
+        m_w1[i] = (f + 1.0) * (f - 1.0) * (f - 2.0) / 2.0 * c;
+        m_w2[i] = -(f + 1.0) * f * (f - 2.0) / 2.0 * c;
+        m_w3[i] = (f + 1.0) * f * (f - 1.0) / 6.0 * c;
+        m_sub_first[static_cast<std::size_t>(sub)] = k - 1;
+    }
+    for (int sub = m_k - 1; sub >= 0; --sub) { // an interval without steps starts where the next one does
+        const auto i = static_cast<std::size_t>(sub);
+        m_sub_first[i] = std::min(m_sub_first[i], m_sub_first[i + 1]);
+    }
+    m_env.assign(static_cast<std::size_t>(m_k) + 3, 0.0);
+}
+
+void phase_locked_source::cycle(std::size_t c, std::span<double> u)
+{
+    if (static_cast<int>(u.size()) != m_n)
+        throw config_error(fmt::format("phase_locked_source::cycle: {} samples requested, {} per cycle", u.size(), m_n));
+    const auto k = static_cast<long long>(m_k);
+    if (m_valid && c == m_cycle + 1) {
+        // Shift by one cycle: keep the last three samples, evaluate K new ones.
+        std::copy(m_env.end() - 3, m_env.end(), m_env.begin());
+        const long long j_next = static_cast<long long>(c) * k + 2;
+        for (long long i = 0; i < k; ++i) m_env[static_cast<std::size_t>(i) + 3] = m_src->envelope(static_cast<double>(j_next + i) * m_env_dt);
+    } else if (!(m_valid && c == m_cycle)) {
+        const long long j0 = static_cast<long long>(c) * k - 1;
+        for (std::size_t i = 0; i < m_env.size(); ++i)
+            m_env[i] = m_src->envelope(static_cast<double>(j0 + static_cast<long long>(i)) * m_env_dt);
+    }
+    m_cycle = c;
+    m_valid = true;
+    for (int sub = 0; sub < m_k; ++sub) {
+        const auto s0 = static_cast<std::size_t>(sub);
+        const double e0 = m_env[s0], e1 = m_env[s0 + 1], e2 = m_env[s0 + 2], e3 = m_env[s0 + 3];
+        for (auto i = static_cast<std::size_t>(m_sub_first[s0]); i < static_cast<std::size_t>(m_sub_first[s0 + 1]); ++i)
+            u[i] = m_w0[i] * e0 + m_w1[i] * e1 + m_w2[i] * e2 + m_w3[i] * e3;
+    }
+}
 
 } // namespace galena

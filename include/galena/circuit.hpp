@@ -15,10 +15,34 @@
 #include "galena/signal.hpp"
 
 #include <Eigen/Core>
+#include <utility>
 #include <cmath>
 #include <limits>
 
 namespace galena {
+
+/// A linear network fed through a series resistance and one nonlinear junction by a source u(t):
+///
+///   dq(v)/dt = (u - v - c^T y) / R - i(v)          (no junction charge: 0 = (u - v - c^T y) / R - i(v))
+///   dy/dt    = A y + b (u - v) / R
+///
+/// v is the junction voltage, V; y holds the network's Dim states (volts on capacitors, amperes in
+/// inductors); c^T y is the voltage at the junction's far end (the output node). A already contains the
+/// series path's own term -b c^T / R. q and i come from the junction law.
+template <int Dim>
+struct one_junction_network {
+    using vec = Eigen::Matrix<double, Dim, 1>;
+    using mat = Eigen::Matrix<double, Dim, Dim>;
+    double series_ohm = 0.0;   ///< R, ohm; > 0
+    junction_law junction;     ///< i(v), q(v) and their slopes
+    mat a = mat::Zero();       ///< A, 1/s (for current states: ohm/H and so on)
+    vec b = vec::Zero();       ///< b: the series current (u - v)/R enters dy/dt as b times it; 1/F for a node
+    vec c = vec::Zero();       ///< the output (far-end) voltage is c^T y
+
+    /// DC conductance from the output node to ground through the network with the series path removed,
+    /// S; 0 when the network has no DC path (a capacitor-only load).
+    [[nodiscard]] double dc_load_conductance_s() const;
+};
 
 /// All circuit parameters of one variant.
 struct circuit_params {
@@ -244,6 +268,27 @@ decltype(auto) with_equations(const detector_network& net, const am_source& src,
     default:
         if (cj) return fn(detector_equations<true, 0>(net, src));
         return fn(detector_equations<false, 0>(net, src));
+    }
+}
+
+} // namespace galena
+
+namespace galena {
+
+/// The detector as a one_junction_network (the phase-locked integrator's form): y = [v_b, earpiece
+/// states], R = R_src + R_s. Dim must be 1 + net.earpiece_states(). Throws config_error when R = 0 (the
+/// junction then sits directly across the source: use the adaptive method).
+template <int Dim>
+[[nodiscard]] one_junction_network<Dim> make_one_junction_network(const detector_network& net);
+
+/// Calls fn(network) with the detector's one_junction_network of the matching dimension.
+template <class Fn>
+decltype(auto) with_one_junction_network(const detector_network& net, Fn&& fn)
+{
+    switch (net.earpiece_states()) {
+    case 2: return fn(make_one_junction_network<3>(net));
+    case 1: return fn(make_one_junction_network<2>(net));
+    default: return fn(make_one_junction_network<1>(net));
     }
 }
 

@@ -5,6 +5,10 @@
 /// The models are stateless; the circuit module turns them into state equations.
 #pragma once
 
+#include "galena/vector_math.hpp"
+
+#include <algorithm>
+#include <cmath>
 #include <limits>
 #include <string>
 #include <string_view>
@@ -72,41 +76,128 @@ struct junction_point {
     double conductance_s;
 };
 
+/// Everything the junction equations give at one junction voltage (SI units).
+struct junction_values {
+    double current_a;                  ///< I(v), A (Shockley + leakage - breakdown)
+    double conductance_s;              ///< dI/dv, S
+    double conductance_slope_s_per_v;  ///< d2I/dv2, S/V
+    double charge_c;                   ///< depletion charge q(v) = integral of Cj from 0 to v, C
+    double capacitance_f;              ///< Cj(v) = dq/dv, F
+    double capacitance_slope_f_per_v;  ///< dCj/dv, F/V
+};
+
+/// The junction equations with their constants precomputed: the one place where the diode's current,
+/// charge and capacitance are written down. evaluate() is straight-line arithmetic (no calls into libm,
+/// no data-dependent branches), so a loop that evaluates many voltages vectorises.
+///
+///   I(v) = Is (exp(v / nVt) - 1) + v / R_leak - I_bv exp(-(v + BV) / nVt)
+///   Cj(v) = Cj0 (1 - v/Vj)^-M for v < Fc Vj (Fc = 0.5), continued linearly above (SPICE);
+///   q(v) = Cj0 Vj / (1 - M) (1 - (1 - v/Vj)^(1 - M)) below Fc Vj, the integral of the linear piece above.
+/// Exponentials are continued linearly beyond 80 nVt so that Newton iterates never overflow; physical
+/// operating points never reach that region.
+struct junction_law {
+    double saturation_current_a = 0.0;   ///< Is at the operating temperature, A
+    double inv_emission_voltage = 0.0;   ///< 1 / (n Vt), 1/V
+    double leakage_s = 0.0;              ///< 1 / R_leak, S
+    bool breakdown = false;              ///< reverse breakdown modelled
+    double breakdown_voltage_v = 0.0;    ///< BV, V
+    double breakdown_current_a = 0.0;    ///< I_bv, A
+    double cj0_f = 0.0;                  ///< zero-bias depletion capacitance, F (0: no charge)
+    double junction_potential_v = 0.5;   ///< Vj, V
+    double grading = 0.5;                ///< M
+    bool square_root_grading = true;     ///< M = 1/2: a square root instead of exp(-M log)
+    double fc_v = 0.25;                  ///< Fc Vj, V: where the linear continuation starts
+    double linear_a_f = 0.0;             ///< Cj = linear_a_f + linear_b_f_per_v v above Fc Vj
+    double linear_b_f_per_v = 0.0;
+    double charge_at_fc_c = 0.0;         ///< q(Fc Vj), C
+
+    /// Current, charge, capacitance and slopes at junction voltage v_v, V.
+    [[nodiscard]] junction_values evaluate(double v_v) const noexcept
+    {
+        if (cj0_f > 0.0) {
+            if (square_root_grading)
+                return breakdown ? evaluate_as<true, true, true>(v_v) : evaluate_as<false, true, true>(v_v);
+            return breakdown ? evaluate_as<true, true, false>(v_v) : evaluate_as<false, true, false>(v_v);
+        }
+        return breakdown ? evaluate_as<true, false, true>(v_v) : evaluate_as<false, false, true>(v_v);
+    }
+
+    /// evaluate() with the law's switches fixed at compile time (Breakdown == breakdown, Charge ==
+    /// (cj0_f > 0), SquareRoot == square_root_grading), for loops that must not branch.
+    template <bool Breakdown, bool Charge, bool SquareRoot>
+    [[nodiscard, gnu::always_inline]] junction_values evaluate_as(double v_v) const noexcept
+    {
+        constexpr double linear_above = 80.0; // n Vt units
+        junction_values r{};
+        const double x = v_v * inv_emission_voltage;
+        const double excess = std::max(x - linear_above, 0.0); // > 0 only on the linear continuation
+        const double e = vmath::exp(x - excess);
+        const double is_e = saturation_current_a * e;
+        r.current_a = is_e * (1.0 + excess) - saturation_current_a + leakage_s * v_v;
+        r.conductance_s = is_e * inv_emission_voltage + leakage_s;
+        r.conductance_slope_s_per_v = (excess > 0.0 ? 0.0 : 1.0) * is_e * inv_emission_voltage * inv_emission_voltage;
+        if constexpr (Breakdown) {
+            const double xb = -(v_v + breakdown_voltage_v) * inv_emission_voltage;
+            const double excess_b = std::max(xb - linear_above, 0.0);
+            const double ib_e = breakdown_current_a * vmath::exp(xb - excess_b);
+            r.current_a -= ib_e * (1.0 + excess_b);
+            r.conductance_s += ib_e * inv_emission_voltage;
+            r.conductance_slope_s_per_v -= (excess_b > 0.0 ? 0.0 : 1.0) * ib_e * inv_emission_voltage * inv_emission_voltage;
+        }
+        if constexpr (Charge) {
+            const double vc = v_v < fc_v ? v_v : fc_v;
+            const double base = 1.0 - vc / junction_potential_v; // >= 1 - Fc
+            // M = 1/2 (the abrupt junction) is a square root; otherwise base^-M = exp(-M ln base).
+            double pw;
+            if constexpr (SquareRoot) pw = 1.0 / std::sqrt(base);
+            else pw = vmath::exp(-grading * vmath::log(base));
+            const double c_dep = cj0_f * pw;
+            const double q_dep = cj0_f * junction_potential_v / (1.0 - grading) * (1.0 - base * pw);
+            const double dc_dep = c_dep * grading / (junction_potential_v - vc);
+            const bool above = v_v > fc_v;
+            r.capacitance_f = above ? linear_a_f + linear_b_f_per_v * v_v : c_dep;
+            r.charge_c = above ? charge_at_fc_c + (linear_a_f + 0.5 * linear_b_f_per_v * (v_v + fc_v)) * (v_v - fc_v) : q_dep;
+            r.capacitance_slope_f_per_v = above ? linear_b_f_per_v : dc_dep;
+        }
+        return r;
+    }
+};
+
 /// A diode ready for evaluation: derived constants precomputed from validated diode_params.
 class diode_model {
 public:
     explicit diode_model(const diode_params& p);
 
     /// Junction current and conductance at junction voltage v_v (V), leakage and breakdown included.
-    /// Exponentials are continued linearly beyond 80 n Vt so that Newton iterates never overflow;
-    /// physical operating points never reach that region.
-    [[nodiscard]] junction_point junction(double v_v) const noexcept;
+    [[nodiscard]] junction_point junction(double v_v) const noexcept
+    {
+        const junction_values r = m_law.evaluate(v_v);
+        return {r.current_a, r.conductance_s};
+    }
     /// Depletion capacitance, F, at junction voltage v_v (V); 0 when Cj0 = 0.
-    [[nodiscard]] double capacitance_f(double v_v) const noexcept;
+    [[nodiscard]] double capacitance_f(double v_v) const noexcept { return m_law.evaluate(v_v).capacitance_f; }
     /// Depletion capacitance, F, and its slope dC/dv, F/V, at junction voltage v_v (V).
-    [[nodiscard]] std::pair<double, double> capacitance_and_slope(double v_v) const noexcept;
+    [[nodiscard]] std::pair<double, double> capacitance_and_slope(double v_v) const noexcept
+    {
+        const junction_values r = m_law.evaluate(v_v);
+        return {r.capacitance_f, r.capacitance_slope_f_per_v};
+    }
+    /// The junction equations with this diode's constants.
+    [[nodiscard]] const junction_law& law() const noexcept { return m_law; }
     /// Leakage conductance across the junction, S.
-    [[nodiscard]] double leakage_s() const noexcept { return m_leak_s; }
+    [[nodiscard]] double leakage_s() const noexcept { return m_law.leakage_s; }
     [[nodiscard]] double series_resistance_ohm() const noexcept { return m_params.series_resistance_ohm; }
     [[nodiscard]] bool has_capacitance() const noexcept { return m_params.junction_capacitance_f > 0.0; }
     /// n Vt, V.
     [[nodiscard]] double emission_voltage_v() const noexcept { return m_nvt; }
     /// Is at the operating temperature, A.
-    [[nodiscard]] double saturation_current_a() const noexcept { return m_is; }
+    [[nodiscard]] double saturation_current_a() const noexcept { return m_law.saturation_current_a; }
     [[nodiscard]] const diode_params& params() const noexcept { return m_params; }
 
 private:
     diode_params m_params;
-    double m_is;
     double m_nvt;
-    double m_inv_nvt;
-    double m_leak_s;
-    bool m_breakdown;
-    double m_bv;
-    double m_ibv;
-    double m_fc_v;      // Fc * Vj
-    double m_cj_lin_a;  // linear extension: C = a + b v above Fc Vj
-    double m_cj_lin_b;
+    junction_law m_law;
 };
 
 /// The earpiece (or other load) across the output node.

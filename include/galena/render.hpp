@@ -1,10 +1,11 @@
 /// One render: an AM source, the detector network and the solver run together in bounded chunks, with
-/// the earpiece voltage decimated to the audio rate through a three-stage anti-alias chain
-/// (box integration at >= 8 x carrier, a cubic B-spline FIR to 4 x audio rate, a 90 dB Kaiser FIR to the
-/// audio rate) and the chain's group delay removed, so output sample k is programme time k / fs.
+/// the earpiece voltage taken to the audio rate through a three-stage anti-alias chain (the exact mean
+/// over each carrier cycle, a Kaiser-windowed sinc resampler to 4 x audio rate, a 90 dB Kaiser FIR to
+/// the audio rate) whose delays are removed, so output sample k is programme time k / fs.
 #pragma once
 
 #include "galena/circuit.hpp"
+#include "galena/cycle_integrator.hpp"
 #include "galena/integrator.hpp"
 #include "galena/signal.hpp"
 
@@ -12,18 +13,36 @@
 #include <functional>
 #include <span>
 #include <string>
+#include <string_view>
 #include <vector>
 
 namespace galena {
 
+/// Which integrator a render uses.
+enum class solver_method {
+    phase_locked, ///< cycle_integrator: trapezoidal rule, N steps per carrier cycle (the default)
+    adaptive,     ///< tr_bdf2: error-controlled TR-BDF2 (slower; the in-project cross-check)
+};
+[[nodiscard]] std::string_view to_string(solver_method m) noexcept;
+/// Parses "phase-locked" or "adaptive"; throws config_error otherwise.
+[[nodiscard]] solver_method parse_solver_method(std::string_view s);
+
 /// Settings of the render loop.
 struct render_settings {
+    solver_method method = solver_method::phase_locked;
+    /// Phase-locked: trapezoidal steps per carrier cycle; 0 = chosen automatically for dc_tolerance.
+    int steps_per_cycle = 0;
+    /// Phase-locked, automatic N: relative error allowed in the detected (rectified) level at the
+    /// envelope's crest, mean and trough, estimated as |V(N) - V(2N)| / V(2N); (0, 0.1]
+    double dc_tolerance = 2e-5;
+    /// Phase-locked: Newton's remaining linearisation error, relative to the carrier crest; (0, 1e-3]
+    double newton_tolerance = 1e-8;
     double audio_rate_hz = 48000.0;   ///< output sample rate, Hz; [8000, 192000]
     double preroll_s = -1.0;          ///< unmodulated carrier before the programme, s; < 0 = automatic
     double dc_block_hz = 10.0;        ///< corner of the 2nd-order DC-removing high-pass, Hz; (0, 200]
     double chunk_s = 5e-3;            ///< simulated time per chunk (memory bound), s; [1e-4, 1]
-    step_settings stepper;            ///< tolerances; max_step_s is bounded by a sixth of the carrier period
-    /// h_max = carrier period / this; [4, 1000]. Local error control alone lets the bias of many small
+    step_settings stepper;            ///< adaptive method: tolerances; max_step_s is bounded by the carrier period
+    /// Adaptive method: h_max = carrier period / this; [4, 1000]. Local error control alone lets the bias of many small
     /// per-cycle errors pile up on the slow output node (global error ~ cycles x local error), so the
     /// step is also bounded per carrier cycle: 40 steps per cycle keep the rectified DC within about 1e-5
     /// of the converged value (measured, DEVELOPERS.md "Accuracy").
@@ -47,8 +66,13 @@ struct render_result {
     double preroll_s = 0.0;           ///< preroll actually used, s
     double simulated_s = 0.0;         ///< total simulated time, preroll included, s
     double wall_s = 0.0;              ///< wall-clock time of the simulation, s
-    double sample_rate_fine_hz = 0.0; ///< box-integration rate of the first decimation stage, Hz
-    step_stats stats;
+    double sample_rate_fine_hz = 0.0; ///< rate of the first decimation stage (the carrier-cycle means), Hz
+    solver_method method = solver_method::phase_locked;
+    int steps_per_cycle = 0;          ///< phase-locked: N used
+    double estimated_dc_error = 0.0;  ///< phase-locked, automatic N: |V(N) - V(2N)| / V(2N) at the worst level
+    double step_choice_s = 0.0;       ///< phase-locked, automatic N: wall time spent choosing N, s
+    cycle_stats cycles;               ///< phase-locked work counters
+    step_stats stats;                 ///< steps (phase-locked: N per cycle) and Newton work
     std::vector<std::string> warnings;
 };
 

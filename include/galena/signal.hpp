@@ -20,6 +20,9 @@ public:
     [[nodiscard]] virtual double duration_s() const noexcept = 0;
     /// Ensures value() is valid for t in [t0_s, t1_s]; t0_s never decreases between calls.
     virtual void prepare(double /*t0_s*/, double /*t1_s*/) {}
+    /// Highest frequency the waveform carries with significant amplitude, Hz (the solver samples the
+    /// envelope finely enough for it). The default assumes a full audio band.
+    [[nodiscard]] virtual double max_frequency_hz() const noexcept { return 20000.0; }
 };
 
 /// A sum of sinusoids sum_k a_k sin(2 pi f_k t), scaled so the peak is exactly `peak` (<= 1).
@@ -35,6 +38,7 @@ public:
     /// Amplitude of tone k in x (peak-normalised), dimensionless.
     [[nodiscard]] double amplitude(std::size_t k) const { return m_amplitudes.at(k); }
     [[nodiscard]] const std::vector<double>& frequencies_hz() const noexcept { return m_frequencies_hz; }
+    [[nodiscard]] double max_frequency_hz() const noexcept override;
 
 private:
     std::vector<double> m_frequencies_hz;
@@ -51,6 +55,7 @@ public:
     [[nodiscard]] double duration_s() const noexcept override;
     [[nodiscard]] double dwell_s() const noexcept { return m_dwell_s; }
     [[nodiscard]] const std::vector<double>& frequencies_hz() const noexcept { return m_frequencies_hz; }
+    [[nodiscard]] double max_frequency_hz() const noexcept override;
 
 private:
     std::vector<double> m_frequencies_hz;
@@ -65,6 +70,7 @@ public:
     [[nodiscard]] double duration_s() const noexcept override { return m_duration_s; }
     /// Instantaneous frequency at time t, Hz.
     [[nodiscard]] double frequency_at(double t_s) const noexcept;
+    [[nodiscard]] double max_frequency_hz() const noexcept override { return m_f2; }
 
 private:
     double m_f1, m_f2, m_duration_s, m_k;
@@ -121,6 +127,8 @@ public:
     /// Gain applied to reach peak 1 (input full scale -> x), dimensionless.
     [[nodiscard]] double normalisation_gain() const noexcept { return m_gain; }
     [[nodiscard]] double internal_rate_hz() const noexcept { return m_rate_hz; }
+    /// The band limit plus its FIR's transition band, Hz.
+    [[nodiscard]] double max_frequency_hz() const noexcept override { return 1.1 * m_cutoff_hz; }
 
 private:
     class pipeline;
@@ -128,6 +136,7 @@ private:
     double m_duration_s = 0.0;
     double m_rate_hz = 0.0;
     double m_gain = 1.0;
+    double m_cutoff_hz = 5000.0;
     std::vector<float> m_buf;   // samples [m_buf_first, m_buf_first + m_buf.size())
     std::size_t m_buf_first = 0;
     std::size_t m_buf_start_offset = 0; // index in m_buf of the first live sample
@@ -158,10 +167,39 @@ public:
     [[nodiscard]] const am_params& params() const noexcept { return m_p; }
     /// Simulation time at which the programme ends, s.
     [[nodiscard]] double end_s() const noexcept;
+    /// The modulation's highest significant frequency, Hz (0 without a modulation).
+    [[nodiscard]] double modulation_max_frequency_hz() const noexcept;
 
 private:
     am_params m_p;
     const modulation* m_x;
+};
+
+/// The AM source sampled on a carrier-phase-locked grid: cycle c, step k (1..N) is time (c + k/N) / fc,
+/// where the carrier is exactly cos(2 pi k / N). The envelope is evaluated K times per cycle (K chosen
+/// from the programme's highest frequency so that 2 pi f_max T / K <= 0.05) and interpolated to the steps
+/// by 4-point Lagrange (error below 2e-7 of the modulation: the bound 9/16 (w h)^4 / 24). Cheaper than
+/// evaluating the source at every step by a factor of about N / K in envelope evaluations.
+class phase_locked_source {
+public:
+    /// @param steps_per_cycle N; >= 2. The source (and its modulation) must outlive this object.
+    phase_locked_source(const am_source& source, int steps_per_cycle);
+    /// Source voltage at the N step ends of cycle c (phases 1/N .. N/N), V. Sequential calls (c, c + 1,
+    /// ...) evaluate K new envelope samples each; any other order re-evaluates the window.
+    void cycle(std::size_t c, std::span<double> u_v);
+    /// Envelope samples per carrier cycle, K.
+    [[nodiscard]] int envelope_samples_per_cycle() const noexcept { return m_k; }
+
+private:
+    const am_source* m_src;
+    int m_n;
+    int m_k;
+    double m_env_dt;
+    std::vector<int> m_sub_first;              // first step (0-based) of each envelope interval; [K] = N
+    std::vector<double> m_w0, m_w1, m_w2, m_w3; // Lagrange weights times the carrier, per step
+    std::vector<double> m_env;                 // envelope at j = c K - 1 .. c K + K + 1
+    std::size_t m_cycle = 0;                   // cycle the window holds
+    bool m_valid = false;
 };
 
 } // namespace galena

@@ -138,6 +138,10 @@ motional_capacitance_f = 20e-9
 [output]
 sample_rate_hz = 48000
 [solver]
+method = "adaptive"
+steps_per_cycle = 64
+dc_tolerance = 2e-5
+newton_tolerance = 1e-8
 relative_tolerance = 1e-4
 absolute_tolerance_v = 1e-7
 preroll_s = 0.01
