@@ -1,10 +1,14 @@
 #include "galena/audio_io.hpp"
 
+#include "galena/cancel.hpp"
 #include "galena/error.hpp"
 #include "galena/validate.hpp"
 
 #include <algorithm>
+#include <cerrno>
 #include <cmath>
+#include <cstdint>
+#include <cstring>
 #include <cstdio>
 #include <fmt/format.h>
 #include <fstream>
@@ -32,6 +36,38 @@ wav_format parse_wav_format(std::string_view s)
     if (s == "float") return wav_format::float32;
     throw config_error(fmt::format("output.format = \"{}\": must be one of pcm16, pcm24, float", s));
 }
+
+namespace {
+/// For RIFF/WAVE files: the frames the data chunk's header declares and the frames the file really holds.
+/// Returns false when the file is not plain RIFF/WAVE or declares no usable size (0 or 0xFFFFFFFF, as
+/// streaming writers leave it).
+bool riff_data_frames(const fs::path& path, std::size_t block_bytes, std::size_t& declared, std::size_t& present)
+{
+    std::ifstream in(path, std::ios::binary);
+    char head[12];
+    if (block_bytes == 0 || !in.read(head, 12) || std::string_view(head, 4) != "RIFF" || std::string_view(head + 8, 4) != "WAVE")
+        return false;
+    std::error_code ec;
+    const auto file_size = static_cast<std::uint64_t>(fs::file_size(path, ec));
+    if (ec) return false;
+    std::uint64_t at = 12;
+    for (int chunk = 0; chunk < 4096 && at + 8 <= file_size; ++chunk) {
+        unsigned char h[8];
+        in.seekg(static_cast<std::streamoff>(at));
+        if (!in.read(reinterpret_cast<char*>(h), 8)) return false;
+        const std::uint32_t size = static_cast<std::uint32_t>(h[4]) | static_cast<std::uint32_t>(h[5]) << 8 |
+                                   static_cast<std::uint32_t>(h[6]) << 16 | static_cast<std::uint32_t>(h[7]) << 24;
+        if (std::memcmp(h, "data", 4) == 0) {
+            if (size == 0 || size == 0xFFFFFFFFu) return false;
+            declared = size / block_bytes;
+            present = static_cast<std::size_t>(std::min<std::uint64_t>(size, file_size - (at + 8)) / block_bytes);
+            return true;
+        }
+        at += 8 + static_cast<std::uint64_t>(size) + (size & 1u);
+    }
+    return false;
+}
+} // namespace
 
 wav_reader::wav_reader(const fs::path& path) : m_path(path)
 {
@@ -66,6 +102,23 @@ wav_reader::wav_reader(const fs::path& path) : m_path(path)
         throw audio_error(fmt::format("{}: sample rate {} Hz: must be in [1000, 768000] Hz", path.string(),
                                       m_info.sample_rate_hz));
     }
+    // A header that promises more than the file holds (an interrupted copy or download): libsndfile quietly
+    // reads what is there, which would render a shortened clip as if it were whole.
+    const int sub = info.format & SF_FORMAT_SUBMASK;
+    const std::size_t sample_bytes = sub == SF_FORMAT_PCM_S8 || sub == SF_FORMAT_PCM_U8 ? 1
+                                     : sub == SF_FORMAT_PCM_16                          ? 2
+                                     : sub == SF_FORMAT_PCM_24                          ? 3
+                                     : sub == SF_FORMAT_PCM_32 || sub == SF_FORMAT_FLOAT ? 4
+                                     : sub == SF_FORMAT_DOUBLE                          ? 8
+                                                                                        : 0;
+    std::size_t declared = 0, present = 0;
+    if ((info.format & SF_FORMAT_TYPEMASK) == SF_FORMAT_WAV &&
+        riff_data_frames(path, sample_bytes * static_cast<std::size_t>(m_info.channels), declared, present) && present < declared) {
+        sf_close(f);
+        m_file = nullptr;
+        throw audio_error(fmt::format("{}: truncated: the header declares {} frames but the file holds {}", path.string(),
+                                      declared, present));
+    }
 }
 
 wav_reader::~wav_reader()
@@ -75,6 +128,7 @@ wav_reader::~wav_reader()
 
 std::size_t wav_reader::read(std::span<float> out)
 {
+    throw_if_cancelled(); // a long clip's conditioning pass reads it all before the render starts
     const auto ch = static_cast<std::size_t>(m_info.channels);
     m_interleaved.resize(out.size() * ch);
     const sf_count_t got = sf_readf_float(static_cast<SNDFILE*>(m_file), m_interleaved.data(),
@@ -171,7 +225,8 @@ void wav_writer::write_volts(std::span<const double> volts)
     }
     const auto n = static_cast<sf_count_t>(m_buf.size());
     if (sf_writef_float(static_cast<SNDFILE*>(m_file), m_buf.data(), n) != n)
-        throw audio_error(fmt::format("{}: write failed: {}", m_path.string(), sf_strerror(static_cast<SNDFILE*>(m_file))));
+        throw audio_error(fmt::format("{}: write failed (disk full or file-size limit?): {}", m_path.string(),
+                                      sf_strerror(static_cast<SNDFILE*>(m_file))));
     m_frames += m_buf.size();
 }
 
@@ -184,7 +239,7 @@ void wav_writer::commit()
     std::error_code ec;
     if (rc != 0) {
         fs::remove(m_temp, ec);
-        throw audio_error(fmt::format("{}: closing failed: {}", m_path.string(), sf_error_number(rc)));
+        throw audio_error(fmt::format("{}: closing failed (disk full?): {}", m_path.string(), sf_error_number(rc)));
     }
     if (fs::exists(m_path, ec) && !m_overwrite) {
         fs::remove(m_temp, ec);
@@ -210,14 +265,15 @@ void write_text_atomic(const fs::path& path, const std::string& text)
     const fs::path tmp = temp_beside(path.parent_path().empty() ? fs::path(".") / path : path);
     {
         std::ofstream out(tmp, std::ios::binary | std::ios::trunc);
-        if (!out) throw audio_error(fmt::format("{}: cannot write", path.string()));
+        if (!out) throw audio_error(fmt::format("{}: cannot write: {}", path.string(), std::strerror(errno)));
         out << text;
         out.flush();
+        const int err = errno;
+        out.close();
         if (!out) {
-            out.close();
             std::error_code ec;
             fs::remove(tmp, ec);
-            throw audio_error(fmt::format("{}: write failed (disk full?)", path.string()));
+            throw audio_error(fmt::format("{}: write failed (disk full or file-size limit?): {}", path.string(), std::strerror(err)));
         }
     }
     std::error_code ec;

@@ -1,11 +1,14 @@
 #include "galena/job.hpp"
 
 #include "galena/audio_io.hpp"
+#include "galena/cancel.hpp"
 #include "galena/characterize.hpp"
 #include "galena/metrics.hpp"
 #include "galena/constants.hpp"
 #include "galena/error.hpp"
+#include "galena/validate.hpp"
 
+#include <chrono>
 #include <cmath>
 #include <fmt/format.h>
 #include <nlohmann/json.hpp>
@@ -71,14 +74,97 @@ nlohmann::json job_metrics(const scenario& s, std::span<const float> earpiece_v,
     return j;
 }
 
+const std::vector<std::string>& job_file_names()
+{
+    static const std::vector<std::string> n = {"recovered.wav", "recovered.json", "metrics.json", "recovered-normalised.wav"};
+    return n;
+}
+
+std::vector<fs::path> scenario_inputs(const scenario& s)
+{
+    std::vector<fs::path> in;
+    if (!s.file.empty()) in.push_back(s.file);
+    if (s.programme.kind == programme_kind::clip) in.push_back(s.programme.audio);
+    return in;
+}
+
+void relocate(job_outcome& o, const staged_output& staged)
+{
+    for (fs::path* p : {&o.wav, &o.normalised_wav, &o.sidecar, &o.metrics_file})
+        if (!p->empty()) *p = staged.published(*p);
+}
+
+namespace {
+/// The figures that usually explain a solver failure, for its message.
+std::string likely_cause(const scenario& s)
+{
+    const auto& d = s.circuit.diode;
+    const double nvt = d.emission_coefficient * thermal_voltage_v(kelvin_from_celsius(d.temperature_c));
+    const double r = s.circuit.source.resistance_ohm + d.series_resistance_ohm;
+    return fmt::format("scenario figures: diode.saturation_current_a = {}, diode.emission_coefficient = {}, source + series "
+                       "resistance = {} ohm, signal.carrier_peak_v = {} V = {:.3g} x n Vt",
+                       detail::format_value(d.saturation_current_a), detail::format_value(d.emission_coefficient),
+                       detail::format_value(r), detail::format_value(s.am.carrier_peak_v), s.am.carrier_peak_v / nvt);
+}
+
+std::string wall_text(double s)
+{
+    if (s < 90.0) return fmt::format("{:.0f} s", s);
+    if (s < 5400.0) return fmt::format("{:.0f} min", s / 60.0);
+    return fmt::format("{:.1f} h", s / 3600.0);
+}
+} // namespace
+
+double estimate_render_wall_s(const scenario& s, double programme_s, std::size_t renders, unsigned threads)
+{
+    // Pilot: 10 ms of settled carrier and a 20 ms tone, with this scenario's circuit, carrier and solver.
+    render_settings rs = s.render;
+    rs.preroll_s = 0.01;
+    tone_modulation tone({std::min(1000.0, 0.2 * rs.audio_rate_hz)}, {1.0}, 0.02);
+    const auto t0 = std::chrono::steady_clock::now();
+    const render_result r = render(s.circuit, s.am, tone, rs, [](const audio_block&) { throw_if_cancelled(); });
+    const double wall = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
+    const double per_s = wall / std::max(r.simulated_s, 1e-6);
+    const double preroll = automatic_preroll_s(detector_network(s.circuit), rs.audio_rate_hz);
+    const double work_s = programme_s + static_cast<double>(renders) * preroll;
+    return per_s * work_s / static_cast<double>(std::max<std::size_t>(1, std::min<std::size_t>(threads, renders)));
+}
+
+void check_render_length(const scenario& s, const std::string& where, double programme_s, std::size_t renders, unsigned threads,
+                         bool allow_long)
+{
+    if (allow_long || !(programme_s > long_render_limit_s)) return;
+    const double est = estimate_render_wall_s(s, programme_s, renders, threads);
+    throw config_error(fmt::format("{}: {} s of programme to render{}: more than the {} s limit for one command; estimated "
+                                   "wall time about {} on this machine; pass --allow-long to render it (Ctrl-C stops it "
+                                   "cleanly), or set signal.duration_s to render part of it",
+                                   where, detail::format_value(programme_s),
+                                   renders > 1 ? fmt::format(" in {} renders", renders) : std::string(),
+                                   detail::format_value(long_render_limit_s), wall_text(est)));
+}
+
 job_outcome run_render_job(const scenario& s, const fs::path& out_dir, const job_options& opt, double analysis_limit_s)
 {
-    std::error_code ec;
-    if (fs::exists(out_dir, ec) && !fs::is_directory(out_dir, ec))
-        throw audio_error(fmt::format("{}: --out exists and is not a directory", out_dir.string()));
-    fs::create_directories(out_dir, ec);
-    if (ec) throw audio_error(fmt::format("{}: cannot create the output directory: {}", out_dir.string(), ec.message()));
+    // Refuse up front (before the out folder is touched): an overlong programme.
+    check_render_length(s, s.file.string(), programme_duration_s(s), 1, 1, opt.allow_long);
+    staged_output staged(out_dir, opt.overwrite, scenario_inputs(s));
+    for (const auto& n : job_file_names()) staged.check(n);
+    job_outcome o;
+    with_described_errors(staged, [&] {
+        o = render_job_into(s, staged.dir(), opt, analysis_limit_s);
+        if (opt.extras)
+            for (auto& w : opt.extras(o, staged.dir())) o.warnings.push_back(std::move(w));
+        throw_if_cancelled();
+        staged.publish();
+    });
+    relocate(o, staged);
+    for (auto& w : o.warnings) w = staged.describe(w);
+    return o;
+}
 
+job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const job_options& opt, double analysis_limit_s)
+{
+    std::error_code ec;
     job_outcome o;
     o.wav = out_dir / "recovered.wav";
     o.sidecar = out_dir / "recovered.json";
@@ -86,10 +172,17 @@ job_outcome run_render_job(const scenario& s, const fs::path& out_dir, const job
     o.full_scale_v = s.output.full_scale_v;
     const fs::path norm_path = out_dir / "recovered-normalised.wav";
     for (const auto& p : {o.wav, o.sidecar, norm_path, o.metrics_file}) {
-        if (s.programme.kind == programme_kind::clip && same_file(p, s.programme.audio))
-            throw audio_error(fmt::format("{}: is the scenario's own audio input; refusing to overwrite an input", p.string()));
+        for (const auto& in : scenario_inputs(s))
+            if (same_file(p, in))
+                throw audio_error(fmt::format("{}: is an input of this scenario; refusing to overwrite an input", p.string()));
         if (fs::exists(p, ec) && !opt.overwrite)
             throw audio_error(fmt::format("{}: already exists (pass --overwrite to replace it)", p.string()));
+    }
+    if (s.programme.kind == programme_kind::clip) {
+        const wav_reader header(s.programme.audio);
+        if (header.info().channels > 1)
+            o.warnings.push_back(fmt::format("{}: {} channels mixed to mono (their average) before modulation",
+                                             s.programme.audio.string(), header.info().channels));
     }
     auto programme = make_programme(s);
     const double fs_hz = s.render.audio_rate_hz;
@@ -106,10 +199,13 @@ job_outcome run_render_job(const scenario& s, const fs::path& out_dir, const job
             fs::remove(p, e);
         }
     } cleanup{raw_path};
-    {
+    try {
         wav_writer raw(raw_path, fs_hz, wav_format::float32, 1.0e3, true);
         std::vector<double> faded;
         o.render = render(s.circuit, s.am, *programme, s.render, [&](const audio_block& b) {
+            throw_if_cancelled();
+            if (opt.stop != nullptr && opt.stop->load())
+                throw cancelled_error("stopped: another render of this command failed first", 0);
             faded.assign(b.audio_v.begin(), b.audio_v.end());
             for (std::size_t i = 0; i < faded.size(); ++i) {
                 o.peak_audio_v = std::max(o.peak_audio_v, std::fabs(faded[i]));
@@ -122,9 +218,15 @@ job_outcome run_render_job(const scenario& s, const fs::path& out_dir, const job
             if (opt.progress && total > 0) opt.progress(static_cast<double>(b.first_sample + b.earpiece_v.size()) / static_cast<double>(total));
         });
         raw.commit();
+    } catch (const integration_error& e) {
+        throw integration_error(fmt::format("{}: {}; {}", s.file.string(), e.what(), likely_cause(s)), e.time_s());
     }
     // Measured before any output file exists, so a span too short to measure leaves nothing behind.
-    o.metrics = job_metrics(s, o.analysis_v, o.render.warnings);
+    try {
+        o.metrics = job_metrics(s, o.analysis_v, o.render.warnings);
+    } catch (const config_error& e) {
+        throw config_error(fmt::format("{}: {} (the programme is too short to measure)", s.file.string(), e.what()));
+    }
     o.metrics["peak_audio_v"] = o.peak_audio_v;
     o.metrics["clipped_samples"] = o.clipped_samples;
     o.metrics["full_scale_v"] = o.full_scale_v;

@@ -1,6 +1,7 @@
 #include "galena/report.hpp"
 
 #include "galena/audio_io.hpp"
+#include "galena/cancel.hpp"
 #include "galena/characterize.hpp"
 #include "galena/constants.hpp"
 #include "galena/error.hpp"
@@ -17,6 +18,8 @@
 #include <mutex>
 #include <set>
 #include <sstream>
+#include <csignal>
+#include <sys/wait.h>
 #include <thread>
 
 namespace galena {
@@ -246,7 +249,11 @@ void run_gnuplot(const std::string& script, const fs::path& work_dir, const std:
     write_text_atomic(gp, script);
     const std::string cmd = fmt::format("cd {} && gnuplot {} 2> {}", shell_quote(work_dir.string()), shell_quote(stem + ".gp"),
                                         shell_quote(stem + ".log"));
+    throw_if_cancelled();
     const int rc = std::system(cmd.c_str());
+    // system() ignores SIGINT while gnuplot runs; a Ctrl-C at the terminal reaches gnuplot and shows here.
+    if (rc != -1 && WIFSIGNALED(rc) && (WTERMSIG(rc) == SIGINT || WTERMSIG(rc) == SIGTERM)) request_cancel(WTERMSIG(rc));
+    throw_if_cancelled();
     if (rc != 0)
         throw audio_error(fmt::format("{}: gnuplot failed (exit status {}; is the Debian package gnuplot-nox installed?); see {}",
                                       gp.string(), rc, (work_dir / (stem + ".log")).string()));
@@ -396,7 +403,7 @@ std::vector<std::string> draw_pack_plots(const sweep_result& sweep, const fs::pa
     std::string curve_error;
     std::mutex m;
     auto work = [&] {
-        for (std::size_t i; (i = next.fetch_add(1)) < n;) {
+        for (std::size_t i; (i = next.fetch_add(1)) < n && !cancel_requested();) {
             try {
                 const scenario& s = sweep.variants[i].scene;
                 characterize_settings cs;
@@ -422,6 +429,7 @@ std::vector<std::string> draw_pack_plots(const sweep_result& sweep, const fs::pa
         for (unsigned t = 0; t < threads; ++t) pool.emplace_back(work);
         for (auto& t : pool) t.join();
     }
+    throw_if_cancelled();
     if (err) std::rethrow_exception(err);
     if (!curve_error.empty()) {
         // The renders are done and worth keeping: report the curve failure and go on without the curves.
@@ -531,44 +539,57 @@ pack_outcome make_pack(const fs::path& base_file, const std::vector<std::string>
                        const std::vector<variant_spec>& variants, const fs::path& out_dir, const pack_options& opt)
 {
     pack_outcome o;
-    o.page = out_dir / "index.html";
-    o.playlist_wav = out_dir / "playlist.wav";
-    o.playlist_csv = out_dir / "playlist.csv";
-    std::error_code ec;
-    if (!opt.sweep.overwrite)
-        for (const auto& p : {o.page, o.playlist_wav, o.playlist_csv})
-            if (fs::exists(p, ec)) throw audio_error(fmt::format("{}: already exists (pass --overwrite to replace it)", p.string()));
-    o.sweep = run_sweep(base_file, base_overrides, variants, out_dir, opt.sweep);
+    o.sweep = prepare_sweep(base_file, base_overrides, variants, opt.sweep);
     const auto& vs = o.sweep.variants;
     for (const auto& r : vs)
         if (r.scene.output.full_scale_v != vs[0].scene.output.full_scale_v)
             throw config_error(fmt::format("variant {}: output.full_scale_v = {}: a pack needs one calibration for every variant ({})",
                                            r.spec.name, r.scene.output.full_scale_v, vs[0].scene.output.full_scale_v));
-    std::vector<fs::path> wavs;
-    std::vector<std::string> names, labels;
-    for (const auto& r : vs) {
-        wavs.push_back(r.job.wav);
-        names.push_back(r.spec.name);
-        labels.push_back(r.spec.label);
-    }
-    const wav_format fmt_ = vs[0].scene.output.format;
-    o.playlist = write_playlist(wavs, names, labels, o.playlist_wav, o.playlist_csv, fmt_);
-    if (opt.loudness_matched) {
-        o.matched = write_loudness_matched(wavs, names, out_dir / "matched", fmt_);
-        std::vector<fs::path> mw;
-        for (const auto& g : o.matched) mw.push_back(g.wav);
-        (void)write_playlist(mw, names, labels, out_dir / "playlist-matched.wav", out_dir / "playlist-matched.csv", fmt_);
-    }
-    pack_page page;
-    page.title = opt.title;
-    page.note = opt.note;
-    page.dir = out_dir;
-    page.sweep = &o.sweep;
-    page.playlist = o.playlist;
-    page.playlist_wav = o.playlist_wav;
-    page.matched = o.matched;
-    page.plot_stems = draw_pack_plots(o.sweep, out_dir / "plots", opt.curves);
-    write_text_atomic(o.page, render_page(page));
+    std::vector<fs::path> inputs = o.sweep.inputs;
+    inputs.insert(inputs.end(), opt.protect.begin(), opt.protect.end());
+    // Everything is staged beside out_dir and published at the end: a failure or Ctrl-C leaves no pack.
+    staged_output staged(out_dir, opt.sweep.overwrite, inputs);
+    check_sweep_outputs(o.sweep, staged);
+    for (const char* f : {"index.html", "playlist.wav", "playlist.csv", "playlist-matched.wav", "playlist-matched.csv"}) staged.check(f);
+    const fs::path dir = staged.dir();
+    o.page = dir / "index.html";
+    o.playlist_wav = dir / "playlist.wav";
+    o.playlist_csv = dir / "playlist.csv";
+    with_described_errors(staged, [&] {
+        render_sweep(o.sweep, dir, opt.sweep);
+        std::vector<fs::path> wavs;
+        std::vector<std::string> names, labels;
+        for (const auto& r : vs) {
+            wavs.push_back(r.job.wav);
+            names.push_back(r.spec.name);
+            labels.push_back(r.spec.label);
+        }
+        const wav_format fmt_ = vs[0].scene.output.format;
+        throw_if_cancelled();
+        o.playlist = write_playlist(wavs, names, labels, o.playlist_wav, o.playlist_csv, fmt_);
+        if (opt.loudness_matched) {
+            throw_if_cancelled();
+            o.matched = write_loudness_matched(wavs, names, dir / "matched", fmt_);
+            std::vector<fs::path> mw;
+            for (const auto& g : o.matched) mw.push_back(g.wav);
+            (void)write_playlist(mw, names, labels, dir / "playlist-matched.wav", dir / "playlist-matched.csv", fmt_);
+        }
+        pack_page page;
+        page.title = opt.title;
+        page.note = opt.note;
+        page.dir = dir;
+        page.sweep = &o.sweep;
+        page.playlist = o.playlist;
+        page.playlist_wav = o.playlist_wav;
+        page.matched = o.matched;
+        page.plot_stems = draw_pack_plots(o.sweep, dir / "plots", opt.curves);
+        write_text_atomic(o.page, render_page(page));
+        throw_if_cancelled();
+        staged.publish();
+    });
+    relocate(o.sweep, staged);
+    for (fs::path* p : {&o.page, &o.playlist_wav, &o.playlist_csv}) *p = staged.published(*p);
+    for (auto& g : o.matched) g.wav = staged.published(g.wav);
     return o;
 }
 

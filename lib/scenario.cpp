@@ -4,7 +4,10 @@
 #include "galena/validate.hpp"
 
 #include <algorithm>
+#include <cerrno>
 #include <cmath>
+#include <cstdint>
+#include <cstring>
 #include <fmt/format.h>
 #include <fstream>
 #include <functional>
@@ -33,6 +36,19 @@ std::string source_of(const toml::node& n, const fs::path& file)
     return file.string();
 }
 
+/// The node as TOML text, one line, for messages ("big" quoted, arrays and tables inline; long text cut).
+std::string node_text(const toml::node& n)
+{
+    std::ostringstream os;
+    n.visit([&](const auto& v) {
+        if constexpr (toml::is_table<decltype(v)>) os << "{ table }";
+        else os << v;
+    });
+    std::string t = detail::one_line(os.str());
+    if (t.size() > 60) t = t.substr(0, 57) + "...";
+    return t;
+}
+
 double as_number(const toml::node& n, const std::string& field, const std::string& where)
 {
     if (auto v = n.value_exact<double>()) return *v;
@@ -45,20 +61,19 @@ double as_number(const toml::node& n, const std::string& field, const std::strin
         const double v = std::strtod(s->c_str(), &end);
         if (end != s->c_str() && *end == '\0') return v;
     }
-    throw config_error(fmt::format("{}: {} = {}: must be a number (SI units; inf allowed)", where, field,
-                                   n.is_string() ? fmt::format("\"{}\"", *n.value<std::string>()) : std::string("<non-number>")));
+    throw config_error(fmt::format("{}: {} = {}: must be a number (SI units; inf allowed)", where, field, node_text(n)));
 }
 
 std::string as_string(const toml::node& n, const std::string& field, const std::string& where)
 {
     if (auto s = n.value_exact<std::string>()) return *s;
-    throw config_error(fmt::format("{}: {}: must be a string", where, field));
+    throw config_error(fmt::format("{}: {} = {}: must be a string", where, field, node_text(n)));
 }
 
 bool as_bool(const toml::node& n, const std::string& field, const std::string& where)
 {
     if (auto b = n.value_exact<bool>()) return *b;
-    throw config_error(fmt::format("{}: {}: must be true or false", where, field));
+    throw config_error(fmt::format("{}: {} = {}: must be true or false", where, field, node_text(n)));
 }
 
 std::size_t edit_distance(std::string_view a, std::string_view b)
@@ -92,6 +107,7 @@ const std::map<std::string, std::map<std::string, setter>>& key_table()
          {
              {"audio", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
                   s.programme.audio = as_string(n, f, w);
+                  if (s.programme.audio.empty()) throw config_error(fmt::format("{}: {} = \"\": must name an audio file", w, f));
                   s.programme.kind = programme_kind::clip;
               }},
              {"tone_hz", number_into([](scenario& s) -> double& { return s.programme.tone_hz; })},
@@ -211,8 +227,37 @@ std::string nearest(std::string_view word, const std::vector<std::string>& candi
     return best_d <= std::max<std::size_t>(3, word.size() / 2) ? best : std::string();
 }
 
-void apply_overrides(toml::table& root, const std::vector<std::string>& overrides)
+/// True for well-formed UTF-8 (no overlong forms, surrogates or code points above U+10FFFF).
+bool valid_utf8(std::string_view s)
 {
+    std::size_t i = 0;
+    while (i < s.size()) {
+        const auto c = static_cast<unsigned char>(s[i]);
+        std::size_t n = 0;
+        std::uint32_t cp = 0;
+        if (c < 0x80) { ++i; continue; }
+        if ((c & 0xE0) == 0xC0) { n = 1; cp = c & 0x1Fu; }
+        else if ((c & 0xF0) == 0xE0) { n = 2; cp = c & 0x0Fu; }
+        else if ((c & 0xF8) == 0xF0) { n = 3; cp = c & 0x07u; }
+        else return false;
+        if (i + n >= s.size()) return false;
+        for (std::size_t k = 1; k <= n; ++k) {
+            const auto d = static_cast<unsigned char>(s[i + k]);
+            if ((d & 0xC0) != 0x80) return false;
+            cp = (cp << 6) | (d & 0x3Fu);
+        }
+        if ((n == 1 && cp < 0x80) || (n == 2 && cp < 0x800) || (n == 3 && cp < 0x10000) || cp > 0x10FFFF ||
+            (cp >= 0xD800 && cp <= 0xDFFF))
+            return false;
+        i += n + 1;
+    }
+    return true;
+}
+
+/// Applies the overrides; returns, for each field set, the --set text that set it (for messages).
+std::map<std::string, std::string> apply_overrides(toml::table& root, const std::vector<std::string>& overrides)
+{
+    std::map<std::string, std::string> origin;
     for (const auto& o : overrides) {
         const auto eq = o.find('=');
         const auto dot = o.find('.');
@@ -221,6 +266,12 @@ void apply_overrides(toml::table& root, const std::vector<std::string>& override
         const std::string section = o.substr(0, dot);
         const std::string key = o.substr(dot + 1, eq - dot - 1);
         const std::string value = o.substr(eq + 1);
+        if (section.empty() || key.empty())
+            throw config_error(fmt::format("--set {}: must look like section.key=value", o));
+        if (!valid_utf8(o)) throw config_error(fmt::format("--set {}: must be valid UTF-8 text", o));
+        origin[section + "." + key] = o;
+        if (root.contains(section) && !root[section].is_table())
+            throw config_error(fmt::format("--set {}: {} is not a section in the scenario file", o, section));
         toml::table* tab = root[section].as_table();
         if (tab == nullptr) {
             root.insert(section, toml::table{});
@@ -235,7 +286,11 @@ void apply_overrides(toml::table& root, const std::vector<std::string>& override
                 if (auto str = parsed["v"].value<std::string>()) path = *str;
             } catch (const toml::parse_error&) {
             }
-            tab->insert_or_assign(key, fs::absolute(fs::path(path)).string());
+            if (path.empty()) throw config_error(fmt::format("--set {}: signal.audio: the clip path is empty", o));
+            std::error_code ec;
+            const fs::path abs = fs::absolute(fs::path(path), ec);
+            if (ec) throw config_error(fmt::format("--set {}: signal.audio: cannot resolve the path: {}", o, ec.message()));
+            tab->insert_or_assign(key, abs.string());
             continue;
         }
         try {
@@ -245,13 +300,25 @@ void apply_overrides(toml::table& root, const std::vector<std::string>& override
             tab->insert_or_assign(key, value); // a bare word: a string
         }
     }
+    return origin;
+}
+
+/// Where a field's value came from: "file:line", or "file (--set TEXT)" for an override.
+std::string origin_of(const toml::node& n, const std::string& field, const fs::path& file,
+                      const std::map<std::string, std::string>& overridden)
+{
+    if (auto it = overridden.find(field); it != overridden.end()) return fmt::format("{} (--set {})", file.string(), it->second);
+    return source_of(n, file);
 }
 
 /// Finds "file:line" for a dotted field name, for messages raised after parsing.
-std::string where_is(const toml::table& root, std::string_view field, const fs::path& file)
+std::string where_is(const toml::table& root, std::string_view field, const fs::path& file,
+                     const std::map<std::string, std::string>& overridden)
 {
     const auto dot = field.find('.');
     if (dot == std::string_view::npos) return file.string();
+    if (auto it = overridden.find(std::string(field)); it != overridden.end())
+        return fmt::format("{} (--set {})", file.string(), it->second);
     const toml::node* n = root.at_path(field).node();
     return n != nullptr ? source_of(*n, file) : file.string();
 }
@@ -264,15 +331,16 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
     try {
         root = toml::parse(text, file.string());
     } catch (const toml::parse_error& e) {
-        throw config_error(fmt::format("{}:{}: malformed TOML: {}", file.string(), e.source().begin.line, e.description()));
+        throw config_error(fmt::format("{}:{}: malformed TOML: {}", file.string(), e.source().begin.line,
+                                       detail::one_line(e.description())));
     }
-    apply_overrides(root, overrides);
+    const auto overridden = apply_overrides(root, overrides);
 
     scenario s;
     s.file = file;
     // Preset first, so explicit diode fields override it.
     if (const toml::node* p = root.at_path("diode.preset").node()) {
-        const std::string w = source_of(*p, file);
+        const std::string w = origin_of(*p, "diode.preset", file, overridden);
         const std::string name = as_string(*p, "diode.preset", w);
         try {
             s.circuit.diode = find_diode_preset(name).params;
@@ -296,13 +364,14 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
                                            near.empty() ? "" : fmt::format(" (did you mean [{}]?)", near)));
         }
         const toml::table* tab = sec_node.as_table();
-        if (tab == nullptr) throw config_error(fmt::format("{}: {}: must be a table [{}]", w, sec, sec));
+        if (tab == nullptr)
+            throw config_error(fmt::format("{}: {} = {}: must be a section [{}], not a value", w, sec, node_text(sec_node), sec));
         std::vector<std::string> keys;
         for (const auto& [k, v] : it->second) keys.push_back(k);
         for (const auto& [key_name, node] : *tab) {
             const std::string key(key_name.str());
             const std::string field = sec + "." + key;
-            const std::string kw = source_of(node, file);
+            const std::string kw = origin_of(node, field, file, overridden);
             auto kt = it->second.find(key);
             if (kt == it->second.end()) {
                 const std::string near = nearest(key, keys);
@@ -343,7 +412,9 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
         detail::require_above("output.full_scale_v", s.output.full_scale_v, 0.0, 1e4, "V");
         detail::require_range("solver.relative_tolerance", s.render.stepper.relative_tolerance, 1e-10, 1e-1);
         detail::require_above("solver.absolute_tolerance_v", s.render.stepper.absolute_tolerance_v, 0.0, 1.0, "V");
-        if (s.render.preroll_s >= 0.0) detail::require_range("solver.preroll_s", s.render.preroll_s, 1e-3, 100.0, "s");
+        // -1 (the default, written by to_toml) asks for the automatic preroll; any other value is a duration.
+        if (s.render.preroll_s != -1.0)
+            detail::require_range("solver.preroll_s", s.render.preroll_s, 1e-3, 100.0, "s, or -1 for the automatic preroll");
         detail::require_range("solver.dc_block_hz", s.render.dc_block_hz, 1e-3, 200.0, "Hz");
         detail::require_range("solver.carrier_steps_floor", s.render.carrier_steps_floor, 4.0, 1000.0);
         detail::require_above("solver.dc_tolerance", s.render.dc_tolerance, 0.0, 0.1);
@@ -359,7 +430,7 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
         const std::string msg = e.what();
         const auto sp = msg.find(' ');
         const std::string field = msg.substr(0, sp);
-        throw config_error(fmt::format("{}: {}", where_is(root, field, file), msg));
+        throw config_error(fmt::format("{}: {}", where_is(root, field, file, overridden), msg));
     }
     return s;
 }
@@ -369,7 +440,7 @@ scenario load_scenario(const fs::path& file, const std::vector<std::string>& ove
     std::error_code ec;
     if (fs::is_directory(file, ec)) throw config_error(fmt::format("{}: is a directory, not a scenario file", file.string()));
     std::ifstream in(file, std::ios::binary);
-    if (!in) throw config_error(fmt::format("{}: cannot open the scenario file", file.string()));
+    if (!in) throw config_error(fmt::format("{}: cannot open the scenario file: {}", file.string(), std::strerror(errno)));
     std::stringstream ss;
     ss << in.rdbuf();
     return parse_scenario(ss.str(), file, overrides);
@@ -385,9 +456,20 @@ std::unique_ptr<modulation> make_programme(const scenario& s)
         cs.max_duration_s = p.duration_s;
         auto reader = std::make_unique<wav_reader>(p.audio);
         if (p.audio_cutoff_hz > 0.45 * reader->sample_rate_hz())
-            throw config_error(fmt::format("{}: signal.audio_cutoff_hz = {}: must be at most 0.45 x the clip's sample rate ({} Hz)",
-                                           s.file.string(), p.audio_cutoff_hz, reader->sample_rate_hz()));
-        return std::make_unique<clip_modulation>(std::move(reader), cs);
+            throw config_error(fmt::format("{}: signal.audio_cutoff_hz = {}: must be at most 0.45 x the sample rate ({} Hz) of {}",
+                                           s.file.string(), detail::format_value(p.audio_cutoff_hz), reader->sample_rate_hz(),
+                                           p.audio.string()));
+        // The conditioning reads the whole clip once (peak, non-finite samples, truncation): name the file in
+        // what it reports unless the message already does.
+        const std::string name = p.audio.string();
+        auto named = [&](const std::string& msg) { return msg.rfind(name, 0) == 0 ? msg : name + ": " + msg; };
+        try {
+            return std::make_unique<clip_modulation>(std::move(reader), cs);
+        } catch (const audio_error& e) {
+            throw audio_error(named(e.what()));
+        } catch (const config_error& e) {
+            throw config_error(named(e.what()));
+        }
     }
     case programme_kind::tone: return std::make_unique<tone_modulation>(std::vector{p.tone_hz}, std::vector{1.0}, p.duration_s);
     case programme_kind::two_tone:
@@ -398,7 +480,30 @@ std::unique_ptr<modulation> make_programme(const scenario& s)
     throw config_error("unknown programme kind");
 }
 
+double programme_duration_s(const scenario& s)
+{
+    const auto& p = s.programme;
+    if (p.kind != programme_kind::clip) return p.duration_s;
+    const wav_reader r(p.audio);
+    const double whole = static_cast<double>(r.frames()) / r.sample_rate_hz();
+    return p.duration_s > 0.0 ? std::min(whole, p.duration_s) : whole;
+}
+
 namespace {
+/// A TOML basic string: quotes, backslashes and control characters escaped.
+std::string toml_quote(std::string_view text)
+{
+    std::string o = "\"";
+    for (const char c : text) {
+        const auto u = static_cast<unsigned char>(c);
+        if (c == '"') o += "\\\"";
+        else if (c == '\\') o += "\\\\";
+        else if (u < 0x20 || u == 0x7f) o += fmt::format("\\u{:04x}", u);
+        else o += c;
+    }
+    return o + "\"";
+}
+
 std::string num(double v)
 {
     if (std::isinf(v)) return v > 0 ? "inf" : "-inf";
@@ -414,7 +519,7 @@ std::string to_toml(const scenario& s)
     const auto& e = s.circuit.earpiece;
     std::string o;
     o += "[signal]\n";
-    if (p.kind == programme_kind::clip) o += fmt::format("audio = \"{}\"\n", p.audio.string());
+    if (p.kind == programme_kind::clip) o += fmt::format("audio = {}\n", toml_quote(p.audio.string()));
     else o += fmt::format("test_signal = \"{}\"\n", p.kind == programme_kind::tone ? "tone" : p.kind == programme_kind::two_tone ? "two-tone" : "log-sweep");
     o += fmt::format("tone_hz = {}\ntone2_hz = {}\ntone_ratio = {}\nsweep_start_hz = {}\nsweep_stop_hz = {}\n", num(p.tone_hz),
                      num(p.tone2_hz), num(p.tone_ratio), num(p.sweep_start_hz), num(p.sweep_stop_hz));

@@ -1,12 +1,18 @@
 #include "galena/sweep.hpp"
 
 #include "galena/audio_io.hpp"
+#include "galena/cancel.hpp"
 #include "galena/components.hpp"
 #include "galena/error.hpp"
+#include "galena/validate.hpp"
 
 #include <algorithm>
 #include <atomic>
+#include <cerrno>
 #include <cmath>
+#include <cstring>
+#include <fstream>
+#include <optional>
 #include <cstdlib>
 #include <exception>
 #include <fmt/format.h>
@@ -171,10 +177,12 @@ std::vector<variant_spec> expand_sweep(const std::vector<sweep_axis>& axes)
     for (const auto& a : axes) {
         if (a.values.empty()) throw config_error(fmt::format("--vary {}: no values", a.key));
         total *= a.values.size();
-        if (total > 1000) throw config_error("sweep: more than 1000 variants; narrow the ranges");
+        if (total > sweep_hard_limit)
+            throw config_error(fmt::format("--vary {}: the axes multiply to {} variants or more: a sweep must hold at most {}; narrow the ranges",
+                                           a.key, total, sweep_hard_limit));
     }
     std::vector<variant_spec> out;
-    const int width = total >= 100 ? 3 : 2;
+    const int width = total >= 1000 ? 4 : total >= 100 ? 3 : 2;
     for (std::size_t i = 0; i < total; ++i) {
         variant_spec v;
         v.name = fmt::format("{:0{}}", i + 1, width);
@@ -198,56 +206,110 @@ std::vector<variant_spec> expand_sweep(const std::vector<sweep_axis>& axes)
     return out;
 }
 
-pack_spec load_pack(const fs::path& file)
+namespace {
+std::string pack_where(const toml::node& n, const fs::path& file)
+{
+    const auto& src = n.source();
+    return src.begin.line > 0 ? fmt::format("{}:{}", file.string(), src.begin.line) : file.string();
+}
+
+std::string pack_string(const toml::table& t, const char* key, const std::string& field, const fs::path& file)
+{
+    const toml::node* n = t.get(key);
+    if (n == nullptr) return {};
+    if (auto v = n->value_exact<std::string>()) return *v;
+    throw config_error(fmt::format("{}: {}: must be a string", pack_where(*n, file), field));
+}
+
+std::optional<double> pack_number(const toml::table& t, const char* key, const std::string& field, const fs::path& file)
+{
+    const toml::node* n = t.get(key);
+    if (n == nullptr) return std::nullopt;
+    if (auto v = n->value_exact<double>()) return *v;
+    if (auto v = n->value_exact<int64_t>()) return static_cast<double>(*v);
+    throw config_error(fmt::format("{}: {}: must be a number", pack_where(*n, file), field));
+}
+} // namespace
+
+pack_spec parse_pack(const std::string& text, const fs::path& file)
 {
     toml::table root;
     try {
-        root = toml::parse_file(file.string());
+        root = toml::parse(text, file.string());
     } catch (const toml::parse_error& e) {
         throw config_error(fmt::format("{}:{}: malformed TOML: {}", file.string(), e.source().begin.line, e.description()));
     }
     pack_spec p;
     p.file = file;
+    for (const auto& [k, v] : root) {
+        const std::string key(k.str());
+        if (key != "pack" && key != "variant")
+            throw config_error(fmt::format("{}: {}: unknown section (a pack file holds [pack] and [[variant]])", pack_where(v, file), key));
+    }
     const auto* pack = root["pack"].as_table();
-    if (pack == nullptr) throw config_error(fmt::format("{}: [pack]: missing section (needs pack.scenario)", file.string()));
+    if (pack == nullptr) throw config_error(fmt::format("{}: [pack]: missing section, or not a table (needs pack.scenario)", file.string()));
     for (const auto& [k, v] : *pack) {
         const std::string key(k.str());
         if (key != "title" && key != "scenario" && key != "measure_tone_hz" && key != "measure_duration_s")
             throw config_error(fmt::format("{}: pack.{}: unknown key (known: title, scenario, measure_tone_hz, measure_duration_s)",
-                                           file.string(), key));
+                                           pack_where(v, file), key));
     }
-    p.title = (*pack)["title"].value_or(std::string("galena comparison"));
-    const auto sc = (*pack)["scenario"].value<std::string>();
-    if (!sc) throw config_error(fmt::format("{}: pack.scenario: missing (the base scenario file)", file.string()));
-    p.scenario = fs::path(*sc).is_absolute() ? fs::path(*sc) : file.parent_path() / *sc;
-    p.measure_tone_hz = (*pack)["measure_tone_hz"].value_or(0.0);
-    p.measure_duration_s = (*pack)["measure_duration_s"].value_or(0.3);
+    p.title = pack_string(*pack, "title", "pack.title", file);
+    if (p.title.empty()) p.title = "galena comparison";
+    const std::string sc = pack_string(*pack, "scenario", "pack.scenario", file);
+    if (sc.empty()) throw config_error(fmt::format("{}: pack.scenario: missing (the base scenario file)", file.string()));
+    p.scenario = fs::path(sc).is_absolute() ? fs::path(sc) : file.parent_path() / sc;
+    p.measure_tone_hz = pack_number(*pack, "measure_tone_hz", "pack.measure_tone_hz", file).value_or(0.0);
+    p.measure_duration_s = pack_number(*pack, "measure_duration_s", "pack.measure_duration_s", file).value_or(0.3);
     if (!(p.measure_tone_hz >= 0.0) || p.measure_tone_hz > 20000.0)
-        throw config_error(fmt::format("{}: pack.measure_tone_hz = {}: must be 0 (off) or in (0, 20000] Hz", file.string(), p.measure_tone_hz));
+        throw config_error(fmt::format("{}: pack.measure_tone_hz = {}: must be 0 (off) or in (0, 20000] Hz",
+                                       pack_where(*pack->get("measure_tone_hz"), file), detail::format_value(p.measure_tone_hz)));
     if (!(p.measure_duration_s > 0.0) || p.measure_duration_s > 10.0)
-        throw config_error(fmt::format("{}: pack.measure_duration_s = {}: must be in (0, 10] s", file.string(), p.measure_duration_s));
+        throw config_error(fmt::format("{}: pack.measure_duration_s = {}: must be in (0, 10] s",
+                                       pack_where(*pack->get("measure_duration_s"), file), detail::format_value(p.measure_duration_s)));
     const auto* arr = root["variant"].as_array();
     if (arr == nullptr || arr->empty())
         throw config_error(fmt::format("{}: [[variant]]: at least one variant is needed", file.string()));
+    if (arr->size() > sweep_hard_limit)
+        throw config_error(fmt::format("{}: [[variant]]: {} variants: must be at most {}", file.string(), arr->size(), sweep_hard_limit));
     for (std::size_t i = 0; i < arr->size(); ++i) {
         const auto* t = (*arr)[i].as_table();
-        const std::string where = fmt::format("{}: variant {}", file.string(), i + 1);
+        const std::string where = fmt::format("{}: variant {}", pack_where((*arr)[i], file), i + 1);
         if (t == nullptr) throw config_error(where + ": must be a table [[variant]]");
+        for (const auto& [k, v] : *t) {
+            const std::string key(k.str());
+            if (key != "name" && key != "label" && key != "set")
+                throw config_error(fmt::format("{}: variant {}: {}: unknown key (known: name, label, set)", pack_where(v, file), i + 1, key));
+        }
         variant_spec v;
-        v.name = (*t)["name"].value_or(std::string());
+        v.name = pack_string(*t, "name", "name", file);
         if (!name_ok(v.name))
             throw config_error(fmt::format("{}: name = \"{}\": needs letters, digits, '-', '_' or '.' only", where, v.name));
-        v.label = (*t)["label"].value_or(v.name);
-        if (const auto* set = (*t)["set"].as_array()) {
-            for (const auto& e : *set) {
-                const auto s = e.value<std::string>();
-                if (!s) throw config_error(where + ": set: must be a list of strings \"section.key=value\"");
+        v.label = pack_string(*t, "label", "label", file);
+        if (v.label.empty()) v.label = v.name;
+        if (const toml::node* set = t->get("set")) {
+            const auto* list = set->as_array();
+            if (list == nullptr) throw config_error(fmt::format("{}: variant {}: set: must be a list of strings \"section.key=value\"", pack_where(*set, file), i + 1));
+            for (const auto& e : *list) {
+                const auto s = e.value_exact<std::string>();
+                if (!s) throw config_error(fmt::format("{}: variant {}: set: must be a list of strings \"section.key=value\"", pack_where(e, file), i + 1));
                 v.overrides.push_back(*s);
             }
         }
         p.variants.push_back(std::move(v));
     }
     return p;
+}
+
+pack_spec load_pack(const fs::path& file)
+{
+    std::error_code ec;
+    if (fs::is_directory(file, ec)) throw config_error(fmt::format("{}: is a directory, not a pack or scenario file", file.string()));
+    std::ifstream in(file, std::ios::binary);
+    if (!in) throw config_error(fmt::format("{}: cannot open the pack file: {}", file.string(), std::strerror(errno)));
+    std::stringstream ss;
+    ss << in.rdbuf();
+    return parse_pack(ss.str(), file);
 }
 
 fs::path find_bundled_file(const fs::path& relative, const fs::path& executable, const fs::path& installed_data_dir)
@@ -319,10 +381,18 @@ std::string table_markdown(const std::vector<variant_result>& rows)
     return o;
 }
 
-sweep_result run_sweep(const fs::path& base_file, const std::vector<std::string>& base_overrides,
-                       const std::vector<variant_spec>& variants, const fs::path& out_dir, const sweep_options& opt)
+sweep_result prepare_sweep(const fs::path& base_file, const std::vector<std::string>& base_overrides,
+                           const std::vector<variant_spec>& variants, const sweep_options& opt)
 {
-    if (variants.empty()) throw config_error("sweep: no variants to render");
+    if (variants.empty()) throw config_error(fmt::format("{}: sweep: no variants to render", base_file.string()));
+    if (variants.size() > sweep_hard_limit)
+        throw config_error(fmt::format("{}: sweep: {} variants: must be at most {}", base_file.string(), variants.size(), sweep_hard_limit));
+    if (opt.measure_tone_hz != 0.0) {
+        if (!(opt.measure_tone_hz > 0.0 && opt.measure_tone_hz <= 20000.0))
+            throw config_error(fmt::format("--measure-tone = {}: must be 0 (off) or in (0, 20000] Hz", detail::format_value(opt.measure_tone_hz)));
+        if (!(opt.measure_duration_s > 0.0 && opt.measure_duration_s <= 10.0))
+            throw config_error(fmt::format("--measure-duration = {}: must be in (0, 10] s", detail::format_value(opt.measure_duration_s)));
+    }
     sweep_result res;
     res.variants.resize(variants.size());
     // Validate everything first: a bad key in variant 9 must not cost eight renders.
@@ -339,9 +409,10 @@ sweep_result run_sweep(const fs::path& base_file, const std::vector<std::string>
         } catch (const config_error& e) {
             throw config_error(fmt::format("variant {}: {}", r.spec.name, e.what()));
         }
-        r.dir = out_dir / r.spec.name;
         r.measured_separately = opt.measure_tone_hz > 0.0 && r.scene.programme.kind == programme_kind::clip;
         if (r.measured_separately) {
+            detail::require_range("--measure-tone", opt.measure_tone_hz, 1.0, 0.45 * r.scene.render.audio_rate_hz,
+                                  "Hz (0.45 x output.sample_rate_hz)");
             r.measure_scene = r.scene;
             r.measure_scene.programme.kind = programme_kind::tone;
             r.measure_scene.programme.tone_hz = opt.measure_tone_hz;
@@ -351,36 +422,101 @@ sweep_result run_sweep(const fs::path& base_file, const std::vector<std::string>
         if (i > 0 && r.scene.render.audio_rate_hz != res.variants[0].scene.render.audio_rate_hz)
             throw config_error(fmt::format("variant {}: output.sample_rate_hz = {}: every variant needs the same rate ({})",
                                            r.spec.name, r.scene.render.audio_rate_hz, res.variants[0].scene.render.audio_rate_hz));
+        for (const auto& in : scenario_inputs(r.scene))
+            if (std::find(res.inputs.begin(), res.inputs.end(), in) == res.inputs.end()) res.inputs.push_back(in);
     }
+    if (variants.size() > sweep_confirm_limit && !opt.allow_large)
+        throw config_error(fmt::format("{}: sweep: {} variants: more than {} need --allow-large (each variant is a full render)",
+                                       base_file.string(), variants.size(), sweep_confirm_limit));
+    double programme_s = 0.0;
+    std::size_t renders = 0;
+    for (const auto& r : res.variants) {
+        try {
+            programme_s += programme_duration_s(r.scene);
+        } catch (const audio_error& e) {
+            throw audio_error(fmt::format("variant {}: {}", r.spec.name, e.what()));
+        }
+        ++renders;
+        if (r.measured_separately) {
+            programme_s += r.measure_scene.programme.duration_s;
+            ++renders;
+        }
+    }
+    const unsigned threads = opt.threads != 0 ? opt.threads : std::max(1u, std::thread::hardware_concurrency());
+    check_render_length(res.variants[0].scene, base_file.string(), programme_s, renders, threads, opt.allow_long);
+    return res;
+}
+
+void check_sweep_outputs(const sweep_result& res, const staged_output& staged)
+{
+    staged.check("table.csv");
+    staged.check("table.md");
+    for (const auto& r : res.variants) {
+        for (const auto& n : job_file_names()) staged.check(fs::path(r.spec.name) / n);
+        if (r.measured_separately)
+            for (const auto& n : job_file_names()) staged.check(fs::path(r.spec.name) / "measure" / n);
+    }
+}
+
+void relocate(sweep_result& res, const staged_output& staged)
+{
+    for (auto& r : res.variants) {
+        r.dir = staged.published(r.dir);
+        relocate(r.job, staged);
+    }
+    res.csv = staged.published(res.csv);
+    res.markdown = staged.published(res.markdown);
+}
+
+sweep_result run_sweep(const fs::path& base_file, const std::vector<std::string>& base_overrides,
+                       const std::vector<variant_spec>& variants, const fs::path& out_dir, const sweep_options& opt)
+{
+    sweep_result res = prepare_sweep(base_file, base_overrides, variants, opt);
+    staged_output staged(out_dir, opt.overwrite, res.inputs);
+    check_sweep_outputs(res, staged);
+    with_described_errors(staged, [&] {
+        render_sweep(res, staged.dir(), opt);
+        throw_if_cancelled();
+        staged.publish();
+    });
+    relocate(res, staged);
+    for (auto& r : res.variants)
+        for (auto& w : r.job.warnings) w = staged.describe(w);
+    return res;
+}
+
+void render_sweep(sweep_result& res, const fs::path& out_dir, const sweep_options& opt)
+{
+    const std::size_t count = res.variants.size();
+    for (auto& r : res.variants) r.dir = out_dir / r.spec.name;
     res.csv = out_dir / "table.csv";
     res.markdown = out_dir / "table.md";
-    std::error_code ec;
-    if (!opt.overwrite)
-        for (const auto& p : {res.csv, res.markdown})
-            if (fs::exists(p, ec)) throw audio_error(fmt::format("{}: already exists (pass --overwrite to replace it)", p.string()));
-    fs::create_directories(out_dir, ec);
-    if (ec) throw audio_error(fmt::format("{}: cannot create the output directory: {}", out_dir.string(), ec.message()));
 
     unsigned threads = opt.threads != 0 ? opt.threads : std::max(1u, std::thread::hardware_concurrency());
-    threads = std::min<unsigned>(threads, static_cast<unsigned>(variants.size()));
+    threads = std::min<unsigned>(threads, static_cast<unsigned>(count));
     std::atomic<std::size_t> next{0};
     std::atomic<bool> failed{false};
     std::exception_ptr first_error;
-    std::size_t first_error_index = variants.size();
+    std::size_t first_error_index = count;
     std::mutex m;
     std::size_t finished = 0;
     auto work = [&] {
         for (;;) {
             const std::size_t i = next.fetch_add(1);
-            if (i >= variants.size() || failed.load()) return;
+            if (i >= count || failed.load() || cancel_requested()) return;
             try {
                 auto& r = res.variants[i];
+                std::error_code ec;
+                fs::create_directories(r.dir, ec);
+                if (ec) throw audio_error(fmt::format("{}: cannot create: {}", r.dir.string(), ec.message()));
                 job_options jo;
                 jo.overwrite = opt.overwrite;
-                r.job = run_render_job(r.scene, r.dir, jo);
+                jo.stop = &failed;
+                r.job = render_job_into(r.scene, r.dir, jo);
                 r.metrics = r.job.metrics;
                 if (r.measured_separately) {
-                    job_outcome mo = run_render_job(r.measure_scene, r.dir / "measure", jo);
+                    fs::create_directories(r.dir / "measure", ec);
+                    job_outcome mo = render_job_into(r.measure_scene, r.dir / "measure", jo);
                     r.measure_earpiece_v = std::move(mo.analysis_v);
                     // Levels of the programme itself; distortion figures from the tone.
                     nlohmann::json merged = mo.metrics;
@@ -401,11 +537,13 @@ sweep_result run_sweep(const fs::path& base_file, const std::vector<std::string>
                                   nlohmann::json{{"name", r.spec.name}, {"label", r.spec.label}, {"set", r.spec.overrides}}.dump(2) + "\n");
                 std::lock_guard<std::mutex> lk(m);
                 ++finished;
-                if (opt.progress) opt.progress(finished, variants.size(), r.spec.name);
+                if (opt.progress) opt.progress(finished, count, r.spec.name);
             } catch (...) {
                 std::lock_guard<std::mutex> lk(m);
+                // A render stopped because another variant had already failed is not the cause.
+                const bool secondary = failed.load() && !cancel_requested();
                 failed = true;
-                if (i < first_error_index) {
+                if (!secondary && i < first_error_index) {
                     first_error_index = i;
                     first_error = std::current_exception();
                 }
@@ -420,19 +558,22 @@ sweep_result run_sweep(const fs::path& base_file, const std::vector<std::string>
         for (auto& t : pool) t.join();
     }
     if (first_error) {
+        const std::string& name = res.variants[first_error_index].spec.name;
         try {
             std::rethrow_exception(first_error);
+        } catch (const cancelled_error&) {
+            throw;
         } catch (const config_error& e) {
-            throw config_error(fmt::format("variant {}: {}", variants[first_error_index].name, e.what()));
+            throw config_error(fmt::format("variant {}: {}", name, e.what()));
         } catch (const audio_error& e) {
-            throw audio_error(fmt::format("variant {}: {}", variants[first_error_index].name, e.what()));
+            throw audio_error(fmt::format("variant {}: {}", name, e.what()));
         } catch (const integration_error& e) {
-            throw integration_error(fmt::format("variant {}: {}", variants[first_error_index].name, e.what()), e.time_s());
+            throw integration_error(fmt::format("variant {}: {}", name, e.what()), e.time_s());
         }
     }
+    throw_if_cancelled();
     write_text_atomic(res.csv, table_csv(res.variants));
     write_text_atomic(res.markdown, table_markdown(res.variants));
-    return res;
 }
 
 } // namespace galena

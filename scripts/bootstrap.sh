@@ -1,7 +1,9 @@
 #!/usr/bin/env bash
 # Installs what is missing (Debian packages, idempotent), builds galena, then either renders the bundled
-# demo pack (`demo`), runs the whole test suite (`test`), or runs it again under ASan + UBSan (`sanitize`). Run from anywhere; needs root or sudo only
-# when a package is missing.
+# demo pack (`demo`), runs the whole test suite (`test`), runs it again under ASan + UBSan (`sanitize`), or
+# builds the libFuzzer harnesses with clang and runs each for a bounded time on its seed corpus (`fuzz`;
+# GALENA_FUZZ_SECONDS per harness, default 60). Run from anywhere; needs root or sudo only when a package
+# is missing.
 set -euo pipefail
 mode="${1:-demo}"
 here="$(cd "$(dirname "${BASH_SOURCE[0]}")/.." && pwd)"
@@ -9,11 +11,13 @@ build="${GALENA_BUILD_DIR:-$here/build}"
 
 build_pkgs=(build-essential cmake pkg-config libboost-dev libeigen3-dev libsndfile1-dev libfmt-dev doctest-dev
             libsamplerate0-dev libfftw3-dev libtomlplusplus-dev libcli11-dev nlohmann-json3-dev gnuplot-nox espeak-ng)
-test_pkgs=(ngspice sox python3-numpy python3-scipy python3-pil chromium)
+test_pkgs=(ngspice sox python3-numpy python3-scipy python3-pil chromium util-linux mount)
+fuzz_pkgs=(clang-14 libclang-rt-14-dev)
 case "$mode" in
   demo) pkgs=("${build_pkgs[@]}") ;;
   test|sanitize) pkgs=("${build_pkgs[@]}" "${test_pkgs[@]}") ;;
-  *) echo "usage: $0 demo|test|sanitize" >&2; exit 2 ;;
+  fuzz) pkgs=("${build_pkgs[@]}" "${fuzz_pkgs[@]}") ;;
+  *) echo "usage: $0 demo|test|sanitize|fuzz" >&2; exit 2 ;;
 esac
 
 missing=()
@@ -36,6 +40,31 @@ if [ "$mode" = sanitize ]; then
   cmake -S "$here" -B "$san" -DCMAKE_BUILD_TYPE=RelWithDebInfo -DGALENA_SANITIZE=ON -DGALENA_BUILD_TESTS=ON
   cmake --build "$san" -j "$jobs"
   ctest --test-dir "$san" --output-on-failure -j "$jobs" -E package_consumer
+  exit 0
+fi
+if [ "$mode" = fuzz ]; then
+  # libFuzzer harnesses (tests/fuzz): clang 14 with ASan + UBSan, assertions on (-O1 -g, no NDEBUG); toml++
+  # linked as its shared library. New inputs go to a scratch corpus; the seeds in tests/fuzz/corpus stay as
+  # they are. A crash, leak, sanitizer report or broken property fails this step and leaves the input in
+  # build-fuzz/crash-*.
+  fz="${GALENA_FUZZ_BUILD_DIR:-$here/build-fuzz}"
+  secs="${GALENA_FUZZ_SECONDS:-60}"
+  cmake -S "$here" -B "$fz" -DCMAKE_CXX_COMPILER=clang++-14 -DCMAKE_BUILD_TYPE=RelWithDebInfo \
+        -DCMAKE_CXX_FLAGS_RELWITHDEBINFO="-O1 -g" -DGALENA_FUZZ=ON -DGALENA_BUILD_TESTS=OFF -DGALENA_BUILD_TOOLS=OFF
+  cmake --build "$fz" -j "$jobs" --target scenario_fuzz wav_fuzz
+  for h in scenario wav; do
+    work="$fz/corpus-$h"
+    rm -rf "$work"
+    mkdir -p "$work"
+    max_len=8192
+    [ "$h" = wav ] && max_len=65536
+    echo "bootstrap: fuzzing $h for $secs s"
+    "$fz/tests/fuzz/${h}_fuzz" -max_total_time="$secs" -timeout=30 -rss_limit_mb=2048 -max_len="$max_len" \
+        -print_final_stats=1 -artifact_prefix="$fz/crash-$h-" "$work" "$here/tests/fuzz/corpus/$h" > "$fz/$h.log" 2>&1 \
+      || { tail -n 60 "$fz/$h.log"; echo "bootstrap: fuzz $h FAILED (input in $fz/crash-$h-*)" >&2; exit 1; }
+    runs="$(sed -n 's/^stat::number_of_executed_units: *//p' "$fz/$h.log")"
+    echo "fuzz $h: ${runs:-?} executions in $secs s, corpus $(ls "$work" | wc -l) new + $(ls "$here/tests/fuzz/corpus/$h" | wc -l) seeds, no findings"
+  done
   exit 0
 fi
 cmake -S "$here" -B "$build" -DCMAKE_BUILD_TYPE=Release -DGALENA_BUILD_TESTS=$([ "$mode" = test ] && echo ON || echo OFF)

@@ -4,6 +4,8 @@
 #include "galena/audio_io.hpp"
 #include "galena/report.hpp"
 
+#include "cli_support.hpp"
+
 #include <doctest/doctest.h>
 #include <nlohmann/json.hpp>
 #include <fmt/format.h>
@@ -16,7 +18,6 @@
 #include <fstream>
 #include <sstream>
 #include <string>
-#include <sys/wait.h>
 #include <vector>
 
 namespace fs = std::filesystem;
@@ -28,33 +29,8 @@ constexpr double k_pi = 3.14159265358979323846;
 const fs::path src_dir = GALENA_SOURCE_DIR;
 const fs::path tmp_root = fs::path(GALENA_TEST_TMP) / "cli";
 
-std::string slurp(const fs::path& p)
-{
-    std::ifstream in(p, std::ios::binary);
-    std::ostringstream ss;
-    ss << in.rdbuf();
-    return ss.str();
-}
-
-struct run_result {
-    int rc = -1;
-    std::string out, err;
-};
-
-/// Runs the built galena binary with `args` (already shell-quoted where needed).
-run_result galena_cli(const std::string& args, const fs::path& dir)
-{
-    REQUIRE_MESSAGE(std::string(GALENA_CLI).size() > 0, "the galena tool is not built (GALENA_BUILD_TOOLS=OFF)");
-    fs::create_directories(dir);
-    const std::string cmd = std::string("'") + GALENA_CLI + "' " + args + " > '" + (dir / "stdout.txt").string() + "' 2> '" +
-                            (dir / "stderr.txt").string() + "'";
-    const int st = std::system(cmd.c_str());
-    run_result r;
-    r.rc = WIFEXITED(st) ? WEXITSTATUS(st) : -1;
-    r.out = slurp(dir / "stdout.txt");
-    r.err = slurp(dir / "stderr.txt");
-    return r;
-}
+using galena_test::galena_cli;
+using galena_test::slurp;
 
 fs::path fresh(const std::string& name)
 {

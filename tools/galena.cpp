@@ -1,4 +1,5 @@
 // galena command-line tool: argument parsing and exit codes only; all work is done by the library.
+#include "galena/cancel.hpp"
 #include "galena/components.hpp"
 #include "galena/error.hpp"
 #include "galena/job.hpp"
@@ -9,6 +10,7 @@
 
 #include <CLI/CLI.hpp>
 #include <chrono>
+#include <csignal>
 #include <cstdio>
 #include <fmt/format.h>
 #include <unistd.h>
@@ -22,13 +24,19 @@ enum exit_code : int {
     exit_audio = 3,       ///< audio or output file problem
     exit_numerical = 4,   ///< the solver failed
     exit_internal = 70,   ///< a bug: please report
+    exit_signal_base = 128, ///< stopped by signal N (Ctrl-C / SIGINT: 130, SIGTERM: 143)
 };
 
-int report(const std::exception& e, int code)
+/// One line on stderr, whatever the message holds.
+int report(const std::string& what, int code)
 {
-    std::fprintf(stderr, "galena: error: %s\n", e.what());
+    std::string line = what;
+    for (char& c : line)
+        if (c == '\n' || c == '\r') c = ' ';
+    std::fprintf(stderr, "galena: error: %s\n", line.c_str());
     return code;
 }
+int report(const std::exception& e, int code) { return report(std::string(e.what()), code); }
 
 /// Progress of a sweep: a bar on a terminal, plain lines otherwise.
 std::function<void(std::size_t, std::size_t, const std::string&)> sweep_progress(bool quiet)
@@ -73,20 +81,33 @@ void print_pack(const galena::pack_outcome& o, const std::string& out_dir, doubl
 
 int main(int argc, char** argv)
 {
+    galena::install_signal_handlers();
     CLI::App app{"galena: time-domain simulation of the crystal-set detector stage"};
     app.require_subcommand(1);
+    // Command-line mistakes cost one line too.
+    app.failure_message([](const CLI::App* a, const CLI::Error& e) {
+        std::string line = std::string("galena: error: ") + e.what() + " (see: " + a->get_name() + " --help)";
+        for (char& c : line)
+            if (c == '\n') c = ' ';
+        return line + "\n";
+    });
 
     std::string scenario_path;
     std::string out_dir;
     std::vector<std::string> sets;
     bool overwrite = false;
     bool quiet = false;
+    bool allow_long = false;
+    bool allow_large = false;
+    const std::string long_help = "render more than the programme-time limit (README, \"When something goes wrong\")";
+    const std::string large_help = "render more variants than the sweep-size limit (README, \"When something goes wrong\")";
     auto* render = app.add_subcommand("render", "render one scenario to DIR/recovered.wav");
     render->add_option("scenario", scenario_path, "scenario file (TOML)")->required();
     render->add_option("--out,-o", out_dir, "output directory")->required();
     render->add_option("--set,-s", sets, "override a value: section.key=value (repeatable)");
     render->add_flag("--overwrite", overwrite, "replace existing output files");
     render->add_flag("--quiet,-q", quiet, "no progress output");
+    render->add_flag("--allow-long", allow_long, long_help);
 
     std::string check_path;
     std::vector<std::string> check_sets;
@@ -110,6 +131,8 @@ int main(int argc, char** argv)
     sweep->add_option("--measure-tone", sw_tone_hz, "for audio clips, also render a tone of this frequency for THD, Hz");
     sweep->add_flag("--overwrite", overwrite, "replace existing output files");
     sweep->add_flag("--quiet,-q", quiet, "no progress output");
+    sweep->add_flag("--allow-long", allow_long, long_help);
+    sweep->add_flag("--allow-large", allow_large, large_help);
 
     std::string cmp_input, cmp_out;
     std::vector<std::string> cmp_sets, cmp_vary, cmp_variants;
@@ -132,6 +155,8 @@ int main(int argc, char** argv)
     compare->add_flag("--no-curves", cmp_no_curves, "skip the simulated response and transfer curves");
     compare->add_flag("--overwrite", overwrite, "replace existing output files");
     compare->add_flag("--quiet,-q", quiet, "no progress output");
+    compare->add_flag("--allow-long", allow_long, long_help);
+    compare->add_flag("--allow-large", allow_large, large_help);
 
     std::string demo_out = "demo-out";
     unsigned demo_threads = 0;
@@ -171,6 +196,8 @@ int main(int argc, char** argv)
             so.overwrite = overwrite;
             so.measure_tone_hz = sw_tone_hz;
             so.progress = sweep_progress(quiet);
+            so.allow_long = allow_long;
+            so.allow_large = allow_large;
             const auto r = galena::run_sweep(sw_scenario, sw_sets, collect_variants(sw_vary, sw_variants), sw_out, so);
             fmt::print("{}\nwrote {} and {}\n", galena::table_markdown(r.variants), r.csv.string(), r.markdown.string());
             return exit_ok;
@@ -180,6 +207,8 @@ int main(int argc, char** argv)
             galena::pack_options po;
             po.sweep.overwrite = overwrite;
             po.sweep.progress = sweep_progress(quiet);
+            po.sweep.allow_long = allow_long;
+            po.sweep.allow_large = allow_large;
             std::filesystem::path base;
             std::vector<galena::variant_spec> variants;
             std::string out = *demo ? demo_out : cmp_out;
@@ -196,6 +225,7 @@ int main(int argc, char** argv)
                 po.sweep.measure_tone_hz = pack.measure_tone_hz;
                 po.sweep.measure_duration_s = pack.measure_duration_s;
                 po.note = fmt::format("Made by galena from {}.", input.filename().string());
+                po.protect.push_back(input);
             } else {
                 base = input;
                 variants = collect_variants(cmp_vary, cmp_variants);
@@ -211,6 +241,19 @@ int main(int argc, char** argv)
             const auto s = galena::load_scenario(scenario_path, sets);
             galena::job_options opt;
             opt.overwrite = overwrite;
+            opt.allow_long = allow_long;
+            // Plots go into the staged output with the WAV; a gnuplot failure costs the plots, not the render.
+            opt.extras = [&](const galena::job_outcome& o, const std::filesystem::path& dir) {
+                std::vector<std::string> w;
+                try {
+                    (void)galena::draw_render_plots(s, o, dir / "plots");
+                } catch (const galena::audio_error& e) {
+                    std::error_code ec;
+                    std::filesystem::remove_all(dir / "plots", ec);
+                    w.push_back(std::string("plots left out: ") + e.what());
+                }
+                return w;
+            };
             const bool tty = isatty(fileno(stderr)) != 0;
             int last = -1;
             if (!quiet)
@@ -223,7 +266,6 @@ int main(int argc, char** argv)
                 };
             const auto o = galena::run_render_job(s, out_dir, opt);
             if (!quiet && tty) std::fprintf(stderr, "\n");
-            (void)galena::draw_render_plots(s, o, std::filesystem::path(out_dir) / "plots");
             fmt::print("{}", galena::to_text(o.metrics));
             fmt::print("wrote {} ({} samples at {} Hz, full scale {:.3g} V peak)\n", o.wav.string(), o.render.samples,
                        o.render.audio_rate_hz, o.full_scale_v);
@@ -232,6 +274,9 @@ int main(int argc, char** argv)
             for (const auto& w : o.warnings) std::fprintf(stderr, "galena: warning: %s\n", w.c_str());
             return exit_ok;
         }
+    } catch (const galena::cancelled_error& e) {
+        if (!quiet && isatty(fileno(stderr)) != 0) std::fprintf(stderr, "\n");
+        return report(e, exit_signal_base + (e.signal_number() != 0 ? e.signal_number() : SIGINT));
     } catch (const galena::config_error& e) {
         return report(e, exit_usage);
     } catch (const galena::audio_error& e) {

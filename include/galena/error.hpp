@@ -1,15 +1,41 @@
 /// The error hierarchy: one root type and one subtype per failure channel.
 #pragma once
 
+#include <cstdio>
 #include <stdexcept>
 #include <string>
+#include <string_view>
 
 namespace galena {
 
-/// Root of every error galena throws. The message names the file or field, the value and the rule.
+namespace detail {
+/// Text safe inside a one-line message: newlines and other control characters become escapes
+/// (\n, \r, \t, \xHH), so user text quoted in a message (a key, a value, a path) cannot break the line.
+[[nodiscard]] inline std::string one_line(std::string_view text)
+{
+    std::string out;
+    out.reserve(text.size());
+    for (const char c : text) {
+        const auto u = static_cast<unsigned char>(c);
+        if (c == '\n') out += "\\n";
+        else if (c == '\r') out += "\\r";
+        else if (c == '\t') out += "\\t";
+        else if (u < 0x20 || u == 0x7f) {
+            char hex[8];
+            std::snprintf(hex, sizeof hex, "\\x%02x", u);
+            out += hex;
+        } else out += c;
+    }
+    return out;
+}
+} // namespace detail
+
+/// Root of every error galena throws. The message names the file or field, the value and the rule, and is
+/// always one line (control characters in it are escaped).
 class error : public std::runtime_error {
 public:
-    using std::runtime_error::runtime_error;
+    explicit error(const std::string& what) : std::runtime_error(detail::one_line(what)) {}
+    explicit error(const char* what) : error(std::string(what)) {}
 };
 
 /// A parameter, scenario key or command-line value breaks a documented rule.
@@ -34,6 +60,18 @@ public:
 
 private:
     double m_time_s;
+};
+
+/// The work was stopped on request (Ctrl-C / SIGINT, SIGTERM, or a caller's cancel) before it finished.
+/// Every output it had started is removed before this reaches the caller.
+class cancelled_error : public error {
+public:
+    cancelled_error(const std::string& what, int signal_number) : error(what), m_signal(signal_number) {}
+    /// The signal that asked for the stop (SIGINT, SIGTERM), or 0 for a programmatic cancel.
+    [[nodiscard]] int signal_number() const noexcept { return m_signal; }
+
+private:
+    int m_signal;
 };
 
 } // namespace galena

@@ -4,7 +4,9 @@
 
 #include "galena/render.hpp"
 #include "galena/scenario.hpp"
+#include "galena/staged_output.hpp"
 
+#include <atomic>
 #include <filesystem>
 #include <functional>
 #include <nlohmann/json.hpp>
@@ -14,11 +16,25 @@
 
 namespace galena {
 
+/// Programme time, s, that one command may render without an explicit opt-in (`--allow-long`): summed over
+/// every render of the command (a sweep's variants and tone measurements). At the default 1 MHz carrier the
+/// solver runs about ten times slower than real time, so this is some twenty minutes of wall time.
+inline constexpr double long_render_limit_s = 120.0;
+
+struct job_outcome;
+
 /// Options of a job.
 struct job_options {
     bool overwrite = false;         ///< replace existing output files
     double fade_s = 0.01;           ///< raised-cosine fade at both ends of the WAV, s; [0, 1]
     std::function<void(double fraction)> progress; ///< optional, called with 0..1
+    bool allow_long = false;        ///< render programmes longer than long_render_limit_s
+    /// Optional: called with the outcome and the staging folder after the render and before publishing
+    /// (e.g. to draw plots there); whatever it writes into the folder is published with the rest, and the
+    /// warnings it returns join the outcome's.
+    std::function<std::vector<std::string>(const job_outcome&, const std::filesystem::path& staged_dir)> extras;
+    /// Optional: polled between solver blocks; once true the render stops with cancelled_error.
+    const std::atomic<bool>* stop = nullptr;
 };
 
 /// What a job wrote and measured.
@@ -46,10 +62,40 @@ struct job_outcome {
 [[nodiscard]] nlohmann::json job_metrics(const scenario& s, std::span<const float> earpiece_v,
                                          const std::vector<std::string>& warnings);
 
-/// Renders `s` into `out_dir` (created if missing). Refuses to write over the scenario's own audio input.
-/// Throws config_error, audio_error or integration_error; on any failure no output file is left behind.
+/// Renders `s` into `out_dir` (created if missing) as one unit: the files are staged beside it and
+/// published together (staged_output), so on any failure or cancel no output file is left behind. Refuses
+/// to replace the scenario file or its audio input (even with overwrite), and existing outputs unless
+/// opt.overwrite; refuses a programme longer than long_render_limit_s unless opt.allow_long.
+/// Polls cancel_requested() between solver blocks. Throws config_error, audio_error, integration_error,
+/// cancelled_error.
 /// @param analysis_limit_s at most this much of the earpiece voltage is kept in analysis_v, s
 job_outcome run_render_job(const scenario& s, const std::filesystem::path& out_dir, const job_options& opt,
                            double analysis_limit_s = 60.0);
+
+/// The files of one render written straight into `dir`, an existing folder that the caller stages
+/// (run_render_job and sweeps do). Same outputs and checks on the samples as run_render_job; no
+/// staging, no length limit. Throws as run_render_job.
+job_outcome render_job_into(const scenario& s, const std::filesystem::path& dir, const job_options& opt,
+                            double analysis_limit_s = 60.0);
+
+/// Output file names of one render job, relative to its directory.
+[[nodiscard]] const std::vector<std::string>& job_file_names();
+
+/// Rewrites the outcome's paths from the staging folder to their published places.
+void relocate(job_outcome& o, const staged_output& staged);
+
+/// The files a scenario reads (scenario file, audio clip): never to be replaced by an output.
+[[nodiscard]] std::vector<std::filesystem::path> scenario_inputs(const scenario& s);
+
+/// Wall time of rendering `programme_s` of programme with the scenario's circuit and carrier on this
+/// machine, s: a short pilot render (30 ms of simulated time, tone programme) gives the wall seconds per
+/// simulated second, which is scaled by the programme plus each render's automatic preroll and divided
+/// among `threads` workers. An estimate: the solver's step count depends on the programme.
+[[nodiscard]] double estimate_render_wall_s(const scenario& s, double programme_s, std::size_t renders = 1, unsigned threads = 1);
+
+/// Throws config_error naming `where`, the programme length, the limit and the estimated wall time when
+/// programme_s > long_render_limit_s and !allow_long; `flag` names the opt-in ("--allow-long").
+void check_render_length(const scenario& s, const std::string& where, double programme_s, std::size_t renders,
+                         unsigned threads, bool allow_long);
 
 } // namespace galena

@@ -103,6 +103,7 @@ struct pack_options {
     bool curves = true;                         ///< simulate response and transfer curves
     std::string title = "galena comparison";
     std::string note;
+    std::vector<std::filesystem::path> protect; ///< more files never to be replaced (the pack file)
 };
 
 /// Everything a pack wrote.
@@ -115,8 +116,9 @@ struct pack_outcome {
     std::vector<matched_gain> matched;
 };
 
-/// The comparison pack: the sweep, the playlist, the matched set, the plots and the page, in `out_dir`.
-/// Throws config_error, audio_error, integration_error.
+/// The comparison pack: the sweep, the playlist, the matched set, the plots and the page, in `out_dir`,
+/// staged and published as one unit (no partial pack on a failure or Ctrl-C). Limits and refusals as
+/// run_sweep. Throws config_error, audio_error, integration_error, cancelled_error.
 pack_outcome make_pack(const std::filesystem::path& base_file, const std::vector<std::string>& base_overrides,
                        const std::vector<variant_spec>& variants, const std::filesystem::path& out_dir, const pack_options& opt);
 

@@ -62,8 +62,14 @@ struct scenario {
 [[nodiscard]] scenario parse_scenario(const std::string& text, const std::filesystem::path& file,
                                       const std::vector<std::string>& overrides = {});
 
-/// Builds the modulation the scenario describes (opens the audio file for clips).
+/// Builds the modulation the scenario describes (opens the audio file for clips). Errors about the clip
+/// (audio_error, config_error) name the clip's file.
 [[nodiscard]] std::unique_ptr<modulation> make_programme(const scenario& s);
+
+/// Programme length, s, without conditioning the clip: a clip's header gives frames / rate (limited by
+/// signal.duration_s when that is > 0); a test signal lasts signal.duration_s. Throws audio_error for a
+/// clip that cannot be opened.
+[[nodiscard]] double programme_duration_s(const scenario& s);
 
 /// The scenario as TOML text, every key explicit (round-trips through parse_scenario).
 [[nodiscard]] std::string to_toml(const scenario& s);

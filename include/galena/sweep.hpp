@@ -38,8 +38,14 @@ struct variant_spec {
 /// Parses "NAME:key=value,key=value" (NAME directory-safe). Throws config_error otherwise.
 [[nodiscard]] variant_spec parse_variant(const std::string& spec);
 
+/// Variants one sweep or pack may render without an explicit opt-in (`--allow-large`).
+inline constexpr std::size_t sweep_confirm_limit = 50;
+/// Variants one sweep may hold at all (names are numbered with up to four digits).
+inline constexpr std::size_t sweep_hard_limit = 1000;
+
 /// The Cartesian product of the axes, first axis slowest; names "01-bleeder_ohm-10k-...", labels
-/// "bleeder_ohm = 10k, ...". Throws config_error for no axes, an empty axis or more than 1000 variants.
+/// "bleeder_ohm = 10k, ...". Throws config_error for no axes, an empty axis or more than sweep_hard_limit
+/// variants.
 [[nodiscard]] std::vector<variant_spec> expand_sweep(const std::vector<sweep_axis>& axes);
 
 /// Formats an SI value compactly for names and labels: 47000 -> "47k", inf -> "none", 1e-8 -> "10n".
@@ -66,8 +72,11 @@ struct pack_spec {
     std::vector<variant_spec> variants;
 };
 
-/// Reads a pack file. Throws config_error "FILE: field: rule".
+/// Reads a pack file. Throws config_error "FILE:LINE: field: rule" (unknown sections and keys, wrong
+/// types and out-of-range values included).
 [[nodiscard]] pack_spec load_pack(const std::filesystem::path& file);
+/// Parses pack text (file is used in messages and to resolve the scenario path). Throws as load_pack.
+[[nodiscard]] pack_spec parse_pack(const std::string& text, const std::filesystem::path& file);
 
 /// Finds a bundled file (e.g. "scenarios/demo-pack.toml") for the demo: under $GALENA_DATA_DIR, then in
 /// the folders above `executable` (a build tree inside the source tree), then above the current
@@ -83,6 +92,8 @@ struct sweep_options {
     double measure_duration_s = 0.3; ///< length of that tone render, s
     /// Called (serialised) after each variant with (finished, total, variant name).
     std::function<void(std::size_t, std::size_t, const std::string&)> progress;
+    bool allow_large = false;        ///< render more than sweep_confirm_limit variants
+    bool allow_long = false;         ///< render more than long_render_limit_s of programme in all
 };
 
 /// What one variant produced.
@@ -100,6 +111,7 @@ struct variant_result {
 /// Results, in variant order.
 struct sweep_result {
     std::vector<variant_result> variants;
+    std::vector<std::filesystem::path> inputs; ///< files the sweep reads (scenario, clips): never replaced
     std::filesystem::path csv;       ///< OUT/table.csv
     std::filesystem::path markdown;  ///< OUT/table.md
 };
@@ -107,11 +119,26 @@ struct sweep_result {
 /// Loads the base scenario with `base_overrides` and each variant's overrides (all validated before any
 /// render starts), renders every variant into OUT/NAME on `threads` workers, and writes the table.
 /// Each variant is computed independently and stored at its index, so the results and files are identical
-/// whatever the thread count. The first failure stops the remaining variants and is rethrown (finished
-/// variants stay; every file is written atomically). Throws config_error, audio_error, integration_error.
+/// whatever the thread count. The whole output is staged and published as one unit (staged_output): the
+/// first failure or a cancel (Ctrl-C) stops every variant, is rethrown, and leaves no output file behind.
+/// Refuses more than sweep_confirm_limit variants without opt.allow_large and more than
+/// long_render_limit_s of programme without opt.allow_long (config_error, with the estimated wall time).
+/// Throws config_error, audio_error, integration_error, cancelled_error.
 [[nodiscard]] sweep_result run_sweep(const std::filesystem::path& base_file, const std::vector<std::string>& base_overrides,
                                      const std::vector<variant_spec>& variants, const std::filesystem::path& out_dir,
                                      const sweep_options& opt);
+
+/// Step one of run_sweep: loads and validates every variant and applies the size and length limits; renders
+/// nothing and touches no file but the inputs. `where` names the command's input file in messages.
+[[nodiscard]] sweep_result prepare_sweep(const std::filesystem::path& base_file, const std::vector<std::string>& base_overrides,
+                                         const std::vector<variant_spec>& variants, const sweep_options& opt);
+/// Refuses early when an output of the prepared sweep (a table, a variant's files) clashes in `staged`.
+void check_sweep_outputs(const sweep_result& res, const staged_output& staged);
+/// Step two: renders the prepared variants into `dir` (an existing folder the caller stages) and writes the
+/// tables there. Throws as run_sweep.
+void render_sweep(sweep_result& res, const std::filesystem::path& dir, const sweep_options& opt);
+/// Rewrites the result's paths from the staging folder to their published places.
+void relocate(sweep_result& res, const staged_output& staged);
 
 /// Table columns: key names of the metrics (in this order) shown in the CSV and Markdown tables.
 [[nodiscard]] const std::vector<std::string>& table_columns();

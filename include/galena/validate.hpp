@@ -13,4 +13,5 @@ void require_above(std::string_view field, double value, double lo, double hi, s
 /// Formats a double compactly for messages (inf, nan, %.6g).
 [[nodiscard]] std::string format_value(double value);
 
+
 } // namespace galena::detail

@@ -1,0 +1,130 @@
+// staged_output: all-or-nothing publishing of an output folder, input protection, cleanup; and the cancel
+// flag that stops long work.
+#include "galena/audio_io.hpp"
+#include "galena/cancel.hpp"
+#include "galena/error.hpp"
+#include "galena/staged_output.hpp"
+
+#include <doctest/doctest.h>
+
+#include <csignal>
+#include <filesystem>
+#include <fstream>
+#include <sstream>
+#include <string>
+
+using namespace galena;
+namespace fs = std::filesystem;
+
+namespace {
+fs::path fresh(const std::string& name)
+{
+    const fs::path d = fs::path(GALENA_TEST_TMP) / "staged_output" / name;
+    fs::remove_all(d);
+    fs::create_directories(d);
+    return d;
+}
+
+std::string read(const fs::path& p)
+{
+    std::ifstream in(p, std::ios::binary);
+    std::ostringstream s;
+    s << in.rdbuf();
+    return s.str();
+}
+
+std::size_t entries(const fs::path& d)
+{
+    std::size_t n = 0;
+    for ([[maybe_unused]] const auto& e : fs::directory_iterator(d)) ++n;
+    return n;
+}
+} // namespace
+
+TEST_CASE("a new target is published by one rename; paths and messages map to it")
+{
+    const fs::path d = fresh("new");
+    staged_output st(d / "deep/out", false);
+    CHECK(st.dir().parent_path() == d / "deep");
+    CHECK(st.dir().filename().string().rfind(".out.partial-", 0) == 0);
+    write_text_atomic(st.dir() / "a.txt", "A");
+    fs::create_directories(st.dir() / "sub");
+    write_text_atomic(st.dir() / "sub/b.txt", "B");
+    CHECK(st.published(st.dir() / "sub/b.txt") == d / "deep/out/sub/b.txt");
+    CHECK(st.published(d / "elsewhere.txt") == d / "elsewhere.txt");
+    CHECK(st.describe(st.dir().string() + "/a.txt: oops") == (d / "deep/out").string() + "/a.txt: oops");
+    st.publish();
+    CHECK(read(d / "deep/out/a.txt") == "A");
+    CHECK(read(d / "deep/out/sub/b.txt") == "B");
+    CHECK(entries(d / "deep") == 1);
+}
+
+TEST_CASE("an unpublished stage leaves nothing, not even the parent folders it made")
+{
+    const fs::path d = fresh("abandon");
+    {
+        staged_output st(d / "x/y/out", false);
+        write_text_atomic(st.dir() / "a.txt", "A");
+    }
+    CHECK(entries(d) == 0);
+}
+
+TEST_CASE("into an existing folder: a clash moves nothing without overwrite; overwrite replaces; inputs never")
+{
+    const fs::path d = fresh("existing");
+    fs::create_directories(d / "out");
+    write_text_atomic(d / "out/keep.txt", "old");
+    write_text_atomic(d / "out/input.wav", "input");
+    {
+        staged_output st(d / "out", false);
+        write_text_atomic(st.dir() / "new.txt", "N");
+        write_text_atomic(st.dir() / "keep.txt", "new");
+        CHECK_THROWS_WITH_AS(st.check("keep.txt"), doctest::Contains("keep.txt: already exists (pass --overwrite"), audio_error);
+        CHECK_THROWS_WITH_AS(st.publish(), doctest::Contains("already exists"), audio_error);
+    }
+    CHECK(read(d / "out/keep.txt") == "old");
+    CHECK_FALSE(fs::exists(d / "out/new.txt"));
+    CHECK(entries(d) == 1);
+    {
+        staged_output st(d / "out", true, {d / "out/input.wav"});
+        write_text_atomic(st.dir() / "input.wav", "clobber");
+        CHECK_THROWS_WITH_AS(st.publish(), doctest::Contains("input.wav: is an input of this run"), audio_error);
+    }
+    CHECK(read(d / "out/input.wav") == "input");
+    staged_output st(d / "out", true);
+    write_text_atomic(st.dir() / "keep.txt", "new");
+    st.publish();
+    CHECK(read(d / "out/keep.txt") == "new");
+    CHECK(entries(d) == 1);
+}
+
+TEST_CASE("a target that is a file, or an input, is refused before anything is made")
+{
+    const fs::path d = fresh("refuse");
+    write_text_atomic(d / "f.toml", "x");
+    CHECK_THROWS_WITH_AS(staged_output(d / "f.toml", true), doctest::Contains("f.toml: --out exists and is not a directory"), audio_error);
+    CHECK_THROWS_WITH_AS(staged_output(d / "f.toml/out", true), doctest::Contains("cannot create the output directory"), audio_error);
+    CHECK(entries(d) == 1);
+}
+
+TEST_CASE("cancel: the flag is raised once, names the signal, and throws until reset")
+{
+    reset_cancel();
+    CHECK_FALSE(cancel_requested());
+    CHECK_NOTHROW(throw_if_cancelled());
+    request_cancel(SIGTERM);
+    request_cancel(SIGINT); // the first request wins
+    CHECK(cancel_requested());
+    try {
+        throw_if_cancelled();
+        FAIL("no cancelled_error");
+    } catch (const cancelled_error& e) {
+        CHECK(e.signal_number() == SIGTERM);
+        CHECK(std::string(e.what()).find("interrupted by SIGTERM") == 0);
+    }
+    reset_cancel();
+    CHECK_NOTHROW(throw_if_cancelled());
+    request_cancel();
+    CHECK_THROWS_WITH_AS(throw_if_cancelled(), doctest::Contains("cancelled"), cancelled_error);
+    reset_cancel();
+}
