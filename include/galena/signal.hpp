@@ -139,7 +139,6 @@ private:
     double m_cutoff_hz = 5000.0;
     std::vector<float> m_buf;   // samples [m_buf_first, m_buf_first + m_buf.size())
     std::size_t m_buf_first = 0;
-    std::size_t m_buf_start_offset = 0; // index in m_buf of the first live sample
     bool m_exhausted = false;
 };
 
