@@ -69,6 +69,30 @@ cvec inverse_fft(const cvec& x)
     return out;
 }
 
+/// Real-input FFT: bins 0 .. n/2 of the n-point transform of x (the rest are their conjugates). Half the
+/// memory of forward_fft on a real signal.
+cvec forward_rfft(std::span<const double> x)
+{
+    const std::vector<double> in(x.begin(), x.end());
+    cvec out;
+    const std::lock_guard lock(fft_mutex());
+    Eigen::FFT<double> fft;
+    fft.SetFlag(Eigen::FFT<double>::HalfSpectrum);
+    fft.fwd(out, in);
+    return out;
+}
+
+/// Inverse of forward_rfft: the real n-point signal whose bins 0 .. n/2 are `half`.
+std::vector<double> inverse_rfft(const cvec& half, std::size_t n)
+{
+    std::vector<double> out;
+    const std::lock_guard lock(fft_mutex());
+    Eigen::FFT<double> fft; // scaled by 1/N by default
+    fft.SetFlag(Eigen::FFT<double>::HalfSpectrum);
+    fft.inv(out, half, static_cast<Eigen::Index>(n));
+    return out;
+}
+
 /// |frequency| of FFT bin k of an n-point transform, Hz.
 double bin_frequency(std::size_t k, std::size_t n, double fs)
 {
@@ -226,23 +250,27 @@ level_metrics measure_levels(std::span<const double> v, double fs, double lo, do
     double s = 0.0;
     for (double x : v) s += x;
     m.dc_v = s / static_cast<double>(v.size());
-    cvec x = forward_fft(v);
-    const std::size_t n = x.size();
+    // Real-input transform (half the memory of a complex one: long analysis windows stay bounded): bins
+    // 1 .. n/2 - 1 stand for themselves and their conjugate twins, so their energy counts twice; bin 0 and,
+    // for even n, bin n/2 count once.
+    const std::size_t n = v.size();
+    cvec x = forward_rfft(v);
     double e = 0.0, ea = 0.0;
-    for (std::size_t k = 0; k < n; ++k) {
+    for (std::size_t k = 0; k < x.size(); ++k) {
         const double f = bin_frequency(k, n, fs);
         if (!in_band(f, lo, hi)) {
             x[k] = 0.0;
             continue;
         }
-        e += std::norm(x[k]);
-        ea += std::norm(x[k]) * std::pow(10.0, a_weighting_db(f) / 10.0);
+        const double twins = (k == 0 || 2 * k == n) ? 1.0 : 2.0;
+        e += twins * std::norm(x[k]);
+        ea += twins * std::norm(x[k]) * std::pow(10.0, a_weighting_db(f) / 10.0);
     }
     m.audio_rms_v = std::sqrt(e) / static_cast<double>(n);
     m.a_weighted_rms_v = std::sqrt(ea) / static_cast<double>(n);
     m.a_weighted_dbv = m.a_weighted_rms_v > 0.0 ? 20.0 * std::log10(m.a_weighted_rms_v) : -std::numeric_limits<double>::infinity();
-    const cvec y = inverse_fft(x);
-    for (const auto& c : y) m.audio_peak_v = std::max(m.audio_peak_v, std::fabs(c.real()));
+    const std::vector<double> y = inverse_rfft(x, n);
+    for (double c : y) m.audio_peak_v = std::max(m.audio_peak_v, std::fabs(c));
     return m;
 }
 
