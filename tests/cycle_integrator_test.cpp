@@ -12,6 +12,7 @@
 #include <boost/math/special_functions/bessel.hpp>
 #include <boost/math/tools/roots.hpp>
 #include <doctest/doctest.h>
+#include "detector_laws.hpp"
 #include <fmt/format.h>
 #include <unsupported/Eigen/MatrixFunctions>
 
@@ -20,14 +21,13 @@
 #include <vector>
 
 using namespace galena;
+using galena_test::dc_law_v;
+using galena_test::vt_25c;
 
 namespace {
 
 // Independent constants: the test does not take them from galena/constants.hpp.
 constexpr double k_pi = 3.14159265358979323846;
-constexpr double k_boltzmann = 1.380649e-23;  // J/K, exact in the 2019 SI [pub: SI brochure, 9th ed.]
-constexpr double k_charge = 1.602176634e-19;  // C, exact in the 2019 SI [pub: SI brochure, 9th ed.]
-const double vt_25c = k_boltzmann * (25.0 + 273.15) / k_charge;
 
 /// A junction that is a linear RC: current v / r_ohm, charge c_f v (grading 0 makes Cj constant; Vj far
 /// away keeps v below the linear continuation).
@@ -196,19 +196,6 @@ TEST_CASE("linear network: the transient from rest matches the matrix exponentia
 
 namespace {
 
-/// Solves Is (I0(V/(n Vt)) exp(-Vdc/(n Vt)) - 1) = Vdc / RL for Vdc (V) with TOMS 748.
-/// [pub: Torrey & Whitmer, Crystal Rectifiers, 1948 (from memory); /work/shared/CHECKS.md item 1]
-double dc_law_v(double v_peak, double is_a, double n, double rl_ohm)
-{
-    const double nvt = n * vt_25c;
-    const double a = v_peak / nvt;
-    const double i0 = boost::math::cyl_bessel_i(0, a);
-    auto f = [&](double y) { return is_a * (i0 * std::exp(-y) - 1.0) - y * nvt / rl_ohm; };
-    std::uintmax_t iterations = 200;
-    const auto [lo, hi] = boost::math::tools::toms748_solve(f, 0.0, std::log(i0), boost::math::tools::eps_tolerance<double>(50),
-                                                            iterations);
-    return nvt * 0.5 * (lo + hi);
-}
 
 circuit_params law_circuit(double is_a, double n, double rl_ohm, double c_f)
 {
@@ -277,6 +264,19 @@ TEST_CASE("rectified DC follows the exponential-diode law through the phase-lock
 }
 
 namespace {
+
+/// The benchmark's source: 0.5 V at 1 MHz, m = 0.5 at 1 kHz, switched on at t = 0.
+struct benchmark_source {
+    tone_modulation tone{{1000.0}, {1.0}, 1.0};
+    am_params am = [] {
+        am_params a;
+        a.carrier_hz = 1e6;
+        a.carrier_peak_v = 0.5;
+        a.modulation_index = 0.5;
+        return a;
+    }();
+    am_source src{am, &tone};
+};
 
 circuit_params benchmark_circuit()
 {
@@ -357,12 +357,9 @@ TEST_CASE("benchmark circuit: automatic N meets the 1e-4 accuracy target; the er
     // converged reference by a different method (rosenbrock4, rtol 1e-7). Measured: 4.6e-6 at the automatic
     // N = 32. The bound, 3e-5, is the automatic choice's tolerance (2e-5 on the detected level) plus the
     // dense output's share.
-    tone_modulation tone({1000.0}, {1.0}, 1.0);
-    am_params am;
-    am.carrier_hz = 1e6;
-    am.carrier_peak_v = 0.5;
-    am.modulation_index = 0.5;
-    const am_source src(am, &tone);
+    const benchmark_source bs;
+    const am_source& src = bs.src;
+    const am_params& am = bs.am;
     const detector_network net(benchmark_circuit());
     const auto oj = make_one_junction_network<1>(net);
     const double dt = 1e-8;
@@ -397,12 +394,9 @@ TEST_CASE("earpiece states: Butterworth-Van Dyke and magnetic phones agree with 
     // carrier cycle; it is compared to 3e-5 (the automatic choice's tolerance plus margin). The waveform
     // within the cycle (the carrier ripple) is reported: with the magnetic phones' small 2 nF node it is
     // a large part of the signal and converges at second order (measured 6.8e-5 relRMS at N = 40).
-    tone_modulation tone({1000.0}, {1.0}, 1.0);
-    am_params am;
-    am.carrier_hz = 1e6;
-    am.carrier_peak_v = 0.5;
-    am.modulation_index = 0.5;
-    const am_source src(am, &tone);
+    const benchmark_source bs;
+    const am_source& src = bs.src;
+    const am_params& am = bs.am;
     auto bvd = benchmark_circuit();
     bvd.earpiece.motional_resistance_ohm = 300.0;
     bvd.earpiece.motional_inductance_h = 0.2;
@@ -435,12 +429,9 @@ TEST_CASE("the batched linearised Newton and the step-by-step Newton solve the s
     // Same discretisation, two solvers: the batched path accepts a step when its linearisation error is
     // below newton_tolerance (1e-8 of the carrier crest); the step-by-step path iterates to 1e-13. Their
     // outputs may differ by about that tolerance, not more.
-    tone_modulation tone({1000.0}, {1.0}, 1.0);
-    am_params am;
-    am.carrier_hz = 1e6;
-    am.carrier_peak_v = 0.5;
-    am.modulation_index = 0.5;
-    const am_source src(am, &tone);
+    const benchmark_source bs;
+    const am_source& src = bs.src;
+    const am_params& am = bs.am;
     const auto oj = make_one_junction_network<1>(detector_network(benchmark_circuit()));
     std::vector<std::vector<double>> outs;
     for (int passes : {4, 0}) {
