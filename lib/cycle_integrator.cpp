@@ -41,7 +41,6 @@ struct batch_arrays {
 
 struct batch_constants {
     int n;
-    double h;          // step, s
     double inv_r;      // 1/R, S
     double pb;         // c . p
     double p;          // p (one-state networks)
@@ -316,7 +315,7 @@ bool cycle_integrator<Dim>::batched_cycle()
         for (int k = 1; k <= n; ++k) m_vp[k] = m_h1[k];
     const batch_arrays arr{m_vp.data(), m_u.data(),   m_cap.data(), m_g.data(),   m_qa.data(), m_ia.data(),  m_f2.data(), m_thr.data(),
                            m_inv_den.data(), m_cst.data(), m_ca.data(), m_m21.data(), m_m22.data(), m_pu.data(), m_cyd.data()};
-    const batch_constants bc{n, m_h, m_inv_r, m_pb, m_p_vec[0], m_cy[0], m_p_mat(0, 0), m_eps_v, m_wa, m_wb, Dim == 1};
+    const batch_constants bc{n, m_inv_r, m_pb, m_p_vec[0], m_cy[0], m_p_mat(0, 0), m_eps_v, m_wa, m_wb, Dim == 1};
     for (int pass = 0; pass < m_s.max_batched_passes; ++pass) {
         ++m_stats.batched_passes;
         linearise_cycle(m_net.junction, arr, bc);
