@@ -6,7 +6,6 @@
 #include "galena/validate.hpp"
 
 #include <algorithm>
-#include <array>
 #include <type_traits>
 #include <chrono>
 #include <cmath>
@@ -48,11 +47,17 @@ public:
     audio_chain(double fs, double fc)
         : m_stage_c(kaiser_lowpass(0.115, 0.02, 90.0), 4),
           m_stage_b(fc, 0.5 / fc, 4.0 * fs, stage_b_origin(fs, m_stage_c.size()), 0.45 * fs, std::min(3.5 * fs, fc - 0.5 * fs), 90.0),
-          m_latency_s(m_stage_b.half_width_s() + 1.0 / fc + static_cast<double>(m_stage_c.size()) / (4.0 * fs))
+          m_latency_s(m_stage_b.half_width_s() + 1.0 / fc + static_cast<double>(m_stage_c.size()) / (4.0 * fs)),
+          // Stage C's first input is centred at stage_b_origin; its output at t reads inputs back to
+          // t - (L - 1) / 2 / (4 fs), so outputs before origin + (L - 1) / 2 / (4 fs) = (L - 4) / (4 fs) still
+          // hold part of the FIR's empty start-up history.
+          m_warm_up_s((static_cast<double>(m_stage_c.size()) - 4.0) / (4.0 * fs))
     {
     }
     /// Simulated time the chain needs beyond t before its output at t is complete, s.
     [[nodiscard]] double latency_s() const noexcept { return m_latency_s; }
+    /// Outputs centred before this time carry the chain's start-up, s: the preroll must cover it.
+    [[nodiscard]] double warm_up_s() const noexcept { return m_warm_up_s; }
 
     void add_cycle_mean(double mean_v, std::vector<double>& audio_out)
     {
@@ -74,6 +79,7 @@ private:
     fir_decimator m_stage_c;
     sinc_resampler m_stage_b;
     double m_latency_s;
+    double m_warm_up_s;
     std::vector<double> m_fine;
 };
 
@@ -138,6 +144,9 @@ render_result render(const circuit_params& circuit, am_params am, modulation& pr
     const auto preroll_samples = static_cast<std::size_t>(std::llround(am.preroll_s * fs));
 
     audio_chain chain(fs, fc);
+    if (am.preroll_s < chain.warm_up_s())
+        throw config_error(fmt::format("solver.preroll_s = {}: must be at least the audio chain's start-up, {:.3g} s",
+                                       detail::format_value(am.preroll_s), chain.warm_up_s()));
     // Chain output n is simulated time n / fs; programme sample m is simulated time preroll + m / fs.
     const std::size_t skip = preroll_samples;
     const double t_end = am.preroll_s + static_cast<double>(total) / fs + chain.latency_s() + 4.0 / fs;
@@ -171,6 +180,18 @@ render_result render(const circuit_params& circuit, am_params am, modulation& pr
         }
         raw.clear();
         if (!block_e.empty()) sink(audio_block{first, block_e, block_a});
+    };
+    // Runs the simulation in chunks of whole carrier cycles until the programme is delivered: prepares the
+    // programme for the chunk (with a margin of cycles on both sides for the envelope's interpolation),
+    // lets advance(c0, c1) simulate cycles [c0, c1) and feed the chain, then delivers.
+    auto for_each_chunk = [&](auto&& advance) {
+        for (std::size_t c0 = 0; c0 < cycles_total && delivered < total; c0 += cycles_per_chunk) {
+            const std::size_t c1 = std::min(cycles_total, c0 + cycles_per_chunk);
+            const double tb = static_cast<double>(c1) * period;
+            programme.prepare(static_cast<double>(c0) * period - am.preroll_s - 2.0 * period, tb - am.preroll_s + 3.0 * period);
+            advance(c0, c1);
+            deliver(tb);
+        }
     };
 
     if (phase_locked) {
@@ -207,18 +228,13 @@ render_result render(const circuit_params& circuit, am_params am, modulation& pr
 
             phase_locked_source sampler(src, n);
             std::vector<double> u(static_cast<std::size_t>(n));
-            for (std::size_t c0 = 0; c0 < cycles_total && delivered < total; c0 += cycles_per_chunk) {
-                const std::size_t c1 = std::min(cycles_total, c0 + cycles_per_chunk);
-                const double ta = static_cast<double>(c0) * period;
-                const double tb = static_cast<double>(c1) * period;
-                programme.prepare(ta - am.preroll_s - 2.0 * period, tb - am.preroll_s + 3.0 * period);
+            for_each_chunk([&](std::size_t c0, std::size_t c1) {
                 for (std::size_t c = c0; c < c1; ++c) {
                     sampler.cycle(c, u);
                     ig.advance(u);
                     chain.add_cycle_mean(ig.output_mean_v(), raw);
                 }
-                deliver(tb);
-            }
+            });
             res.cycles = ig.stats();
             res.stats.accepted = res.cycles.cycles * static_cast<std::size_t>(n);
             res.stats.newton_iterations = res.cycles.batched_passes * static_cast<std::size_t>(n) + res.cycles.scalar_newton_iterations;
@@ -239,16 +255,11 @@ render_result render(const circuit_params& circuit, am_params am, modulation& pr
             auto obs = [&](double t0, const auto& x0s, const auto& f0, double t1, const auto& x1, const auto& f1) {
                 cycle_means.add_segment(t0, t1, x0s[out], x1[out], f0[out], f1[out], means);
             };
-            for (std::size_t c0 = 0; c0 < cycles_total && delivered < total; c0 += cycles_per_chunk) {
-                const std::size_t c1 = std::min(cycles_total, c0 + cycles_per_chunk);
-                const double ta = static_cast<double>(c0) * period;
-                const double tb = static_cast<double>(c1) * period;
-                programme.prepare(ta - am.preroll_s, tb - am.preroll_s);
+            for_each_chunk([&](std::size_t, std::size_t c1) {
                 means.clear();
-                stepper.advance_to(tb, obs);
+                stepper.advance_to(static_cast<double>(c1) * period, obs);
                 for (double m : means) chain.add_cycle_mean(m, raw);
-                deliver(tb);
-            }
+            });
             res.stats = stepper.stats();
             res.simulated_s = stepper.time();
         });
