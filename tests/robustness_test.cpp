@@ -635,63 +635,55 @@ TEST_CASE("long inputs: above the programme-time limit a render is refused with 
 // ---------------------------------------------------------------------------------------------------------
 // Ctrl-C and SIGTERM (exit 128 + signal).
 
-TEST_CASE("Ctrl-C during a render stops it cleanly: exit 130, one line, no output, no staging folder")
+namespace {
+
+/// Starts galena with `args` (the scenario path is appended after the command word) in a fresh folder
+/// `leaf`, sends `sig` once its first samples are being written, and checks the exit code, the one-line
+/// message starting with `message`, that `out` (relative to the folder) does not exist and that no
+/// staging folder is left.
+void interrupt_and_check(const std::string& leaf, std::vector<std::string> args, const std::string& out, int sig, int expect_rc,
+                         const std::string& message)
 {
-    const fs::path d = fresh("sigint");
+    const fs::path d = fresh(leaf);
     const fs::path scen = d / "scene.toml";
     write_file(scen, quick_scenario());
-    // 60 s of programme: far longer than the test waits; the signal comes once samples are being written.
-    const auto s = spawn_galena({"render", scen.string(), "--out", (d / "out").string(), "--set", "signal.duration_s=60", "-q"}, d / "run");
+    args.insert(args.begin() + 1, scen.string());
+    args.insert(args.begin() + 2, {"--out", (d / out).string()});
+    const auto s = spawn_galena(args, d / "run");
     const bool running = wait_for_file(s, d, ".recovered.unclipped.wav", 4096);
-    const int rc = signal_and_wait(s, SIGINT);
+    const int rc = signal_and_wait(s, sig);
     REQUIRE(running);
     const std::string err = slurp(s.err_file);
     INFO("stderr: " << err);
-    CHECK(rc == 130);
-    CHECK(err.rfind("galena: error: interrupted by SIGINT (Ctrl-C)", 0) == 0);
+    CHECK(rc == expect_rc);
+    CHECK(err.rfind(message, 0) == 0);
     CHECK(std::count(err.begin(), err.end(), '\n') == 1);
-    CHECK_FALSE(fs::exists(d / "out"));
+    CHECK_FALSE(fs::exists(d / out));
     CHECK(leftovers(d).empty());
+}
+
+} // namespace
+
+TEST_CASE("Ctrl-C during a render stops it cleanly: exit 130, one line, no output, no staging folder")
+{
+    // 60 s of programme: far longer than the test waits; the signal comes once samples are being written.
+    interrupt_and_check("sigint", {"render", "--set", "signal.duration_s=60", "-q"}, "out", SIGINT, 130,
+                        "galena: error: interrupted by SIGINT (Ctrl-C)");
 }
 
 TEST_CASE("SIGTERM during a sweep stops every variant: exit 143, no table, no variant folder, no staging folder")
 {
-    const fs::path d = fresh("sigterm");
-    const fs::path scen = d / "scene.toml";
-    write_file(scen, quick_scenario());
-    const auto s = spawn_galena({"sweep", scen.string(), "--out", (d / "out").string(), "--set", "signal.duration_s=30", "--vary",
-                                 "load.bleeder_ohm=1e4,1e5", "--threads", "2", "-q"},
-                                d / "run");
-    const bool running = wait_for_file(s, d, ".recovered.unclipped.wav", 4096);
-    const int rc = signal_and_wait(s, SIGTERM);
-    REQUIRE(running);
-    const std::string err = slurp(s.err_file);
-    INFO("stderr: " << err);
-    CHECK(rc == 143);
-    CHECK(err.rfind("galena: error: interrupted by SIGTERM", 0) == 0);
-    CHECK(std::count(err.begin(), err.end(), '\n') == 1);
-    CHECK_FALSE(fs::exists(d / "out"));
-    CHECK(leftovers(d).empty());
+    interrupt_and_check("sigterm",
+                        {"sweep", "--set", "signal.duration_s=30", "--vary", "load.bleeder_ohm=1e4,1e5", "--threads", "2", "-q"}, "out",
+                        SIGTERM, 143, "galena: error: interrupted by SIGTERM");
 }
 
 TEST_CASE("Ctrl-C during a comparison pack leaves no pack: no page, no playlist, no variant folder")
 {
-    const fs::path d = fresh("sigint-pack");
-    const fs::path scen = d / "scene.toml";
-    write_file(scen, quick_scenario());
-    const auto s = spawn_galena({"compare", scen.string(), "--out", (d / "pack").string(), "--set", "signal.duration_s=30", "--variant",
-                                 "a:load.bleeder_ohm=1e4", "--variant", "b:load.bleeder_ohm=1e5", "--threads", "2", "-q"},
-                                d / "run");
-    const bool running = wait_for_file(s, d, ".recovered.unclipped.wav", 4096);
-    const int rc = signal_and_wait(s, SIGINT);
-    REQUIRE(running);
-    const std::string err = slurp(s.err_file);
-    INFO("stderr: " << err);
-    CHECK(rc == 130);
-    CHECK(err.rfind("galena: error: interrupted by SIGINT (Ctrl-C)", 0) == 0);
-    CHECK(std::count(err.begin(), err.end(), '\n') == 1);
-    CHECK_FALSE(fs::exists(d / "pack"));
-    CHECK(leftovers(d).empty());
+    interrupt_and_check("sigint-pack",
+                        {"compare", "--set", "signal.duration_s=30", "--variant", "a:load.bleeder_ohm=1e4", "--variant",
+                         "b:load.bleeder_ohm=1e5", "--threads", "2", "-q"},
+                        "pack", SIGINT, 130, "galena: error: interrupted by SIGINT (Ctrl-C)");
 }
 
 // ---------------------------------------------------------------------------------------------------------
