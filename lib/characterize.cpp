@@ -376,7 +376,14 @@ render_metrics measure_render(std::span<const double> ev, double fs, const circu
     rm.levels = measure_levels(win, fs, lo, hi);
     std::vector<nlohmann::json> parts{to_json(rm.settling), to_json(rm.levels)};
     double top_hz = q.clip_top_hz;
-    if (q.tone_hz > 0.0 && q.tone2_hz > 0.0) {
+    // Without modulation there is no tone at the earpiece: a fit would report noise as distortion.
+    std::string no_tone_reason;
+    if (q.tone_hz > 0.0 && !(am.modulation_index > 0.0)) {
+        no_tone_reason = fmt::format("signal.modulation_index = {}: the carrier is unmodulated, so there is no tone to "
+                                     "measure; tone and distortion figures are null",
+                                     am.modulation_index);
+        rm.warnings.push_back(no_tone_reason);
+    } else if (q.tone_hz > 0.0 && q.tone2_hz > 0.0) {
         rm.has_imd = true;
         rm.imd = analyze_two_tone(win, fs, q.tone_hz, q.tone2_hz, q.tone_ratio, 3);
         parts.push_back(to_json(rm.imd));
@@ -400,7 +407,7 @@ render_metrics measure_render(std::span<const double> ev, double fs, const circu
         rm.clipping = diagnose_clipping(net, top_hz, am.modulation_index);
         observe_failure_to_follow(rm.clipping, net, win, fs);
         parts.push_back(to_json(rm.clipping));
-        rm.warnings = clipping_warnings(rm.clipping);
+        for (auto& w : clipping_warnings(rm.clipping)) rm.warnings.push_back(std::move(w));
     }
     nlohmann::json extra;
     extra["carrier_hz"] = num(am.carrier_hz);
@@ -408,6 +415,7 @@ render_metrics measure_render(std::span<const double> ev, double fs, const circu
     extra["modulation_index"] = num(am.modulation_index);
     extra["detection_efficiency"] = rm.has_tone ? num(rm.detection_efficiency) : nlohmann::json(nullptr);
     extra["analysed_s"] = num(static_cast<double>(win.size()) / fs);
+    extra["tone_not_applicable"] = no_tone_reason.empty() ? nlohmann::json(nullptr) : nlohmann::json(no_tone_reason);
     parts.push_back(extra);
     rm.json = merge_metrics(parts, rm.warnings);
     return rm;

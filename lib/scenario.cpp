@@ -1,4 +1,5 @@
 #include "galena/scenario.hpp"
+#include "galena/text_table.hpp"
 
 #include "galena/error.hpp"
 #include "galena/validate.hpp"
@@ -409,12 +410,14 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
             detail::require_range("signal.sweep_start_hz", p.sweep_start_hz, 1.0, nyq, "Hz");
             detail::require_above("signal.sweep_stop_hz", p.sweep_stop_hz, p.sweep_start_hz, nyq, "Hz");
         }
-        detail::require_above("output.full_scale_v", s.output.full_scale_v, 0.0, 1e4, "V");
+        // 1 nV floor: a subnormal full scale passes "> 0" but its inverse overflows at write time.
+        detail::require_range("output.full_scale_v", s.output.full_scale_v, 1e-9, 1e4, "V");
         detail::require_range("solver.relative_tolerance", s.render.stepper.relative_tolerance, 1e-10, 1e-1);
         detail::require_above("solver.absolute_tolerance_v", s.render.stepper.absolute_tolerance_v, 0.0, 1.0, "V");
         // -1 (the default, written by to_toml) asks for the automatic preroll; any other value is a duration.
         if (s.render.preroll_s != -1.0)
-            detail::require_range("solver.preroll_s", s.render.preroll_s, 1e-3, 100.0, "s, or -1 for the automatic preroll");
+            detail::require_range("solver.preroll_s", s.render.preroll_s, std::max(1e-3, audio_chain_warm_up_s(s.render.audio_rate_hz)),
+                                  100.0, "s (the audio chain's start-up at output.sample_rate_hz), or -1 for the automatic preroll");
         detail::require_range("solver.dc_block_hz", s.render.dc_block_hz, 1e-3, 200.0, "Hz");
         detail::require_range("solver.carrier_steps_floor", s.render.carrier_steps_floor, 4.0, 1000.0);
         detail::require_above("solver.dc_tolerance", s.render.dc_tolerance, 0.0, 0.1);
@@ -437,13 +440,7 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
 
 scenario load_scenario(const fs::path& file, const std::vector<std::string>& overrides)
 {
-    std::error_code ec;
-    if (fs::is_directory(file, ec)) throw config_error(fmt::format("{}: is a directory, not a scenario file", file.string()));
-    std::ifstream in(file, std::ios::binary);
-    if (!in) throw config_error(fmt::format("{}: cannot open the scenario file: {}", file.string(), std::strerror(errno)));
-    std::stringstream ss;
-    ss << in.rdbuf();
-    return parse_scenario(ss.str(), file, overrides);
+    return parse_scenario(read_text_input(file, "scenario file"), file, overrides);
 }
 
 std::unique_ptr<modulation> make_programme(const scenario& s)

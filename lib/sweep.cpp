@@ -4,6 +4,7 @@
 #include "galena/cancel.hpp"
 #include "galena/components.hpp"
 #include "galena/error.hpp"
+#include "galena/text_table.hpp"
 #include "galena/validate.hpp"
 
 #include <algorithm>
@@ -55,6 +56,12 @@ double parse_number(const std::string& text, const std::string& what)
     return v;
 }
 
+std::string lower(std::string s)
+{
+    for (char& c : s) c = static_cast<char>(std::tolower(static_cast<unsigned char>(c)));
+    return s;
+}
+
 bool name_ok(const std::string& n)
 {
     return !n.empty() && n != "." && n != ".." &&
@@ -89,15 +96,16 @@ std::string json_cell(const nlohmann::json& j, int digits, bool csv)
     return j.dump();
 }
 
-std::string csv_quote(const std::string& s)
-{
-    if (s.find_first_of(",\"\n") == std::string::npos) return s;
-    std::string o = "\"";
-    for (char c : s) o += c == '"' ? std::string("\"\"") : std::string(1, c);
-    return o + "\"";
-}
-
 } // namespace
+
+const std::vector<std::string>& reserved_output_names()
+{
+    static const std::vector<std::string> n = {"table.csv", "table.md", "index.html", "playlist.wav", "playlist.csv",
+                                               "playlist-matched.wav", "playlist-matched.csv", "matched", "plots",
+                                               "gains.csv", "variant.json", "measure", "recovered.wav", "recovered.json",
+                                               "metrics.json", "recovered-normalised.wav"};
+    return n;
+}
 
 std::string short_si(double v)
 {
@@ -173,6 +181,12 @@ variant_spec parse_variant(const std::string& spec)
 std::vector<variant_spec> expand_sweep(const std::vector<sweep_axis>& axes)
 {
     if (axes.empty()) throw config_error("sweep: no --vary given; name at least one key to vary");
+    for (std::size_t i = 0; i < axes.size(); ++i)
+        for (std::size_t j = 0; j < i; ++j)
+            if (axes[i].key == axes[j].key)
+                throw config_error(fmt::format("--vary {}: the key is varied twice (axes {} and {}); give all its values in one "
+                                               "--vary",
+                                               axes[i].key, j + 1, i + 1));
     std::size_t total = 1;
     for (const auto& a : axes) {
         if (a.values.empty()) throw config_error(fmt::format("--vary {}: no values", a.key));
@@ -228,6 +242,29 @@ std::optional<double> pack_number(const toml::table& t, const char* key, const s
     if (auto v = n->value_exact<double>()) return *v;
     if (auto v = n->value_exact<int64_t>()) return static_cast<double>(*v);
     throw config_error(fmt::format("{}: {}: must be a number", pack_where(*n, file), field));
+}
+
+/// A pack's `set` entry with a relative signal.audio made absolute against the pack file's folder: paths in
+/// a file are relative to that file, wherever the command runs.
+std::string pack_relative(const std::string& entry, const fs::path& file, const std::string& where)
+{
+    const auto eq = entry.find('=');
+    if (eq == std::string::npos || trim(entry.substr(0, eq)) != "signal.audio") return entry;
+    std::string path = trim(entry.substr(eq + 1));
+    try {
+        toml::table parsed = toml::parse("v = " + path);
+        if (auto str = parsed["v"].value<std::string>()) path = *str;
+    } catch (const toml::parse_error&) {
+    }
+    if (path.empty()) throw config_error(fmt::format("{}: set {}: signal.audio: the clip path is empty", where, entry));
+    fs::path p(path);
+    if (p.is_relative()) {
+        std::error_code ec;
+        p = fs::absolute(file.parent_path() / p, ec);
+        if (ec) throw config_error(fmt::format("{}: set {}: signal.audio: cannot resolve the path: {}", where, entry, ec.message()));
+    }
+    nlohmann::json q = p.string(); // a TOML basic string: JSON string escaping is a subset of it
+    return "signal.audio=" + q.dump();
 }
 } // namespace
 
@@ -293,7 +330,8 @@ pack_spec parse_pack(const std::string& text, const fs::path& file)
             for (const auto& e : *list) {
                 const auto s = e.value_exact<std::string>();
                 if (!s) throw config_error(fmt::format("{}: variant {}: set: must be a list of strings \"section.key=value\"", pack_where(e, file), i + 1));
-                v.overrides.push_back(*s);
+                v.overrides.push_back(pack_relative(*s, file, pack_where(e, file)));
+                v.origins.push_back(pack_where(e, file));
             }
         }
         p.variants.push_back(std::move(v));
@@ -303,13 +341,7 @@ pack_spec parse_pack(const std::string& text, const fs::path& file)
 
 pack_spec load_pack(const fs::path& file)
 {
-    std::error_code ec;
-    if (fs::is_directory(file, ec)) throw config_error(fmt::format("{}: is a directory, not a pack or scenario file", file.string()));
-    std::ifstream in(file, std::ios::binary);
-    if (!in) throw config_error(fmt::format("{}: cannot open the pack file: {}", file.string(), std::strerror(errno)));
-    std::stringstream ss;
-    ss << in.rdbuf();
-    return parse_pack(ss.str(), file);
+    return parse_pack(read_text_input(file, "pack file"), file);
 }
 
 fs::path find_bundled_file(const fs::path& relative, const fs::path& executable, const fs::path& installed_data_dir)
@@ -345,13 +377,15 @@ const std::vector<std::string>& table_columns()
 
 std::string table_csv(const std::vector<variant_result>& rows)
 {
-    std::string o = "variant,label";
-    for (const auto& c : table_columns()) o += "," + c;
-    o += ",warnings\n";
+    std::vector<std::string> head = {"variant", "label"};
+    head.insert(head.end(), table_columns().begin(), table_columns().end());
+    head.emplace_back("warnings");
+    std::string o = csv_row(head);
     for (const auto& r : rows) {
-        o += csv_quote(r.spec.name) + "," + csv_quote(r.spec.label);
-        for (const auto& c : table_columns()) o += "," + (r.metrics.contains(c) ? json_cell(r.metrics[c], 10, true) : std::string());
-        o += "," + std::to_string(r.metrics.contains("warnings") ? r.metrics["warnings"].size() : 0) + "\n";
+        std::vector<std::string> f = {r.spec.name, r.spec.label};
+        for (const auto& c : table_columns()) f.push_back(r.metrics.contains(c) ? json_cell(r.metrics[c], 10, true) : std::string());
+        f.push_back(std::to_string(r.metrics.contains("warnings") ? r.metrics["warnings"].size() : 0));
+        o += csv_row(f);
     }
     return o;
 }
@@ -371,10 +405,10 @@ std::string table_markdown(const std::vector<variant_result>& rows)
     }
     o += "\n" + rule + "\n";
     for (const auto& r : rows) {
-        o += "| " + r.spec.name + " | " + r.spec.label + " |";
+        o += "| " + markdown_cell(r.spec.name) + " | " + markdown_cell(r.spec.label) + " |";
         for (const auto& [k, h] : heads) {
             const std::string cell = r.metrics.contains(k) ? json_cell(r.metrics[k], 4, false) : std::string();
-            o += " " + (cell.empty() ? std::string("-") : cell) + " |";
+            o += " " + (cell.empty() ? std::string("-") : markdown_cell(cell)) + " |";
         }
         o += "\n";
     }
@@ -399,15 +433,36 @@ sweep_result prepare_sweep(const fs::path& base_file, const std::vector<std::str
     for (std::size_t i = 0; i < variants.size(); ++i) {
         auto& r = res.variants[i];
         r.spec = variants[i];
+        const std::string where = r.spec.origins.empty() ? fmt::format("variant {}", i + 1) : r.spec.origins.front();
         for (std::size_t j = 0; j < i; ++j)
-            if (variants[j].name == r.spec.name)
-                throw config_error(fmt::format("variant {}: name \"{}\" is used twice", i + 1, r.spec.name));
+            if (lower(variants[j].name) == lower(r.spec.name))
+                throw config_error(fmt::format("{}: name \"{}\" is used twice (variant {} has it; names are compared without "
+                                               "regard to case)",
+                                               where, r.spec.name, j + 1));
+        if (!r.spec.name.empty() && r.spec.name.front() == '.')
+            throw config_error(fmt::format("{}: name \"{}\": must not start with '.'", where, r.spec.name));
+        for (const auto& reserved : reserved_output_names())
+            if (lower(r.spec.name) == reserved)
+                throw config_error(fmt::format("{}: name \"{}\": galena names its own output {} so; choose another name", where,
+                                               r.spec.name, reserved));
         std::vector<std::string> ov = base_overrides;
         ov.insert(ov.end(), r.spec.overrides.begin(), r.spec.overrides.end());
         try {
             r.scene = load_scenario(base_file, ov);
         } catch (const config_error& e) {
-            throw config_error(fmt::format("variant {}: {}", r.spec.name, e.what()));
+            // A pack's `set` entry is named by its own file and line, not as a --set the user never typed.
+            std::string msg = e.what();
+            for (std::size_t k = 0; k < r.spec.origins.size() && k < r.spec.overrides.size(); ++k) {
+                const std::string& o = r.spec.overrides[k];
+                for (const std::string& from : {base_file.string() + " (--set " + o + ")", "--set " + o}) {
+                    const auto at = msg.find(from);
+                    if (at != std::string::npos) {
+                        msg.replace(at, from.size(), fmt::format("{} (set \"{}\" of variant {})", r.spec.origins[k], o, r.spec.name));
+                        throw config_error(msg);
+                    }
+                }
+            }
+            throw config_error(fmt::format("variant {}: {}", r.spec.name, msg));
         }
         r.measured_separately = opt.measure_tone_hz > 0.0 && r.scene.programme.kind == programme_kind::clip;
         if (r.measured_separately) {
@@ -437,7 +492,9 @@ sweep_result prepare_sweep(const fs::path& base_file, const std::vector<std::str
             throw audio_error(fmt::format("variant {}: {}", r.spec.name, e.what()));
         }
         ++renders;
+        check_measurable(r.scene, fmt::format("variant {}", r.spec.name));
         if (r.measured_separately) {
+            check_measurable(r.measure_scene, fmt::format("variant {} (--measure-tone)", r.spec.name));
             programme_s += r.measure_scene.programme.duration_s;
             ++renders;
         }
@@ -447,11 +504,14 @@ sweep_result prepare_sweep(const fs::path& base_file, const std::vector<std::str
     return res;
 }
 
-void check_sweep_outputs(const sweep_result& res, const staged_output& staged)
+void check_sweep_outputs(const sweep_result& res, staged_output& staged)
 {
     staged.check("table.csv");
     staged.check("table.md");
+    staged.owns("table.csv");
+    staged.owns("table.md");
     for (const auto& r : res.variants) {
+        staged.owns(r.spec.name);
         for (const auto& n : job_file_names()) staged.check(fs::path(r.spec.name) / n);
         if (r.measured_separately)
             for (const auto& n : job_file_names()) staged.check(fs::path(r.spec.name) / "measure" / n);

@@ -6,9 +6,11 @@
 #include "galena/metrics.hpp"
 #include "galena/report.hpp"
 #include "galena/scenario.hpp"
+#include "galena/staged_output.hpp"
 #include "galena/sweep.hpp"
 
 #include <CLI/CLI.hpp>
+#include <cerrno>
 #include <chrono>
 #include <csignal>
 #include <cstdio>
@@ -23,6 +25,7 @@ enum exit_code : int {
     exit_usage = 2,       ///< bad command line or scenario
     exit_audio = 3,       ///< audio or output file problem
     exit_numerical = 4,   ///< the solver failed
+    exit_resource = 5,    ///< a resource ran out (memory, file descriptors, processes, FFTW plan)
     exit_internal = 70,   ///< a bug: please report
     exit_signal_base = 128, ///< stopped by signal N (Ctrl-C / SIGINT: 130, SIGTERM: 143)
 };
@@ -38,6 +41,24 @@ int report(const std::string& what, int code)
 }
 int report(const std::exception& e, int code) { return report(std::string(e.what()), code); }
 
+/// Progress and status text on stderr: once a write fails (EPIPE when stderr is a pipe whose reader has
+/// gone, e.g. `2>&1 | head`), nothing more is printed and the work goes on.
+bool g_stderr_open = true;
+void progress_text(const char* text)
+{
+    if (!g_stderr_open) return;
+    if (std::fputs(text, stderr) < 0 || std::fflush(stderr) != 0) g_stderr_open = false;
+}
+
+/// Staging notices (stale stages removed, stages that could not be removed) as warnings.
+void print_staging_notices()
+{
+    for (const auto& n : galena::take_staging_notices()) {
+        std::string line = "galena: warning: " + n + "\n";
+        progress_text(line.c_str());
+    }
+}
+
 /// Progress of a sweep: a bar on a terminal, plain lines otherwise.
 std::function<void(std::size_t, std::size_t, const std::string&)> sweep_progress(bool quiet)
 {
@@ -47,11 +68,12 @@ std::function<void(std::size_t, std::size_t, const std::string&)> sweep_progress
         if (tty) {
             const int width = 30;
             const int filled = static_cast<int>(static_cast<double>(done) / static_cast<double>(total) * width);
-            std::fprintf(stderr, "\r[%s%s] %zu/%zu %-40s", std::string(static_cast<std::size_t>(filled), '#').c_str(),
-                         std::string(static_cast<std::size_t>(width - filled), '.').c_str(), done, total, name.c_str());
-            if (done == total) std::fprintf(stderr, "\n");
+            progress_text(fmt::format("\r[{}{}] {}/{} {:<40}{}", std::string(static_cast<std::size_t>(filled), '#'),
+                                      std::string(static_cast<std::size_t>(width - filled), '.'), done, total, name,
+                                      done == total ? "\n" : "")
+                              .c_str());
         } else {
-            std::fprintf(stderr, "galena: finished %zu of %zu: %s\n", done, total, name.c_str());
+            progress_text(fmt::format("galena: finished {} of {}: {}\n", done, total, name).c_str());
         }
     };
 }
@@ -82,6 +104,7 @@ void print_pack(const galena::pack_outcome& o, const std::string& out_dir, doubl
 int main(int argc, char** argv)
 {
     galena::install_signal_handlers();
+    std::atexit(print_staging_notices); // after the command's own last line
     CLI::App app{"galena: time-domain simulation of the crystal-set detector stage"};
     app.require_subcommand(1);
     // Command-line mistakes cost one line too.
@@ -260,8 +283,8 @@ int main(int argc, char** argv)
                 opt.progress = [&](double f) {
                     const int pct = static_cast<int>(f * 100.0);
                     if (pct == last) return;
-                    if (tty) std::fprintf(stderr, "\rrendering %3d%%", pct);
-                    else if (pct % 10 == 0) std::fprintf(stderr, "rendering %d%%\n", pct);
+                    if (tty) progress_text(fmt::format("\rrendering {:3}%", pct).c_str());
+                    else if (pct % 10 == 0) progress_text(fmt::format("rendering {}%\n", pct).c_str());
                     last = pct;
                 };
             const auto o = galena::run_render_job(s, out_dir, opt);
@@ -274,6 +297,19 @@ int main(int argc, char** argv)
             for (const auto& w : o.warnings) std::fprintf(stderr, "galena: warning: %s\n", w.c_str());
             return exit_ok;
         }
+    } catch (const galena::resource_error& e) {
+        return report(e, exit_resource);
+    } catch (const std::bad_alloc&) {
+        return report("out of memory: an allocation failed (std::bad_alloc); free memory, raise the memory limit, or render "
+                      "a shorter programme",
+                      exit_resource);
+    } catch (const std::system_error& e) {
+        // Printing the results to a closed pipe (`| head`) after everything was written: the outputs stand.
+        if (e.code() == std::errc::broken_pipe) return exit_ok;
+        if (e.code() == std::errc::too_many_files_open || e.code() == std::errc::too_many_files_open_in_system ||
+            e.code() == std::errc::not_enough_memory || e.code() == std::errc::resource_unavailable_try_again)
+            return report(std::string("resource exhausted: ") + e.what(), exit_resource);
+        return report(e, exit_internal);
     } catch (const galena::cancelled_error& e) {
         if (!quiet && isatty(fileno(stderr)) != 0) std::fprintf(stderr, "\n");
         return report(e, exit_signal_base + (e.signal_number() != 0 ? e.signal_number() : SIGINT));

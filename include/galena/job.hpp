@@ -20,6 +20,10 @@ namespace galena {
 /// every render of the command (a sweep's variants and tone measurements). At the default 1 MHz carrier the
 /// solver runs about ten times slower than real time, so this is some twenty minutes of wall time.
 inline constexpr double long_render_limit_s = 120.0;
+/// Solver steps (carrier cycles x steps per cycle, preroll included) that one command may take without
+/// `--allow-long`: 120 s of programme at the default 1 MHz carrier and N = 32 (about 40 s of wall time at
+/// the measured 10 ns per step on one core). Catches a high carrier or a stiff diode whose programme is short.
+inline constexpr double long_render_limit_steps = 3.84e9;
 
 struct job_outcome;
 
@@ -91,10 +95,15 @@ void relocate(job_outcome& o, const staged_output& staged);
 /// machine, s: a short pilot render (30 ms of simulated time, tone programme) gives the wall seconds per
 /// simulated second, which is scaled by the programme plus each render's automatic preroll and divided
 /// among `threads` workers. An estimate: the solver's step count depends on the programme.
+/// Throws config_error naming `where` and signal.duration_s when the programme is shorter than the
+/// settling window plus 64 samples that the metrics need: refused before anything is rendered.
+void check_measurable(const scenario& s, const std::string& where);
+
 [[nodiscard]] double estimate_render_wall_s(const scenario& s, double programme_s, std::size_t renders = 1, unsigned threads = 1);
 
-/// Throws config_error naming `where`, the programme length, the limit and the estimated wall time when
-/// programme_s > long_render_limit_s and !allow_long; `flag` names the opt-in ("--allow-long").
+/// Throws config_error naming `where`, the work, the limits and the estimated wall time when !allow_long
+/// and either programme_s > long_render_limit_s or the solver steps (carrier cycles x steps per cycle,
+/// the latter from a pilot render when it matters) exceed long_render_limit_steps.
 void check_render_length(const scenario& s, const std::string& where, double programme_s, std::size_t renders,
                          unsigned threads, bool allow_long);
 

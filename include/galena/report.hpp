@@ -66,8 +66,11 @@ std::vector<matched_gain> write_loudness_matched(const std::vector<std::filesyst
                                                  const std::vector<std::string>& names, const std::filesystem::path& dir,
                                                  wav_format format, double target_rms_dbfs = -26.0);
 
-/// Runs gnuplot on `script` (text) with `work_dir` as its current directory. Throws audio_error naming the
-/// script file when gnuplot is missing or fails (its stderr is kept in work_dir/gnuplot.log).
+/// Runs gnuplot on `script` (text) with `work_dir` as its current directory (posix_spawn, not system()).
+/// While it runs the cancel flag is polled; on a cancel gnuplot is sent SIGTERM and cancelled_error thrown.
+/// Throws audio_error naming the script file, gnuplot's exit code or signal and the last line of its
+/// stderr (kept in work_dir/STEM.log) when it fails or is missing; resource_error when it cannot be started
+/// for a process, memory or file limit, or was killed by a resource signal (SIGKILL, SIGXCPU, SIGSEGV, ...).
 void run_gnuplot(const std::string& script, const std::filesystem::path& work_dir, const std::string& stem);
 
 /// Draws the pack's plots into `dir` as NAME.svg and NAME.png: zoom (carrier band, envelope and earpiece

@@ -33,7 +33,15 @@ struct variant_spec {
     std::string name;                    ///< directory-safe: [A-Za-z0-9._-], unique in a sweep
     std::string label;                   ///< for humans (tables, page)
     std::vector<std::string> overrides;  ///< "section.key=value", applied after the base overrides
+    /// Where each override was written ("pack.toml:12"), for messages; empty for command-line variants.
+    std::vector<std::string> origins;
 };
+
+/// Names galena itself gives to files and folders in a sweep's or pack's output folder (tables, page,
+/// playlists, the loudness-matched folder, plots). A variant may not be named like one of these (compared
+/// without regard to case, for case-insensitive file systems), nor start with '.' (staging and temporary
+/// files), so no variant folder can collide with them.
+[[nodiscard]] const std::vector<std::string>& reserved_output_names();
 
 /// Parses "NAME:key=value,key=value" (NAME directory-safe). Throws config_error otherwise.
 [[nodiscard]] variant_spec parse_variant(const std::string& spec);
@@ -133,7 +141,7 @@ struct sweep_result {
 [[nodiscard]] sweep_result prepare_sweep(const std::filesystem::path& base_file, const std::vector<std::string>& base_overrides,
                                          const std::vector<variant_spec>& variants, const sweep_options& opt);
 /// Refuses early when an output of the prepared sweep (a table, a variant's files) clashes in `staged`.
-void check_sweep_outputs(const sweep_result& res, const staged_output& staged);
+void check_sweep_outputs(const sweep_result& res, staged_output& staged);
 /// Step two: renders the prepared variants into `dir` (an existing folder the caller stages) and writes the
 /// tables there. Throws as run_sweep.
 void render_sweep(sweep_result& res, const std::filesystem::path& dir, const sweep_options& opt);
