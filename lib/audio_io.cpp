@@ -63,7 +63,7 @@ bool container_frames(const fs::path& path, std::size_t& declared, std::size_t& 
         return riff ? (std::uint32_t(p[0]) | std::uint32_t(p[1]) << 8 | std::uint32_t(p[2]) << 16 | std::uint32_t(p[3]) << 24)
                     : (std::uint32_t(p[0]) << 24 | std::uint32_t(p[1]) << 16 | std::uint32_t(p[2]) << 8 | std::uint32_t(p[3]));
     };
-    std::uint32_t block_align = 0, samples_per_block = 0, channels = 0, bits = 0, comm_frames = 0;
+    std::uint32_t block_align = 0, samples_per_block = 0, channels = 0, bits = 0, comm_frames = 0, fact_frames = 0;
     bool have_fmt = false, have_comm = false;
     std::uint64_t at = 12;
     for (int chunk = 0; chunk < 4096 && at + 8 <= file_size; ++chunk) {
@@ -84,6 +84,8 @@ bool container_frames(const fs::path& path, std::size_t& declared, std::size_t& 
             // IMA (0x11) and MS (0x02) ADPCM: whole blocks of wSamplesPerBlock frames.
             if ((tag == 0x11 || tag == 0x02) && want >= 20) samples_per_block = u16(f + 18);
             have_fmt = true;
+        } else if (riff && std::memcmp(h, "fact", 4) == 0 && want >= 4) {
+            fact_frames = u32(f); // compressed formats: the exact frame count
         } else if (form && std::memcmp(h, "COMM", 4) == 0 && want >= 8) {
             channels = u16(f);
             comm_frames = u32(f + 2);
@@ -94,8 +96,8 @@ bool container_frames(const fs::path& path, std::size_t& declared, std::size_t& 
             const std::uint64_t held = std::min<std::uint64_t>(size, file_size - body);
             if (held >= size) return false; // whole
             const std::uint64_t per = samples_per_block != 0 ? samples_per_block : 1;
-            declared = static_cast<std::size_t>(size / block_align * per);
-            present = static_cast<std::size_t>(held / block_align * per);
+            declared = static_cast<std::size_t>(samples_per_block != 0 && fact_frames != 0 ? fact_frames : size / block_align * per);
+            present = std::min(declared, static_cast<std::size_t>(held / block_align * per));
             return present < declared;
         } else if (form && have_comm && std::memcmp(h, "SSND", 4) == 0) {
             const std::uint64_t frame_bytes = static_cast<std::uint64_t>(channels) * ((bits + 7) / 8);

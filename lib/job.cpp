@@ -264,8 +264,9 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
                 throw cancelled_error("stopped: another render of this command failed first", 0);
             faded.assign(b.audio_v.begin(), b.audio_v.end());
             for (std::size_t i = 0; i < faded.size(); ++i) {
-                o.peak_audio_v = std::max(o.peak_audio_v, std::fabs(faded[i]));
+                // The peak of what the WAV holds (after the fade), so the normalised copy peaks where it says.
                 faded[i] *= fade_gain(b.first_sample + i, total, fs_hz, opt.fade_s);
+                o.peak_audio_v = std::max(o.peak_audio_v, std::fabs(faded[i]));
                 if (std::fabs(faded[i]) > s.output.full_scale_v) ++o.clipped_samples;
             }
             raw.write_volts(faded);

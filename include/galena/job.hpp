@@ -47,7 +47,7 @@ struct job_outcome {
     std::filesystem::path normalised_wav;  ///< empty unless the calibrated WAV clipped
     std::filesystem::path sidecar;         ///< JSON with the calibration and solver figures
     double full_scale_v = 0.0;
-    double peak_audio_v = 0.0;             ///< largest |audio| (DC removed), V
+    double peak_audio_v = 0.0;             ///< largest |audio| written (DC removed, fades applied), V
     std::size_t clipped_samples = 0;       ///< in the calibrated WAV
     double normalised_gain_db = 0.0;       ///< gain applied in the normalised copy, dB
     render_result render;
