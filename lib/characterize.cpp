@@ -51,7 +51,7 @@ std::pair<double, double> fit_line(const std::vector<double>& x, const std::vect
 }
 
 /// Order-of-magnitude DC output, V, for a carrier peak V: square law V^2 / (4 n Vt) below n Vt, V above,
-/// times the divider R_dc / (R_dc + R_v + R) (CHECKS.md item 2). Used only to scale the solver tolerance.
+/// times the divider R_dc / (R_dc + R_v + R) (small-signal limit of the I0 law, Torrey & Whitmer 1948). Used only to scale the solver tolerance.
 double estimated_output_v(const detector_network& net, double v)
 {
     const double nvt = net.diode().emission_voltage_v();
@@ -124,13 +124,13 @@ clipping_diagnosis diagnose_clipping(const detector_network& net, double tone_hz
     d.dc_load_ohm = net.dc_load_ohm();
     d.node_capacitance_f = net.node_capacitance_f();
     const double g_dc = std::isfinite(d.dc_load_ohm) ? 1.0 / d.dc_load_ohm : 0.0;
-    // Diagonal clipping: 1 / sqrt(1 + (wm R C)^2) with the DC load and the node capacitance (CHECKS.md item 4).
+    // Diagonal clipping: 1 / sqrt(1 + (wm R C)^2) with the DC load and the node capacitance (Haykin, Communication Systems).
     const double wrc = w * d.dc_load_ohm * d.node_capacitance_f;
     d.diagonal_m_max = std::isfinite(wrc) ? 1.0 / std::sqrt(1.0 + wrc * wrc) : 0.0;
     const std::complex<double> y_load = net.node_conductance_s() + earpiece_branch_admittance(e, w);
     d.ac_coupled_load = e.has_motional_branch();
     d.ac_load_ohm = y_load.real() > 0.0 ? 1.0 / y_load.real() : std::numeric_limits<double>::infinity();
-    // Negative-peak clipping: R_ac / R_dc (CHECKS.md item 5); only an AC-coupled load makes it bind.
+    // Negative-peak clipping: R_ac / R_dc (Haykin, Communication Systems); only an AC-coupled load makes it bind.
     d.negative_peak_m_max = d.ac_coupled_load && std::isfinite(d.dc_load_ohm) ? d.ac_load_ohm / d.dc_load_ohm : 1.0;
     const double y_abs = std::abs(y_load + std::complex<double>(0.0, w * d.node_capacitance_f));
     d.combined_m_max = y_abs > 0.0 ? g_dc / y_abs : 1.0;

@@ -149,7 +149,7 @@ struct dc_case {
 
 TEST_CASE("rectified DC of an exponential diode follows Is (I0(V/nVt) exp(-Vdc/nVt) - 1) = Vdc/RL")
 {
-    // Reference: CHECKS.md "Diode detector laws" item 1 [pub], solved here with Boost.Math cyl_bessel_i and
+    // Reference: the I0 law of H. C. Torrey and C. A. Whitmer, Crystal Rectifiers, MIT Radiation Laboratory Series vol. 15, 1948 (from memory), solved here with Boost.Math cyl_bessel_i and
     // toms748_solve. The law assumes Rs = 0, Cj = 0, a source of zero resistance and negligible ripple.
     // The ripple is about Vdc / (fc RL C) peak to peak; RL C = 1000 carrier periods keeps its effect on the
     // mean below 0.05 %. The tolerance, 0.2 %, leaves room for that and the stepper's error, and still
@@ -728,7 +728,7 @@ double average(const std::vector<double>& v, std::size_t from, std::size_t to)
 
 TEST_CASE("a piezo earpiece with no DC path dams up and goes quiet; a bleeder or diode leakage sustains the audio")
 {
-    // Common practice (CHECKS.md "Diode detector laws" item 7 [practice]): with no leakage and no bleeder the
+    // Common practice (no published source): with no leakage and no bleeder the
     // rectified charge dams up on the earpiece capacitance and the audio decays toward silence; a bleeder of
     // 10k-100k, or diode reverse leakage, restores it. Only the Shockley reverse current Is is left to
     // discharge C in the first case (Is/C = 2 V/s here against an envelope that swings 0.5 V per 0.5 ms).
@@ -772,7 +772,7 @@ TEST_CASE("a piezo earpiece with no DC path dams up and goes quiet; a bleeder or
     CHECK(none_late < 0.1 * leak_late);
     // The dammed charge sits just below the unloaded law at the envelope peak: with no load the DC balance
     // <Is (I0(A(t)/nVt) e^-y - 1)> = 0 over the audio period gives Vdc = n Vt ln <I0(A(1 + m sin)/nVt)>
-    // [derived from CHECKS.md item 1 with RL -> inf], and <I0(A(t))> <= I0(A_peak).
+    // [derived from the I0 law (Torrey & Whitmer 1948) with RL -> inf], and <I0(A(t))> <= I0(A_peak).
     const double nvt = base.diode.emission_coefficient * vt_25c;
     double avg_i0 = 0.0;
     constexpr int quad = 2000; // trapezoid rule over a period: spectrally accurate for a periodic integrand
