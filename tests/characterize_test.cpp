@@ -258,10 +258,20 @@ TEST_CASE("carrier ripple of a peak detector: the sawtooth V_dc / (fc R C)")
     const double dv = rip.dc_v / (fc * 100e3 * cap);
     INFO("dc " << rip.dc_v << " (" << vdc << "), rms " << rip.ripple_rms_v << " (" << dv / (2 * std::sqrt(3.0)) << "), fc rms "
                << rip.harmonic_rms_v[0] << " (" << dv / (k_pi * std::sqrt(2.0)) << ")");
+    // The forward drop at the current's peak: the diode current peaks at about a (1 - cos theta) / r (the
+    // ideal-diode conduction pulse), so the drop is n Vt ln(1 + I_peak / Is) (derived from Shockley's law).
+    const double i_peak = a * (1.0 - std::cos(theta)) / r;
+    const double drop = c.diode.emission_coefficient * c.diode.thermal_voltage() *
+                        std::log1p(i_peak / c.diode.saturation_current_at_temperature());
+    MESSAGE("dc " << rip.dc_v << " V; ideal-diode " << vdc << " V less the drop " << drop << " V = " << vdc - drop << " V");
     CHECK(rip.dc_v < vdc);
-    CHECK(rip.dc_v > vdc - 0.5);
-    CHECK(rip.ripple_rms_v == doctest::Approx(dv / (2 * std::sqrt(3.0))).epsilon(0.1).scale(0.0));
-    CHECK(rip.harmonic_rms_v[0] == doctest::Approx(dv / (k_pi * std::sqrt(2.0))).epsilon(0.1).scale(0.0));
+    // Measured 2.698 V against 2.974 - 0.302 = 2.672 V: 1.0 % apart (the drop is taken at the peak current,
+    // where the diode spends little of the conduction angle); bound 2 %.
+    CHECK(rip.dc_v == doctest::Approx(vdc - drop).epsilon(0.02));
+    // Measured: RMS 5.9 % below the sawtooth's (the conduction angle rounds its edge), the fundamental
+    // 0.4 % and the second harmonic 2 % off the 1/k law; bounds 8 %, 2 % and 4 %.
+    CHECK(rip.ripple_rms_v == doctest::Approx(dv / (2 * std::sqrt(3.0))).epsilon(0.08).scale(0.0));
+    CHECK(rip.harmonic_rms_v[0] == doctest::Approx(dv / (k_pi * std::sqrt(2.0))).epsilon(0.02).scale(0.0));
     // Sawtooth harmonics fall as 1/k.
-    CHECK(rip.harmonic_rms_v[1] == doctest::Approx(rip.harmonic_rms_v[0] / 2).epsilon(0.15).scale(0.0));
+    CHECK(rip.harmonic_rms_v[1] == doctest::Approx(rip.harmonic_rms_v[0] / 2).epsilon(0.04).scale(0.0));
 }

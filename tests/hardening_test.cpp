@@ -153,7 +153,7 @@ TEST_CASE("clipping path and --overwrite: recovered-normalised.wav peaks at -1 d
     const double gain_db = side["normalised_gain_db"].get<double>();
     CHECK(side["clipped_samples"].get<double>() > 0);
     // The calibrated file is clipped at full scale; the copy peaks at -1 dBFS (README "Calibrated levels"),
-    // which is full_scale x 10^(-1/20) = 0.8913 of it. Float WAVs: exact to float rounding (measured 6e-8).
+    // which is full_scale x 10^(-1/20) = 0.8913 of it. Float WAVs: exact to float rounding.
     const auto clipped = read_samples(d / "out/recovered.wav");
     const auto norm = read_samples(d / "out/recovered-normalised.wav");
     CHECK(peak_of(clipped) == doctest::Approx(1.0).epsilon(1e-6));
