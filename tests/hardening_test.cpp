@@ -647,3 +647,34 @@ TEST_CASE("overmodulation (m = 1.5, allowed): the detector recovers the envelope
     r = galena_cli("render " + q(d / "t.toml") + " --out " + q(d / "out2") + " -q", d / "b");
     expect_error(r, 2, {"signal.modulation_index = 1.5"}, d);
 }
+
+// ---------------------------------------------------------------------------------------------------------
+// Resource exhaustion: its own exit class (5), naming what ran out; no stage left.
+
+#if defined(__SANITIZE_ADDRESS__)
+#define GALENA_TEST_UNDER_ASAN 1
+#elif defined(__has_feature)
+#if __has_feature(address_sanitizer)
+#define GALENA_TEST_UNDER_ASAN 1
+#endif
+#endif
+
+TEST_CASE("resource exhaustion: too few file descriptors and too little memory are exit 5, naming what ran out")
+{
+#ifdef GALENA_TEST_UNDER_ASAN
+    MESSAGE("skipped under AddressSanitizer: its shadow memory and descriptors change both limits");
+#else
+    const fs::path d = fresh("resources");
+    write_file(d / "s.toml", quick_scenario());
+    // Four descriptors: stdin, stdout, stderr and one more; the first output file cannot be created.
+    auto r = galena_cli("render " + q(d / "s.toml") + " --out " + q(d / "a") + " -q", d / "ra", "prlimit --nofile=4 --");
+    expect_error(r, 5, {"Too many open files", "file-descriptor"}, d);
+    CHECK(r.err.find(".partial-") == std::string::npos); // the message names the target, not the stage
+    CHECK_FALSE(fs::exists(d / "a"));
+    // 24 MB of address space: enough to load and start, not enough for the analysis of a 5 s tone.
+    r = galena_cli("render " + q(d / "s.toml") + " --out " + q(d / "b") + " -q --set signal.duration_s=5", d / "rb",
+                   "prlimit --as=25165824 --");
+    expect_error(r, 5, {"out of memory"}, d);
+    CHECK_FALSE(fs::exists(d / "b"));
+#endif
+}

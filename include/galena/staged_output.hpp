@@ -76,7 +76,7 @@ private:
 /// the caller (the CLI) shows these as warnings. Taking them empties the list. Thread-safe.
 [[nodiscard]] std::vector<std::string> take_staging_notices();
 
-/// Runs `work` and rethrows its audio_error or config_error with staged.describe() applied, so messages
+/// Runs `work` and rethrows its audio_error, config_error or resource_error with staged.describe() applied, so messages
 /// name the target rather than the staging folder; other errors pass unchanged.
 template <class Work>
 void with_described_errors(const staged_output& staged, Work&& work)
@@ -87,6 +87,8 @@ void with_described_errors(const staged_output& staged, Work&& work)
         throw audio_error(staged.describe(e.what()));
     } catch (const config_error& e) {
         throw config_error(staged.describe(e.what()));
+    } catch (const resource_error& e) {
+        throw resource_error(staged.describe(e.what()));
     }
 }
 
