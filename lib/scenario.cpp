@@ -405,6 +405,13 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
         if (p.kind == programme_kind::two_tone) {
             detail::require_range("signal.tone2_hz", p.tone2_hz, 1.0, 0.45 * 2.0 * nyq, "Hz");
             detail::require_range("signal.tone_ratio", p.tone_ratio, 1e-3, 1e3);
+            // The IMD analysis fits f2 +- k f1 for k = 1..3 (metrics, analyze_two_tone): all inside (0, 0.49 fs).
+            if (!(p.tone2_hz - 3.0 * p.tone_hz > 0.0) || !(p.tone2_hz + 3.0 * p.tone_hz < 0.49 * s.render.audio_rate_hz))
+                throw config_error(fmt::format("signal.tone2_hz = {}: with signal.tone_hz = {} the IMD analysis needs tone2_hz - 3 x "
+                                               "tone_hz > 0 and tone2_hz + 3 x tone_hz < 0.49 x output.sample_rate_hz = {} Hz (its "
+                                               "sidebands up to the third order inside the band)",
+                                               detail::format_value(p.tone2_hz), detail::format_value(p.tone_hz),
+                                               detail::format_value(0.49 * s.render.audio_rate_hz)));
         }
         if (p.kind == programme_kind::log_sweep) {
             detail::require_range("signal.sweep_start_hz", p.sweep_start_hz, 1.0, nyq, "Hz");

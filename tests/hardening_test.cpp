@@ -421,6 +421,13 @@ TEST_CASE("messages: 8 kHz output renders; preroll and full-scale errors name th
     r = galena_cli("compare " + q(d / "pack.toml") + " --out " + q(d / "o") + " -q", d / "e");
     expect_error(r, 2, {"pack.toml:6", "load.bleeder_ohm=-5", "must be > 0"}, d);
     CHECK(r.err.find("--set") == std::string::npos);
+    // A two-tone pair whose IMD sidebands fall outside the band: the field and the rule, before rendering,
+    // not "too short to measure".
+    r = galena_cli("render " + q(d / "s.toml") + " --out " + q(d / "o") +
+                       " -q --set signal.test_signal=two-tone --set signal.tone_hz=1000 --set signal.tone2_hz=6000",
+                   d / "f");
+    expect_error(r, 2, {"signal.tone2_hz = 6000", "IMD analysis needs", "0.49 x output.sample_rate_hz"}, d);
+    CHECK(r.err.find("too short") == std::string::npos);
 }
 
 // ---------------------------------------------------------------------------------------------------------
