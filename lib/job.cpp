@@ -205,6 +205,7 @@ job_outcome run_render_job(const scenario& s, const fs::path& out_dir, const job
         staged.owns(n);
     }
     staged.owns("plots");
+    staged.check(fs::path("plots") / "zoom.svg"); // a file named plots refuses the render before it starts
     job_outcome o;
     with_described_errors(staged, [&] {
         o = render_job_into(s, staged.dir(), opt, analysis_limit_s);
