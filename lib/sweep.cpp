@@ -148,7 +148,7 @@ sweep_axis parse_sweep_axis(const std::string& spec)
         const int count = static_cast<int>(n);
         for (int i = 0; i < count; ++i) {
             const double v = lo * std::pow(hi / lo, static_cast<double>(i) / (count - 1));
-            a.values.push_back(format_quantity(i == count - 1 ? hi : v, u, 6));
+            a.values.push_back(fmt::format("{:.6g}", i == count - 1 ? hi : v));
         }
     } else if (rhs == "presets") {
         if (a.key != "diode.preset")
@@ -422,22 +422,33 @@ std::string table_csv(const std::vector<variant_result>& rows)
 
 std::string table_markdown(const std::vector<variant_result>& rows)
 {
-    static const std::vector<std::pair<std::string, std::string>> heads = {
-        {"carrier_peak_v", "carrier V"}, {"dc_v", "DC V"},          {"audio_rms_v", "audio rms V"},
-        {"a_weighted_dbv", "dBV(A)"},    {"fundamental_v", "tone V"}, {"h2_ratio", "H2/H1"},
-        {"h3_ratio", "H3/H1"},           {"thd_percent", "THD %"},   {"thd_n_percent", "THD+N %"},
-        {"sinad_db", "SINAD dB"},        {"peak_audio_v", "peak V"}, {"clipped_samples", "clipped"}};
+    // Volt columns are written in engineering notation ("21.86m" under "DC V"), as builders write values;
+    // ratios, % and dB stay plain.
+    struct head {
+        std::string key, text;
+        bool volts;
+    };
+    static const std::vector<head> heads = {
+        {"carrier_peak_v", "carrier V", true}, {"dc_v", "DC V", true},        {"audio_rms_v", "audio rms V", true},
+        {"a_weighted_dbv", "dBV(A)", false},   {"fundamental_v", "tone V", true}, {"h2_ratio", "H2/H1", false},
+        {"h3_ratio", "H3/H1", false},          {"thd_percent", "THD %", false}, {"thd_n_percent", "THD+N %", false},
+        {"sinad_db", "SINAD dB", false},       {"peak_audio_v", "peak V", true}, {"clipped_samples", "clipped", false}};
     std::string o = "| variant | label |";
     std::string rule = "|---|---|";
-    for (const auto& [k, h] : heads) {
-        o += " " + h + " |";
+    for (const auto& h : heads) {
+        o += " " + h.text + " |";
         rule += "---:|";
     }
     o += "\n" + rule + "\n";
     for (const auto& r : rows) {
         o += "| " + r.spec.name + " | " + r.spec.label + " |";
-        for (const auto& [k, h] : heads) {
-            const std::string cell = r.metrics.contains(k) ? json_cell(r.metrics[k], 4, false) : std::string();
+        for (const auto& h : heads) {
+            const std::string& k = h.key;
+            const bool volts = h.volts && r.metrics.contains(k) && r.metrics[k].is_number_float() &&
+                               std::isfinite(r.metrics[k].get<double>());
+            const std::string cell = !r.metrics.contains(k) ? std::string()
+                                     : volts                ? format_quantity(r.metrics[k].get<double>(), unit::volt, 4)
+                                                            : json_cell(r.metrics[k], 4, false);
             o += " " + (cell.empty() ? std::string("-") : cell) + " |";
         }
         o += "\n";
