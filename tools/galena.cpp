@@ -67,7 +67,7 @@ std::function<void(const galena::sweep_progress&)> sweep_progress(bool quiet)
     return [tty](const galena::sweep_progress& p) {
         const int w = p.total >= 1000 ? 4 : p.total >= 100 ? 3 : 2;
         if (tty) {
-            std::fprintf(stderr, "\r%s %*zu/%zu %3d%%  %-24s", bar(p.fraction).c_str(), w, p.reported, p.total,
+            std::fprintf(stderr, "\r%s %*zu/%zu variants %3d%%  %-24s", bar(p.fraction).c_str(), w, p.reported, p.total,
                          static_cast<int>(p.fraction * 100.0), time_left(p.elapsed_s, p.fraction).c_str());
             if (p.reported == p.total && !p.finished.empty()) std::fprintf(stderr, "\n");
         } else if (!p.finished.empty()) {
