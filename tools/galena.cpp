@@ -96,6 +96,21 @@ std::function<void(double)> render_progress(bool quiet, bool& drew)
     };
 }
 
+/// Lets a numeric option take engineering values ("1k", "300ms"), read by the library's one parser.
+CLI::Validator engineering(galena::unit u)
+{
+    return CLI::Validator(
+        [u](std::string& text) -> std::string {
+            try {
+                text = fmt::format("{:.17g}", galena::parse_quantity(text, u));
+                return {};
+            } catch (const galena::config_error& e) {
+                return fmt::format("'{}': {}", text, e.what());
+            }
+        },
+        std::string(galena::unit_symbol(u)), "engineering value");
+}
+
 /// Variants from --vary axes and --variant specs (axes first).
 std::vector<galena::variant_spec> collect_variants(const std::vector<std::string>& vary, const std::vector<std::string>& named)
 {
@@ -170,7 +185,8 @@ int main(int argc, char** argv)
     sweep->add_option("--variant", sw_variants, "a named variant NAME:section.key=value,section.key=value (repeatable)");
     sweep->add_option("--set,-s", sw_sets, "override the base: section.key=value (repeatable)");
     sweep->add_option("--threads,-j", sw_threads, "worker threads (0 = all cores)");
-    sweep->add_option("--measure-tone", sw_tone_hz, "for audio clips, also render a tone of this frequency for THD, Hz");
+    sweep->add_option("--measure-tone", sw_tone_hz, "for audio clips, also render a tone of this frequency for THD, Hz")
+        ->transform(engineering(galena::unit::hertz));
     sweep->add_flag("--overwrite", overwrite, "replace existing output files");
     sweep->add_flag("--quiet,-q", quiet, "no progress output");
     sweep->add_flag("--allow-long", allow_long, long_help);
@@ -194,8 +210,11 @@ int main(int argc, char** argv)
     auto* cmp_tone_opt = compare->add_option("--measure-tone", cmp_tone_hz,
                                              "for audio clips, also render a tone of this frequency for THD, Hz (0 = off; "
                                              "a pack file's measure_tone_hz unless given)")
-                             ->capture_default_str();
-    auto* cmp_tone_s_opt = compare->add_option("--measure-duration", cmp_tone_s, "length of that tone render, s")->capture_default_str();
+                             ->capture_default_str()
+                             ->transform(engineering(galena::unit::hertz));
+    auto* cmp_tone_s_opt = compare->add_option("--measure-duration", cmp_tone_s, "length of that tone render, s")
+                               ->capture_default_str()
+                               ->transform(engineering(galena::unit::second));
     compare->add_flag("--no-curves", cmp_no_curves, "skip the simulated response and transfer curves");
     compare->add_flag("--overwrite", overwrite, "replace existing output files");
     compare->add_flag("--quiet,-q", quiet, "no progress output");
