@@ -122,6 +122,15 @@ key_entry quantity(unit u, Get get)
                      u, get);
 }
 
+/// The old spelling of a numeric key, kept so that a table entry written before units existed still builds;
+/// the warning names the fix.
+template <class Get>
+[[deprecated("give the key its unit: quantity(unit::ohm, get), quantity(unit::hertz, get), ... (units.hpp)")]] key_entry
+number_into(Get get)
+{
+    return quantity(unit::none, get);
+}
+
 /// Every key of the contract, by section. Order matters only for to_toml and listings.
 const std::map<std::string, std::map<std::string, key_entry>>& key_table()
 {
