@@ -6,12 +6,14 @@
 #include "galena/metrics.hpp"
 #include "galena/constants.hpp"
 #include "galena/error.hpp"
+#include "galena/units.hpp"
 #include "galena/validate.hpp"
 
 #include <chrono>
 #include <cmath>
 #include <fmt/format.h>
 #include <nlohmann/json.hpp>
+#include <optional>
 
 namespace galena {
 
@@ -239,6 +241,12 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
         if (header.info().channels > 1)
             o.warnings.push_back(fmt::format("{}: {} channels mixed to mono (their average) before modulation",
                                              s.programme.audio.string(), header.info().channels));
+        const double whole_s = static_cast<double>(header.frames()) / header.sample_rate_hz();
+        if (s.programme.duration_s > 0.0 && s.programme.duration_s < whole_s)
+            o.warnings.push_back(fmt::format("signal.duration_s = {} s: only the first {} s of {} ({:.3g} s long) is rendered; "
+                                             "set signal.duration_s = 0 for the whole clip",
+                                             detail::format_value(s.programme.duration_s), detail::format_value(s.programme.duration_s),
+                                             s.programme.audio.filename().string(), whole_s));
     }
     auto programme = make_programme(s);
     const double fs_hz = s.render.audio_rate_hz;
@@ -328,6 +336,41 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
     write_text_atomic(o.sidecar, j.dump(2) + "\n");
     write_text_atomic(o.metrics_file, o.metrics.dump(2) + "\n");
     return o;
+}
+
+} // namespace galena
+
+namespace galena {
+
+std::string summary_text(const job_outcome& o, const scenario& s)
+{
+    auto number = [&](const char* key) -> std::optional<double> {
+        if (!o.metrics.contains(key) || !o.metrics[key].is_number()) return std::nullopt;
+        return o.metrics[key].get<double>();
+    };
+    auto volts = [](double v) { return format_quantity(v, unit::volt, 3, true); };
+    std::string t = fmt::format("wrote {}: {:.3g} s, {} {}, full scale {} peak\n", o.wav.string(),
+                                static_cast<double>(o.render.samples) / o.render.audio_rate_hz,
+                                format_quantity(o.render.audio_rate_hz, unit::hertz, 4, true), to_string(s.output.format),
+                                volts(o.full_scale_v));
+    if (const auto rms = number("audio_rms_v")) {
+        t += fmt::format("level: {} rms", volts(*rms));
+        if (const auto a = number("a_weighted_dbv")) t += fmt::format(" ({:.1f} dBV A-weighted)", *a);
+        if (const auto pk = number("audio_peak_v")) t += fmt::format(", peak {}", volts(*pk));
+        if (const auto dc = number("dc_v")) t += fmt::format("; DC {} at the earpiece", volts(*dc));
+        t += "\n";
+    }
+    if (const auto thd = number("thd_percent")) {
+        t += fmt::format("distortion: THD {:.3g} %", *thd);
+        if (const auto n = number("thd_n_percent")) t += fmt::format(", THD+N {:.3g} %", *n);
+        if (const auto sinad = number("sinad_db")) t += fmt::format(", SINAD {:.1f} dB", *sinad);
+        if (const auto f = number("tone_hz")) t += fmt::format(" ({} tone)", format_quantity(*f, unit::hertz, 4, true));
+        t += "\n";
+    }
+    if (!o.normalised_wav.empty())
+        t += fmt::format("clipped: {} samples beyond full scale; {} is {:.1f} dB quieter\n", o.clipped_samples,
+                         o.normalised_wav.string(), -o.normalised_gain_db);
+    return t;
 }
 
 } // namespace galena

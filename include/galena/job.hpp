@@ -82,6 +82,13 @@ job_outcome run_render_job(const scenario& s, const std::filesystem::path& out_d
 job_outcome render_job_into(const scenario& s, const std::filesystem::path& dir, const job_options& opt,
                             double analysis_limit_s = 60.0);
 
+/// A few lines for a person after a render (the library prints nothing; the CLI prints these): the file
+/// written with its length, rate, format and full scale; the level (RMS, A-weighted, peak, DC); THD, THD+N
+/// and SINAD when the programme is a tone; the clipping note when the calibrated WAV clipped. Values in
+/// engineering notation ("41.3 mV"). Warnings are not included: they are in o.warnings, for the caller to
+/// show once. The full figures are in o.metrics (metrics.json).
+[[nodiscard]] std::string summary_text(const job_outcome& o, const scenario& s);
+
 /// Output file names of one render job, relative to its directory.
 [[nodiscard]] const std::vector<std::string>& job_file_names();
 
