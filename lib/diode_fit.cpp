@@ -299,6 +299,8 @@ diode_measurements load_diode_measurements(const fs::path& file)
 {
     std::error_code ec;
     if (fs::is_directory(file, ec)) throw config_error(fmt::format("{}: is a directory, not a measurement file", file.string()));
+    if (fs::exists(file, ec) && (!fs::is_regular_file(file, ec) || fs::file_size(file, ec) > 10000000))
+        throw config_error(fmt::format("{}: must be a regular text file of at most 10 MB", file.string()));
     std::ifstream in(file, std::ios::binary);
     if (!in) throw config_error(fmt::format("{}: cannot open the measurement file: {}", file.string(), std::strerror(errno)));
     std::stringstream ss;

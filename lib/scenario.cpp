@@ -336,6 +336,9 @@ diode_params load_diode_file(const fs::path& path, const std::string& where)
     std::error_code ec;
     if (fs::is_directory(path, ec))
         throw config_error(fmt::format("{}: diode.file = \"{}\": is a directory, not a diode file", where, path.string()));
+    // Only regular files of a sensible size (a device such as /dev/zero would never end).
+    if (fs::exists(path, ec) && (!fs::is_regular_file(path, ec) || fs::file_size(path, ec) > 1000000))
+        throw config_error(fmt::format("{}: diode.file = \"{}\": must be a regular text file of at most 1 MB", where, path.string()));
     std::ifstream in(path, std::ios::binary);
     if (!in)
         throw config_error(fmt::format("{}: diode.file = \"{}\": cannot open the diode file: {}", where, path.string(), std::strerror(errno)));
