@@ -23,6 +23,9 @@ namespace fs = std::filesystem;
 
 namespace {
 constexpr double nan_v = std::numeric_limits<double>::quiet_NaN();
+/// A level difference below this is hard to hear, dB (common practice: the just-noticeable level step is
+/// about 1 dB for speech and music).
+constexpr double audible_level_step_db = 1.0;
 
 /// Text inside a single-quoted gnuplot string (noenhanced terminals).
 std::string gp_quote(const std::string& s)
@@ -302,6 +305,7 @@ rank_outcome rank_diodes(const fs::path& scenario_file, const std::vector<std::s
         // parameters only), on the scene the level was measured on.
         std::vector<sigma_render> jobs;
         std::vector<std::vector<std::pair<std::size_t, std::size_t>>> pairs(out.ranking.size()); // (plus, minus) job indices
+        std::vector<bool> propagated(out.ranking.size(), false);
         double programme_s = 0.0;
         for (std::size_t k = 0; k < out.ranking.size(); ++k) {
             if (!fits[k]) continue;
@@ -323,6 +327,7 @@ rank_outcome rank_diodes(const fs::path& scenario_file, const std::vector<std::s
                 rd.note = fmt::format("uncertainty leaves out {} (not identifiable from the readings)", l);
             }
             if (idx.empty()) continue;
+            propagated[k] = true;
             Eigen::MatrixXd c(static_cast<Eigen::Index>(idx.size()), static_cast<Eigen::Index>(idx.size()));
             for (std::size_t a = 0; a < idx.size(); ++a)
                 for (std::size_t b = 0; b < idx.size(); ++b)
@@ -357,8 +362,8 @@ rank_outcome rank_diodes(const fs::path& scenario_file, const std::vector<std::s
             run_sigma_renders(jobs, level_key, opt.pack.sweep.threads);
         }
         for (std::size_t k = 0; k < out.ranking.size(); ++k) {
-            if (pairs[k].empty()) continue;
-            double var_l = 0.0, var_t = 0.0;
+            if (!propagated[k]) continue;
+            double var_l = 0.0, var_t = 0.0; // a covariance of zero (a noiseless fit) gives 0
             for (const auto& [p, m] : pairs[k]) {
                 const double half = 0.5 * (20.0 * std::log10(jobs[p].level_v) - 20.0 * std::log10(jobs[m].level_v));
                 var_l += half * half;
@@ -402,9 +407,11 @@ rank_outcome rank_diodes(const fs::path& scenario_file, const std::vector<std::s
                                                        std::min(a.thd_percent, b.thd_percent), std::max(a.thd_percent, b.thd_percent))
                                          : std::string());
         else
-            out.advice = fmt::format("solder diode {} ({}): it is {} dB louder than {} at this signal level{}", a.letter,
+            out.advice = fmt::format("solder diode {} ({}): it is {} dB louder than {} at this signal level{}{}", a.letter,
                                      a.diode_file.string(), std::isfinite(s) ? fmt::format("{:.2g} +- {:.2g}", d, s) : fmt::format("{:.2g}", d),
-                                     b.letter, thd_note(a));
+                                     b.letter, thd_note(a),
+                                     d < audible_level_step_db ? fmt::format(" (below about {:g} dB a level step is hard to hear)", audible_level_step_db)
+                                                               : std::string());
 
         // Files: the tables, and each fit's plot beside its diode file.
         out.csv = dir / "ranking.csv";
