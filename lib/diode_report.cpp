@@ -282,7 +282,8 @@ rank_outcome rank_diodes(const fs::path& scenario_file, const std::vector<std::s
 
     pack_options po = opt.pack;
     po.title = "galena: measured diodes ranked";
-    po.extra_outputs = {"ranking.csv", "ranking.md", "fits"};
+    po.extra_outputs = {"ranking.csv", "ranking.md"};
+    for (const auto& rd : out.ranking) po.extra_outputs.push_back("fits/" + rd.letter + ".svg");
     for (const auto& f : diode_files) po.protect.push_back(f);
     po.extras = [&](sweep_result& sweep, const fs::path& dir) {
         // Nominal levels from the pack's own renders.
@@ -384,13 +385,13 @@ rank_outcome rank_diodes(const fs::path& scenario_file, const std::vector<std::s
             const double s = std::hypot(hi.level_sigma_db, lo.level_sigma_db);
             std::string v;
             if (!std::isfinite(s))
-                v = fmt::format("{} is {:.2g} dB louder than {} (uncertainty unknown: a diode without fit.json)", hi.letter, d, lo.letter);
+                v = fmt::format("{} is {:.1f} dB louder than {} (uncertainty unknown: a diode without fit.json)", hi.letter, d, lo.letter);
             else if (d < opt.distinguishable_sigmas * s)
-                v = fmt::format("{} and {} are indistinguishable at this signal level: {} is {:.2g} +- {:.2g} dB louder, less than {:g} "
+                v = fmt::format("{} and {} are indistinguishable at this signal level: {} is {:.2f} +- {:.2g} dB louder, less than {:g} "
                                 "standard deviations of the difference",
                                 hi.letter, lo.letter, hi.letter, d, s, opt.distinguishable_sigmas);
             else
-                v = fmt::format("{} is {:.2g} +- {:.2g} dB louder than {}", hi.letter, d, s, lo.letter);
+                v = fmt::format("{} is {:.2f} +- {:.2g} dB louder than {}", hi.letter, d, s, lo.letter);
             out.verdicts.push_back(v);
         }
         const auto& a = out.ranking[0];
@@ -399,7 +400,7 @@ rank_outcome rank_diodes(const fs::path& scenario_file, const std::vector<std::s
         const double s = std::hypot(a.level_sigma_db, b.level_sigma_db);
         auto thd_note = [&](const ranked_diode& x) { return std::isfinite(x.thd_percent) ? fmt::format(", THD {:.2g} %", x.thd_percent) : ""; };
         if (std::isfinite(s) && d < opt.distinguishable_sigmas * s)
-            out.advice = fmt::format("diodes {} and {} are indistinguishable in level at this signal ({:.2g} +- {:.2g} dB); either will do{}",
+            out.advice = fmt::format("diodes {} and {} are indistinguishable in level at this signal ({:.2f} +- {:.2g} dB); either will do{}",
                                      a.letter, b.letter, d, s,
                                      std::isfinite(a.thd_percent) && std::isfinite(b.thd_percent)
                                          ? fmt::format(" ({} has the lower THD: {:.2g} % against {:.2g} %)",
@@ -408,7 +409,7 @@ rank_outcome rank_diodes(const fs::path& scenario_file, const std::vector<std::s
                                          : std::string());
         else
             out.advice = fmt::format("solder diode {} ({}): it is {} dB louder than {} at this signal level{}{}", a.letter,
-                                     a.diode_file.string(), std::isfinite(s) ? fmt::format("{:.2g} +- {:.2g}", d, s) : fmt::format("{:.2g}", d),
+                                     a.diode_file.string(), std::isfinite(s) ? fmt::format("{:.1f} +- {:.2g}", d, s) : fmt::format("{:.1f}", d),
                                      b.letter, thd_note(a),
                                      d < audible_level_step_db ? fmt::format(" (below about {:g} dB a level step is hard to hear)", audible_level_step_db)
                                                                : std::string());

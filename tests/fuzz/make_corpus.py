@@ -180,6 +180,13 @@ format = 24
     "malformed.toml": """[signal
 carrier_hz = = 3
 """,
+    "diode-file.toml": """[signal]
+tone_hz = 1000
+[diode]
+file = "no-such-diode.toml"
+emission_coefficient = 1.4
+@set diode.file=/dev/null
+""",
 }
 for name, text in scenarios.items():
     (sc_dir / name).write_text(text)
