@@ -159,3 +159,37 @@ TEST_CASE("clip conditioning rejects silent and non-finite clips")
     CHECK_THROWS_WITH_AS(clip_modulation(std::make_unique<buffer_reader>(bad, 48000.0), conditioning_settings{}),
                          doctest::Contains("not finite"), audio_error);
 }
+
+TEST_CASE("clip conditioning: the clip's scale does not matter, up to finite samples near FLT_MAX")
+{
+    // Conditioning is linear and ends in peak normalisation, so a clip scaled by any finite factor must give
+    // the same programme (up to float rounding). A float WAV may hold samples near FLT_MAX (3.4e38): unscaled,
+    // the band-limiting FIR overflowed to Inf and the normalisation to NaN (found by wav_fuzz); the same clip
+    // scaled down by 1e38, and a clip of subnormal-scale samples (1e-40), must condition alike.
+    const double fs = 48000.0;
+    std::vector<float> base(static_cast<std::size_t>(fs * 0.1));
+    for (std::size_t i = 0; i < base.size(); ++i)
+        base[i] = static_cast<float>(0.5 * std::sin(2.0 * k_pi * 700.0 * i / fs) + 0.25 * std::sin(2.0 * k_pi * 2300.0 * i / fs));
+    auto programme = [&](float scale) {
+        std::vector<float> s(base);
+        for (float& v : s) v *= scale;
+        clip_modulation clip(std::make_unique<buffer_reader>(s, fs), conditioning_settings{});
+        clip.prepare(0.0, clip.duration_s());
+        std::vector<double> out;
+        for (int i = 0; i < 2000; ++i) out.push_back(clip.value(clip.duration_s() * i / 2000.0));
+        return out;
+    };
+    const auto ref = programme(1.0f);
+    for (const float scale : {3.0e38f, 4e-40f}) {
+        const auto x = programme(scale);
+        double worst = 0.0;
+        for (std::size_t i = 0; i < x.size(); ++i) {
+            REQUIRE(std::isfinite(x[i]));
+            CHECK(std::fabs(x[i]) <= 1.0);
+            worst = std::max(worst, std::fabs(x[i] - ref[i]));
+        }
+        // Subnormal floats keep only a few significant bits (0.75 * 4e-40 has about 12 bits left), so the
+        // small clip agrees to about 2^-10; the large one to float rounding.
+        CHECK(worst < (scale < 1.0f ? 2e-3 : 1e-6));
+    }
+}

@@ -65,6 +65,9 @@ seeds = {
     "float-extensible-4ch.wav": wav(3, 4, 44100, 32, f32(sine(4 * 64, 1000, 44100)), extensible=True),
     "float-nan-middle.wav": wav(3, 1, 8000, 32, f32(s[:100] + [float("nan")] + s[101:])),
     "float-inf.wav": wav(3, 1, 8000, 32, f32([float("inf")] + s[1:])),
+    # Found by wav_fuzz: finite samples near FLT_MAX overflowed the conditioning's float stages to NaN.
+    "found-float-huge-finite.wav": wav(3, 1, 8000, 32, f32([x * 6.0e38 for x in s])),
+    "float-subnormal.wav": wav(3, 1, 8000, 32, f32([x * 1e-39 for x in s])),
     "pcm16-truncated.wav": wav(1, 1, 8000, 16, pcm16(s)[:200], data_size=2 * n),
     "pcm16-zero-frames.wav": wav(1, 1, 8000, 16, b""),
     "pcm16-rate-100hz.wav": wav(1, 1, 100, 16, pcm16(s)),
