@@ -77,7 +77,7 @@ void draw_fit_plot(const diode_fit_result& r, const fs::path& dir)
         "set format x ''\nset key bottom right font ',9'\nset yrange [{3:.3g}:*]\n"
         "plot 'fit-curve.dat' using 1:2 with lines lw 2 lc rgb '#3366aa' title '{2}', "
         "'fit-points.dat' using 1:2 with points pt 7 ps 1.1 lc rgb '#cc3311' title 'measured'\n"
-        "set origin 0,0\nset size 1,0.34\nunset logscale y\nset format y '%g'\nset format x '%g'\n"
+        "set origin 0,0\nset size 1,0.34\nunset logscale y\nset autoscale y\nset format y '%g'\nset format x '%g'\n"
         "set ylabel 'residual, %'\nset xlabel 'voltage across the diode, V'\nunset key\n"
         "plot 0 with lines lc rgb '#888888', 'fit-points.dat' using 1:4 with impulses lw 2 lc rgb '#cc3311', "
         "'' using 1:4 with points pt 7 lc rgb '#cc3311'\n"

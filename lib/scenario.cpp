@@ -287,7 +287,8 @@ std::map<std::string, std::string> apply_overrides(toml::table& root, const std:
                 if (auto str = parsed["v"].value<std::string>()) path = *str;
             } catch (const toml::parse_error&) {
             }
-            if (path.empty()) throw config_error(fmt::format("--set {}: {}.{}: the path is empty", o, section, key));
+            if (path.empty())
+                throw config_error(fmt::format("--set {}: {}.{}: the {} path is empty", o, section, key, key == "audio" ? "clip" : "diode file"));
             std::error_code ec;
             const fs::path abs = fs::absolute(fs::path(path), ec);
             if (ec) throw config_error(fmt::format("--set {}: {}.{}: cannot resolve the path: {}", o, section, key, ec.message()));
