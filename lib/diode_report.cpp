@@ -10,6 +10,7 @@
 #include <Eigen/Eigenvalues>
 #include <algorithm>
 #include <atomic>
+#include <cctype>
 #include <cmath>
 #include <exception>
 #include <fmt/format.h>

@@ -149,3 +149,31 @@ TEST_CASE("rank-diodes refuses a single diode and a missing file with one line, 
     CHECK(std::count(r.err.begin(), r.err.end(), '\n') == 1);
     CHECK_FALSE(fs::exists(dir / "o"));
 }
+
+TEST_CASE("fit-diode's temperature: the command line over the file's line over 25 degC")
+{
+    const fs::path dir = tmp_dir("temperature");
+    const fs::path csv = fs::path(GALENA_SOURCE_DIR) / "scenarios" / "diodes" / "schottky-like.csv"; // "# temperature_c = 24.0"
+    fit_diode_options opt;
+    auto o = run_fit_diode(csv, dir / "file", opt);
+    CHECK(o.fit.temperature_c == 24.0);
+    CHECK(o.fit.temperature_source == "file");
+    // Vt = k T / q with the exact 2019 SI constants (SI brochure, 9th ed.).
+    CHECK(o.fit.thermal_voltage_v == doctest::Approx(1.380649e-23 * (24.0 + 273.15) / 1.602176634e-19).epsilon(1e-15));
+    opt.temperature_c = 30.0;
+    o = run_fit_diode(csv, dir / "cli", opt);
+    CHECK(o.fit.temperature_c == 30.0);
+    CHECK(o.fit.temperature_source == "command line");
+    // The diode file carries the measurement temperature, so a scenario renders the diode where it was measured.
+    const std::string toml = slurp(dir / "cli" / "diode.toml");
+    CHECK(toml.find("temperature_c = 30.0") != std::string::npos);
+    CHECK(toml.find("nominal_temperature_c = 30.0") != std::string::npos);
+    {
+        std::ofstream f(dir / "plain.csv");
+        f << "voltage_v,current_a\n-1,-1e-7\n0.1,1e-6\n0.2,2e-5\n0.3,2e-4\n0.4,1e-3\n0.5,3e-3\n";
+    }
+    opt.temperature_c.reset();
+    o = run_fit_diode(dir / "plain.csv", dir / "default", opt);
+    CHECK(o.fit.temperature_c == 25.0);
+    CHECK(o.fit.temperature_source == "default");
+}
