@@ -498,7 +498,7 @@ std::array<double, fit_parameter_count> starting_values(const log_current_proble
     const std::size_t top = fwd.back();
     const double excess = pb.v[top] - a0 * std::log1p(pb.i[top] / is0);
     double rs0 = excess > 0.0 ? excess / pb.i[top] : 0.01 * a0 / pb.i[top];
-    rs0 = std::clamp(rs0, 1e-6, 0.9 * pb.v[top] / pb.i[top]);
+    rs0 = std::clamp(rs0, 1e-6, std::max(0.9 * pb.v[top] / pb.i[top], 1e-6));
     // Leakage from the reverse slope (two most negative points) or one reverse point.
     double rsh0 = inf;
     if (rev.size() >= 2) {
