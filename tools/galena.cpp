@@ -19,6 +19,15 @@
 
 namespace {
 
+/// The installed data folder: <prefix>/share/galena, with <prefix> the folder above this executable's bin/.
+std::filesystem::path installed_data_dir()
+{
+    std::error_code ec;
+    const auto exe = std::filesystem::weakly_canonical("/proc/self/exe", ec);
+    if (ec || exe.empty()) return {};
+    return exe.parent_path().parent_path() / GALENA_INSTALL_DATA_SUBDIR;
+}
+
 /// Documented exit codes (README, "Exit codes").
 enum exit_code : int {
     exit_ok = 0,
@@ -268,7 +277,7 @@ int main(int argc, char** argv)
             po.sweep.threads = *demo ? demo_threads : cmp_threads;
             po.curves = !cmp_no_curves;
             std::filesystem::path input = cmp_input;
-            if (*demo) input = galena::find_bundled_file("scenarios/demo-pack.toml", "/proc/self/exe");
+            if (*demo) input = galena::find_bundled_file("scenarios/demo-pack.toml", "/proc/self/exe", installed_data_dir());
             if (*demo || (cmp_vary.empty() && cmp_variants.empty())) {
                 const auto pack = galena::load_pack(input);
                 base = pack.scenario;
