@@ -88,6 +88,7 @@ std::vector<fs::path> scenario_inputs(const scenario& s)
     std::vector<fs::path> in;
     if (!s.file.empty()) in.push_back(s.file);
     if (s.programme.kind == programme_kind::clip) in.push_back(s.programme.audio);
+    if (!s.diode_file.empty()) in.push_back(s.diode_file);
     return in;
 }
 

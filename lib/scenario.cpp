@@ -168,6 +168,7 @@ const std::map<std::string, std::map<std::string, key_entry>>& key_table()
         {"diode",
          {
              {"preset", [](scenario&, const toml::node&, const std::string&, const std::string&) {}}, // applied first
+             {"file", [](scenario&, const toml::node&, const std::string&, const std::string&) {}},   // applied first
              {"saturation_current_a", quantity(unit::ampere, [](scenario& s) -> double& { return s.circuit.diode.saturation_current_a; })},
              {"emission_coefficient", quantity(unit::none, [](scenario& s) -> double& { return s.circuit.diode.emission_coefficient; })},
              {"series_resistance_ohm", quantity(unit::ohm, [](scenario& s) -> double& { return s.circuit.diode.series_resistance_ohm; })},
@@ -347,22 +348,27 @@ std::map<std::string, std::string> apply_overrides(toml::table& root, const std:
             root.insert(section, toml::table{});
             tab = root[section].as_table();
         }
-        if (section == "signal" && key == "audio") {
-            // A clip named on the command line is relative to the current directory, not to the file.
-            // The value may be a bare path or a quoted TOML string.
+        if ((section == "signal" && key == "audio") || (section == "diode" && key == "file")) {
+            // A clip or diode file named on the command line is relative to the current directory, not to
+            // the scenario file. The value may be a bare path or a quoted TOML string.
             std::string path = value;
             try {
                 toml::table parsed = toml::parse("v = " + value);
                 if (auto str = parsed["v"].value<std::string>()) path = *str;
             } catch (const toml::parse_error&) {
             }
-            if (path.empty()) throw config_error(fmt::format("--set {}: signal.audio: the clip path is empty", o));
+            if (path.empty())
+                throw config_error(fmt::format("--set {}: {}.{}: the {} path is empty", o, section, key, key == "audio" ? "clip" : "diode file"));
             std::error_code ec;
             const fs::path abs = fs::absolute(fs::path(path), ec);
-            if (ec) throw config_error(fmt::format("--set {}: signal.audio: cannot resolve the path: {}", o, ec.message()));
+            if (ec) throw config_error(fmt::format("--set {}: {}.{}: cannot resolve the path: {}", o, section, key, ec.message()));
+            if (section == "diode" && !origin.contains("diode.preset")) tab->erase("preset");
             tab->insert_or_assign(key, abs.string());
             continue;
         }
+        // A diode file on the command line replaces a preset in the scenario file, and the other way round.
+        if (section == "diode" && key == "file" && !origin.contains("diode.preset")) tab->erase("preset");
+        if (section == "diode" && key == "preset" && !origin.contains("diode.file")) tab->erase("file");
         try {
             toml::table parsed = toml::parse("v = " + value);
             tab->insert_or_assign(key, *parsed["v"].node());
@@ -505,6 +511,65 @@ std::string quote_hint(const std::string& text, std::size_t line)
     return {};
 }
 
+/// Reads a diode file (`diode.file`): a TOML file with one [diode] section of diode keys (no preset, no
+/// file). Starts from diode_params' defaults; messages name the diode file and line. `where` names the
+/// scenario key that pointed here.
+diode_params load_diode_file(const fs::path& path, const std::string& where)
+{
+    std::error_code ec;
+    if (fs::is_directory(path, ec))
+        throw config_error(fmt::format("{}: diode.file = \"{}\": is a directory, not a diode file", where, path.string()));
+    // Only regular files of a sensible size (a device such as /dev/zero would never end).
+    if (fs::exists(path, ec) && (!fs::is_regular_file(path, ec) || fs::file_size(path, ec) > 1000000))
+        throw config_error(fmt::format("{}: diode.file = \"{}\": must be a regular text file of at most 1 MB", where, path.string()));
+    std::ifstream in(path, std::ios::binary);
+    if (!in)
+        throw config_error(fmt::format("{}: diode.file = \"{}\": cannot open the diode file: {}", where, path.string(), std::strerror(errno)));
+    std::stringstream ss;
+    ss << in.rdbuf();
+    toml::table root;
+    try {
+        root = toml::parse(ss.str(), path.string());
+    } catch (const toml::parse_error& e) {
+        throw config_error(fmt::format("{}:{}: malformed TOML: {}", path.string(), e.source().begin.line, detail::one_line(e.description())));
+    }
+    scenario tmp;
+    tmp.circuit.diode = diode_params{};
+    tmp.circuit.diode.name = "file";
+    const auto& keys = key_table().at("diode");
+    std::vector<std::string> names;
+    for (const auto& [k, v] : keys)
+        if (k != "preset" && k != "file") names.push_back(k);
+    for (const auto& [sec_name, sec_node] : root) {
+        const std::string sec(sec_name.str());
+        if (sec != "diode" || !sec_node.is_table())
+            throw config_error(fmt::format("{}: [{}]: a diode file holds only a [diode] section", source_of(sec_node, path), sec));
+        for (const auto& [key_name, node] : *sec_node.as_table()) {
+            const std::string key(key_name.str());
+            const std::string field = "diode." + key;
+            const std::string w = source_of(node, path);
+            if (key == "preset" || key == "file")
+                throw config_error(fmt::format("{}: {}: not allowed in a diode file (it is the diode itself)", w, field));
+            const auto kt = keys.find(key);
+            if (kt == keys.end()) {
+                const std::string near = nearest(key, names);
+                throw config_error(fmt::format("{}: {}: unknown key{}", w, field, near.empty() ? "" : fmt::format(" (did you mean diode.{}?)", near)));
+            }
+            kt->second.set(tmp, node, field, w);
+        }
+    }
+    if (!root.contains("diode")) throw config_error(fmt::format("{}: no [diode] section: not a diode file", path.string()));
+    try {
+        tmp.circuit.diode.validate();
+    } catch (const config_error& e) {
+        const std::string msg = e.what();
+        const std::string field = msg.substr(0, msg.find(' '));
+        const toml::node* n = root.at_path(field).node();
+        throw config_error(fmt::format("{}: {}", n != nullptr ? source_of(*n, path) : path.string(), msg));
+    }
+    return tmp.circuit.diode;
+}
+
 } // namespace
 
 scenario parse_scenario(const std::string& text, const fs::path& file, const std::vector<std::string>& overrides)
@@ -520,8 +585,23 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
 
     scenario s;
     s.file = file;
-    // Preset first, so explicit diode fields override it.
-    if (const toml::node* p = root.at_path("diode.preset").node()) {
+    // Preset or diode file first, so explicit diode fields override it.
+    const toml::node* diode_file_node = root.at_path("diode.file").node();
+    if (diode_file_node != nullptr && root.at_path("diode.preset").node() != nullptr)
+        throw config_error(fmt::format("{}: diode.file and diode.preset: give one of them (keys beside either override it)",
+                                       origin_of(*diode_file_node, "diode.file", file, overridden)));
+    if (diode_file_node != nullptr) {
+        const std::string w = origin_of(*diode_file_node, "diode.file", file, overridden);
+        const std::string name = as_string(*diode_file_node, "diode.file", w);
+        if (name.empty()) throw config_error(fmt::format("{}: diode.file = \"\": must name a diode file", w));
+        fs::path p = name;
+        if (!p.is_absolute()) p = file.parent_path() / p;
+        std::error_code ec;
+        const fs::path abs = fs::absolute(p, ec);
+        if (ec) throw config_error(fmt::format("{}: diode.file = \"{}\": cannot resolve the path: {}", w, name, ec.message()));
+        s.circuit.diode = load_diode_file(abs, w);
+        s.diode_file = abs;
+    } else if (const toml::node* p = root.at_path("diode.preset").node()) {
         const std::string w = origin_of(*p, "diode.preset", file, overridden);
         const std::string name = as_string(*p, "diode.preset", w);
         try {
@@ -719,11 +799,13 @@ std::string to_toml(const scenario& s)
                      num(p.duration_s), num(s.am.carrier_hz), num(s.am.carrier_peak_v), num(s.am.modulation_index),
                      s.am.allow_overmodulation ? "true" : "false", num(p.audio_cutoff_hz));
     o += fmt::format("\n[source]\nresistance_ohm = {}\n", num(s.circuit.source.resistance_ohm));
-    o += fmt::format("\n[diode]\npreset = \"{}\"\nsaturation_current_a = {}\nemission_coefficient = {}\nseries_resistance_ohm = {}\n"
+    o += s.diode_file.empty() ? fmt::format("\n[diode]\npreset = \"{}\"\n", d.name == "custom" || d.name == "file" ? "germanium-point-contact" : d.name)
+                              : fmt::format("\n[diode]\nfile = {}\n", toml_quote(s.diode_file.string()));
+    o += fmt::format("saturation_current_a = {}\nemission_coefficient = {}\nseries_resistance_ohm = {}\n"
                      "leakage_resistance_ohm = {}\njunction_capacitance_f = {}\njunction_potential_v = {}\ngrading_coefficient = {}\n"
                      "breakdown_voltage_v = {}\nbreakdown_current_a = {}\ntemperature_c = {}\nnominal_temperature_c = {}\n"
                      "energy_gap_ev = {}\nsaturation_current_exponent = {}\n",
-                     d.name == "custom" ? "germanium-point-contact" : d.name, num(d.saturation_current_a), num(d.emission_coefficient),
+                     num(d.saturation_current_a), num(d.emission_coefficient),
                      num(d.series_resistance_ohm), num(d.leakage_resistance_ohm), num(d.junction_capacitance_f),
                      num(d.junction_potential_v), num(d.grading_coefficient), num(d.breakdown_voltage_v),
                      num(d.breakdown_current_a), num(d.temperature_c), num(d.nominal_temperature_c), num(d.energy_gap_ev),

@@ -270,27 +270,29 @@ std::optional<double> pack_number(const toml::table& t, const char* key, const s
     throw config_error(fmt::format("{}: {}: must be a number", pack_where(*n, file), field));
 }
 
-/// A pack's `set` entry with a relative signal.audio made absolute against the pack file's folder: paths in
+/// A pack's `set` entry with a relative signal.audio or diode.file made absolute against the pack file's folder: paths in
 /// a file are relative to that file, wherever the command runs.
 std::string pack_relative(const std::string& entry, const fs::path& file, const std::string& where)
 {
     const auto eq = entry.find('=');
-    if (eq == std::string::npos || trim(entry.substr(0, eq)) != "signal.audio") return entry;
+    if (eq == std::string::npos) return entry;
+    const std::string key = trim(entry.substr(0, eq));
+    if (key != "signal.audio" && key != "diode.file") return entry;
     std::string path = trim(entry.substr(eq + 1));
     try {
         toml::table parsed = toml::parse("v = " + path);
         if (auto str = parsed["v"].value<std::string>()) path = *str;
     } catch (const toml::parse_error&) {
     }
-    if (path.empty()) throw config_error(fmt::format("{}: set {}: signal.audio: the clip path is empty", where, entry));
+    if (path.empty()) throw config_error(fmt::format("{}: set {}: {}: the path is empty", where, entry, key));
     fs::path p(path);
     if (p.is_relative()) {
         std::error_code ec;
         p = fs::absolute(file.parent_path() / p, ec);
-        if (ec) throw config_error(fmt::format("{}: set {}: signal.audio: cannot resolve the path: {}", where, entry, ec.message()));
+        if (ec) throw config_error(fmt::format("{}: set {}: {}: cannot resolve the path: {}", where, entry, key, ec.message()));
     }
     nlohmann::json q = p.string(); // a TOML basic string: JSON string escaping is a subset of it
-    return "signal.audio=" + q.dump();
+    return key + "=" + q.dump();
 }
 } // namespace
 

@@ -1,6 +1,7 @@
 // galena command-line tool: argument parsing and exit codes only; all work is done by the library.
 #include "galena/cancel.hpp"
 #include "galena/components.hpp"
+#include "galena/diode_report.hpp"
 #include "galena/error.hpp"
 #include "galena/job.hpp"
 #include "galena/metrics.hpp"
@@ -16,6 +17,7 @@
 #include <chrono>
 #include <cmath>
 #include <csignal>
+#include <optional>
 #include <cstdio>
 #include <fmt/format.h>
 #include <unistd.h>
@@ -262,6 +264,33 @@ int main(int argc, char** argv)
     demo->add_flag("--overwrite", overwrite, "replace existing output files");
     demo->add_flag("--quiet,-q", quiet, "no progress output");
 
+    // Measured diodes (issue 15): fit-diode and rank-diodes.
+    std::string fd_points, fd_out;
+    std::optional<double> fd_temperature;
+    auto* fit_diode = app.add_subcommand("fit-diode", "fit a diode model (Is, n, Rs, leakage) to measured points: DIR/diode.toml, fit.json, plot");
+    fit_diode->add_option("points", fd_points, "measurement file (CSV: voltage_v,current_a or supply_v,series_ohm,diode_v)")->required();
+    fit_diode->add_option("--out,-o", fd_out, "output directory")->required();
+    fit_diode->add_option("--temperature-c", fd_temperature, "measurement temperature, degC (default: the file's, else 25)");
+    fit_diode->add_flag("--overwrite", overwrite, "replace existing output files");
+
+    std::string rk_scenario, rk_out;
+    std::vector<std::string> rk_diodes, rk_sets;
+    unsigned rk_threads = 0;
+    double rk_tone_hz = 1000.0;
+    double rk_tone_s = 0.3;
+    auto* rank = app.add_subcommand("rank-diodes", "render one scenario with each fitted diode; rank them by detected level, with uncertainty");
+    rank->add_option("scenario", rk_scenario, "scenario file (TOML): the set and the signal level")->required();
+    rank->add_option("diodes", rk_diodes, "diode.toml files written by fit-diode (fit.json beside each gives the uncertainty)")->required();
+    rank->add_option("--out,-o", rk_out, "output directory")->required();
+    rank->add_option("--set,-s", rk_sets, "override the scenario: section.key=value (repeatable)");
+    rank->add_option("--threads,-j", rk_threads, "worker threads (0 = all cores)");
+    rank->add_option("--measure-tone", rk_tone_hz, "for audio clips, rank on a tone of this frequency, Hz (0 = the clip's RMS level)")
+        ->capture_default_str();
+    rank->add_option("--measure-duration", rk_tone_s, "length of that tone render, s")->capture_default_str();
+    rank->add_flag("--overwrite", overwrite, "replace existing output files");
+    rank->add_flag("--quiet,-q", quiet, "no progress output");
+    rank->add_flag("--allow-long", allow_long, long_help);
+
     try {
         app.parse(argc, argv);
     } catch (const CLI::ParseError& e) {
@@ -278,6 +307,29 @@ int main(int argc, char** argv)
                            d.leakage_resistance_ohm, d.junction_capacitance_f, d.junction_potential_v, d.grading_coefficient,
                            d.breakdown_voltage_v, d.energy_gap_ev, d.video_resistance_ohm(), d.temperature_c);
             }
+            return exit_ok;
+        }
+        if (*fit_diode) {
+            galena::fit_diode_options fo;
+            fo.temperature_c = fd_temperature;
+            fo.overwrite = overwrite;
+            const auto o = galena::run_fit_diode(fd_points, fd_out, fo);
+            fmt::print("{}wrote {}, {}{}\n", galena::fit_summary_text(o.fit), o.diode_toml.string(), o.fit_json.string(),
+                       o.plot_svg.empty() ? std::string() : " and " + o.plot_svg.string());
+            for (const auto& w : o.warnings) std::fprintf(stderr, "galena: warning: %s\n", w.c_str());
+            return exit_ok;
+        }
+        if (*rank) {
+            galena::rank_options ro;
+            ro.pack.sweep.threads = rk_threads;
+            ro.pack.sweep.overwrite = overwrite;
+            ro.pack.sweep.progress = sweep_progress(quiet);
+            ro.pack.sweep.allow_long = allow_long;
+            ro.pack.sweep.measure_tone_hz = rk_tone_hz;
+            ro.pack.sweep.measure_duration_s = rk_tone_s;
+            std::vector<std::filesystem::path> files(rk_diodes.begin(), rk_diodes.end());
+            const auto o = galena::rank_diodes(rk_scenario, rk_sets, files, rk_out, ro);
+            fmt::print("{}\nwrote {}, {} and {}\n", galena::ranking_markdown(o), o.csv.string(), o.markdown.string(), o.pack.page.string());
             return exit_ok;
         }
         if (*check) {

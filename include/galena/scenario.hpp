@@ -51,6 +51,7 @@ struct output_spec {
 /// A complete, validated scenario.
 struct scenario {
     std::filesystem::path file;      ///< where it came from (empty for built-in)
+    std::filesystem::path diode_file; ///< diode.file: the diode file the diode came from (absolute), or empty
     programme_spec programme;
     am_params am;
     circuit_params circuit;

@@ -204,6 +204,13 @@ capacitance_f = "10 nF"
 @set bleeder_ohm=47k
 @set earpiece.leakage_ohm=10nF
 """,
+    "diode-file.toml": """[signal]
+tone_hz = 1000
+[diode]
+file = "no-such-diode.toml"
+emission_coefficient = 1.4
+@set diode.file=/dev/null
+""",
 }
 for name, text in scenarios.items():
     (sc_dir / name).write_text(text)
