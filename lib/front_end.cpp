@@ -274,4 +274,59 @@ receiver_network build_receiver_network(const circuit_params& circuit, const ant
     return r;
 }
 
+double detector_gain(const receiver_network& rn, std::complex<double> y, double f_hz)
+{
+    return std::abs(rn.net.transfer_to(rn.emf_input, rn.detector_node, ground_node, f_hz, y));
+}
+
+rf_tuning analyse_tuning(const receiver_network& rn, std::complex<double> y, double around_hz)
+{
+    const double nan = std::numeric_limits<double>::quiet_NaN();
+    rf_tuning t{nan, nan, nan, nan};
+    auto gain = [&](double f) { return detector_gain(rn, y, f); };
+    const double lo = 0.6 * around_hz, hi = 1.6 * around_hz;
+    constexpr int scan = 600;
+    int best = 0;
+    double best_g = -1.0;
+    const double ratio = std::pow(hi / lo, 1.0 / scan);
+    for (int k = 0; k <= scan; ++k) {
+        const double g = gain(lo * std::pow(ratio, k));
+        if (g > best_g) best_g = g, best = k;
+    }
+    if (best == 0 || best == scan) return t;
+    // Golden-section refinement of the maximum inside the bracketing scan points.
+    double a = lo * std::pow(ratio, best - 1), b = lo * std::pow(ratio, best + 1);
+    const double gr = 0.5 * (std::sqrt(5.0) - 1.0);
+    double c = b - gr * (b - a), d = a + gr * (b - a);
+    double gc = gain(c), gd = gain(d);
+    for (int it = 0; it < 100 && (b - a) > 1e-12 * b; ++it) {
+        if (gc > gd) {
+            b = d, d = c, gd = gc;
+            c = b - gr * (b - a), gc = gain(c);
+        } else {
+            a = c, c = d, gc = gd;
+            d = a + gr * (b - a), gd = gain(d);
+        }
+    }
+    const double fp = 0.5 * (a + b);
+    const double gp = gain(fp);
+    const double target = gp / std::sqrt(2.0);
+    auto edge = [&](double inside, double outside) {
+        if (gain(outside) > target) return nan;
+        for (int it = 0; it < 200 && std::fabs(outside - inside) > 1e-12 * inside; ++it) {
+            const double m = 0.5 * (inside + outside);
+            (gain(m) > target ? inside : outside) = m;
+        }
+        return 0.5 * (inside + outside);
+    };
+    const double f_lo = edge(fp, lo), f_hi = edge(fp, hi);
+    t.tuned_hz = fp;
+    t.peak_gain = gp;
+    if (std::isfinite(f_lo) && std::isfinite(f_hi)) {
+        t.bandwidth_hz = f_hi - f_lo;
+        t.loaded_q = fp / t.bandwidth_hz;
+    }
+    return t;
+}
+
 } // namespace galena

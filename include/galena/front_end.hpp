@@ -93,4 +93,18 @@ struct receiver_network {
 [[nodiscard]] receiver_network build_receiver_network(const circuit_params& circuit, const antenna_params& antenna,
                                                       const tuner_params& tuner);
 
+/// The front end's tuning as the detector sees it: the response |v(detector node) / EMF| with the junction
+/// replaced by a linear admittance (the detector's effective RF loading, e.g. measured by the RF integrator).
+struct rf_tuning {
+    double tuned_hz = 0.0;       ///< frequency of the largest response, Hz (NaN without a resonance in range)
+    double loaded_q = 0.0;       ///< tuned_hz / rf_bandwidth_hz
+    double bandwidth_hz = 0.0;   ///< between the -3 dB points, Hz
+    double peak_gain = 0.0;      ///< |v_detector / EMF| at tuned_hz
+};
+/// Searches [0.6, 1.6] x around_hz for the response peak (a scan, then golden-section refinement) and the
+/// -3 dB points (bisection). Fields are NaN when the peak is at the edge of the range (no resonance).
+[[nodiscard]] rf_tuning analyse_tuning(const receiver_network& rn, std::complex<double> port_admittance_s, double around_hz);
+/// |v_detector / EMF| at f_hz with the junction replaced by `port_admittance_s`.
+[[nodiscard]] double detector_gain(const receiver_network& rn, std::complex<double> port_admittance_s, double f_hz);
+
 } // namespace galena
