@@ -122,7 +122,7 @@ double rf_integrator::solve_junction(double alpha, double beta, double v, double
 {
     // F(v) = v - alpha - beta J(v), J the step's junction current as a function of its end voltage;
     // beta <= 0 (passive network) makes F increasing, so the root is bracketed by the signs seen.
-    const double two_over_h = 2.0 / m_h;
+    const double inv_h = 1.0 / m_h;
     double lo = -std::numeric_limits<double>::infinity();
     double hi = std::numeric_limits<double>::infinity();
     for (int it = 0; it < 200; ++it) {
@@ -132,10 +132,11 @@ double rf_integrator::solve_junction(double alpha, double beta, double v, double
         double dj = jv.conductance_s;
         double qr = 0.0, cr = 0.0;
         if (m_charge) {
+            // Backward Euler on the residual charge (see the header): no step-to-step recursion to ring.
             qr = jv.charge_c - m_c_lin * v;
             cr = jv.capacitance_f - m_c_lin;
-            jj += m_i0 - m_j + two_over_h * (qr - m_qr0);
-            dj += two_over_h * cr;
+            jj += inv_h * (qr - m_qr0);
+            dj += inv_h * cr;
         }
         const double f = v - alpha - beta * jj;
         const double df = 1.0 - beta * dj;
@@ -151,7 +152,9 @@ double rf_integrator::solve_junction(double alpha, double beta, double v, double
             }
         }
         const double dv = vn - v;
-        if (std::fabs(dv) <= m_tol) {
+        // Newton's remaining error after this update is about |F''| dv^2 / (2 F'), F'' = -beta dI'/dv (the
+        // charge's curvature is left out: it is bounded by the conductance's in forward conduction).
+        if (std::fabs(dv) <= m_tol || 0.5 * std::fabs(beta * jv.conductance_slope_s_per_v) * dv * dv <= m_tol * df) {
             // Converged: the update is below the tolerance; carry the law to vn linearly.
             j1 = jj + dj * dv;
             m_i0 = jv.current_a + jv.conductance_s * dv;
