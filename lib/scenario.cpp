@@ -243,6 +243,58 @@ const std::map<std::string, std::map<std::string, key_entry>>& key_table()
              {"dc_tolerance", quantity(unit::none, [](scenario& s) -> double& { return s.render.dc_tolerance; })},
              {"newton_tolerance", quantity(unit::none, [](scenario& s) -> double& { return s.render.newton_tolerance; })},
          }},
+        {"antenna",
+         {
+             {"preset", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
+                  s.antenna.preset = as_string(n, f, w);
+                  if (s.antenna.preset != "standard-dummy")
+                      throw config_error(fmt::format("{}: {} = \"{}\": must be standard-dummy (or leave it out and give the fields)", w, f,
+                                                     s.antenna.preset));
+              }},
+             {"effective_height_m", quantity(unit::metre, [](scenario& s) -> double& { return s.antenna.effective_height_m; })},
+             {"capacitance_f", quantity(unit::farad, [](scenario& s) -> double& { return s.antenna.capacitance_f; })},
+             {"inductance_h", quantity(unit::henry, [](scenario& s) -> double& { return s.antenna.inductance_h; })},
+             {"resistance_ohm", quantity(unit::ohm, [](scenario& s) -> double& { return s.antenna.resistance_ohm; })},
+         }},
+        {"tuner",
+         {
+             {"layout", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
+                  try {
+                      s.tuner.layout = parse_tuner_layout(as_string(n, f, w));
+                  } catch (const config_error& e) {
+                      throw config_error(fmt::format("{}: {}", w, e.what()));
+                  }
+              }},
+             {"coil_h", quantity(unit::henry, [](scenario& s) -> double& { return s.tuner.coil_h; })},
+             {"coil_q", quantity(unit::none, [](scenario& s) -> double& { return s.tuner.coil_q; })},
+             {"tuned_hz", quantity(unit::hertz, [](scenario& s) -> double& { return s.tuner.tuned_hz; })},
+             {"capacitance_f", quantity(unit::farad, [](scenario& s) -> double& { return s.tuner.capacitance_f; })},
+             {"detector_tap", quantity(unit::none, [](scenario& s) -> double& { return s.tuner.detector_tap; })},
+             {"antenna_tap", quantity(unit::none, [](scenario& s) -> double& { return s.tuner.antenna_tap; })},
+             {"antenna_coil_h", quantity(unit::henry, [](scenario& s) -> double& { return s.tuner.antenna_coil_h; })},
+             {"antenna_coil_q", quantity(unit::none, [](scenario& s) -> double& { return s.tuner.antenna_coil_q; })},
+             {"coupling", quantity(unit::none, [](scenario& s) -> double& { return s.tuner.coupling; })},
+             {"dc_return_ohm", quantity(unit::ohm, [](scenario& s) -> double& { return s.tuner.dc_return_ohm; })},
+         }},
+        // [[station]]: an array of tables; each key sets the station being read (the last one).
+        {"station",
+         {
+             {"name", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
+                  s.stations.back().params.name = as_string(n, f, w);
+              }},
+             {"carrier_hz", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) { s.stations.back().params.carrier_hz = as_number(n, f, w, unit::hertz); }},
+             {"field_v_per_m", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) { s.stations.back().params.field_v_per_m = as_number(n, f, w, unit::none); }},
+             {"modulation_index", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) { s.stations.back().params.modulation_index = as_number(n, f, w, unit::none); }},
+             {"tone_hz", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
+                  s.stations.back().tone_hz = as_number(n, f, w, unit::hertz);
+                  s.stations.back().kind = programme_kind::tone;
+              }},
+             {"audio", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
+                  s.stations.back().audio = as_string(n, f, w);
+                  if (s.stations.back().audio.empty()) throw config_error(fmt::format("{}: {} = \"\": must name an audio file", w, f));
+                  s.stations.back().kind = programme_kind::clip;
+              }},
+         }},
     };
     return t;
 }
@@ -438,6 +490,24 @@ void validate_scenario(const scenario& s)
         throw config_error(fmt::format("signal.carrier_hz = {}: must be at least 2.5 x the audio Nyquist frequency "
                                        "({} Hz) so the sidebands stay clear of DC and the audio band",
                                        detail::format_value(s.am.carrier_hz), nyq));
+    if (s.tuner.layout != tuner_layout::bench) {
+        s.tuner.validate();
+        s.antenna.validate();
+        if (s.stations.empty())
+            throw config_error(fmt::format("tuner.layout = \"{}\": needs at least one [[station]]", to_string(s.tuner.layout)));
+        for (const auto& st : s.stations) {
+            if (st.params.carrier_hz < 2.5 * nyq || st.params.carrier_hz < 4.0 * p.audio_cutoff_hz)
+                throw config_error(fmt::format("tuner.layout: station \"{}\": carrier_hz = {}: must be at least 2.5 x the audio "
+                                               "Nyquist frequency ({} Hz) and 4 x signal.audio_cutoff_hz",
+                                               st.params.name, detail::format_value(st.params.carrier_hz), nyq));
+            if (st.kind == programme_kind::tone && !(st.tone_hz >= 1.0 && st.tone_hz <= 0.45 * 2.0 * nyq))
+                throw config_error(fmt::format("tuner.layout: station \"{}\": tone_hz = {}: must be in [1, {}] Hz", st.params.name,
+                                               detail::format_value(st.tone_hz), 0.45 * 2.0 * nyq));
+        }
+    } else if (!s.stations.empty()) {
+        throw config_error("tuner.layout = \"bench\": [[station]] needs tuner.layout = untuned, single-coil or coupled "
+                           "(the bench layout uses [signal] and [source])");
+    }
     if (s.am.carrier_hz < 4.0 * p.audio_cutoff_hz)
         throw config_error(fmt::format("signal.carrier_hz = {}: must be at least 4 x signal.audio_cutoff_hz",
                                        detail::format_value(s.am.carrier_hz)));
@@ -629,11 +699,49 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
             throw config_error(fmt::format("{}: [{}]: unknown section{}", w, sec,
                                            near.empty() ? "" : fmt::format(" (did you mean [{}]?)", near)));
         }
+        std::vector<std::string> keys;
+        for (const auto& [k, v] : it->second) keys.push_back(k);
+        if (sec == "station") {
+            // [[station]] (an array of tables), or one [station] table (also what --set station.key=v makes).
+            std::vector<const toml::table*> tabs;
+            if (const toml::array* arr = sec_node.as_array()) {
+                for (const auto& el : *arr) {
+                    if (el.as_table() == nullptr)
+                        throw config_error(fmt::format("{}: station = {}: must be [[station]] tables", source_of(el, file), node_text(el)));
+                    tabs.push_back(el.as_table());
+                }
+            } else if (sec_node.as_table() != nullptr) {
+                tabs.push_back(sec_node.as_table());
+            } else {
+                throw config_error(fmt::format("{}: station = {}: must be [[station]] tables", w, node_text(sec_node)));
+            }
+            for (const toml::table* st : tabs) {
+                s.stations.emplace_back();
+                for (const auto& [key_name, node] : *st) {
+                    const std::string key(key_name.str());
+                    const std::string field = "station." + key;
+                    const std::string kw = origin_of(node, field, file, overridden);
+                    auto kt = it->second.find(key);
+                    if (kt == it->second.end()) {
+                        const std::string near = nearest(key, keys);
+                        throw config_error(fmt::format("{}: {}: unknown key{}", kw, field,
+                                                       near.empty() ? "" : fmt::format(" (did you mean station.{}?)", near)));
+                    }
+                    kt->second(s, node, field, kw);
+                }
+                auto& sp = s.stations.back();
+                try {
+                    sp.params.validate();
+                } catch (const config_error& e) {
+                    throw config_error(fmt::format("{}: station \"{}\": {}", source_of(*st, file), sp.params.name, e.what()));
+                }
+                if (sp.kind == programme_kind::clip && !sp.audio.is_absolute()) sp.audio = file.parent_path() / sp.audio;
+            }
+            continue;
+        }
         const toml::table* tab = sec_node.as_table();
         if (tab == nullptr)
             throw config_error(fmt::format("{}: {} = {}: must be a section [{}], not a value", w, sec, node_text(sec_node), sec));
-        std::vector<std::string> keys;
-        for (const auto& [k, v] : it->second) keys.push_back(k);
         for (const auto& [key_name, node] : *tab) {
             const std::string key(key_name.str());
             const std::string field = sec + "." + key;
@@ -752,9 +860,32 @@ std::unique_ptr<modulation> make_programme(const scenario& s)
     throw config_error("unknown programme kind");
 }
 
+std::vector<std::unique_ptr<modulation>> make_station_programmes(const scenario& s)
+{
+    std::vector<std::unique_ptr<modulation>> out;
+    for (const auto& st : s.stations) {
+        if (st.kind != programme_kind::clip) {
+            out.push_back(std::make_unique<tone_modulation>(std::vector{st.tone_hz}, std::vector{1.0}, s.programme.duration_s));
+            continue;
+        }
+        // A clip: the same conditioning as signal.audio (make_programme), on the station's file.
+        scenario one = s;
+        one.programme.kind = programme_kind::clip;
+        one.programme.audio = st.audio;
+        out.push_back(make_programme(one));
+    }
+    return out;
+}
+
 double programme_duration_s(const scenario& s)
 {
     const auto& p = s.programme;
+    if (s.tuner.layout != tuner_layout::bench && !s.stations.empty()) {
+        if (s.stations.front().kind != programme_kind::clip) return p.duration_s;
+        const wav_reader r(s.stations.front().audio);
+        const double whole = static_cast<double>(r.frames()) / r.sample_rate_hz();
+        return p.duration_s > 0.0 ? std::min(whole, p.duration_s) : whole;
+    }
     if (p.kind != programme_kind::clip) return p.duration_s;
     const wav_reader r(p.audio);
     const double whole = static_cast<double>(r.frames()) / r.sample_rate_hz();
@@ -824,6 +955,23 @@ std::string to_toml(const scenario& s)
                      to_string(s.render.method), s.render.steps_per_cycle, num(s.render.dc_tolerance), num(s.render.newton_tolerance),
                      num(s.render.stepper.relative_tolerance), num(s.render.stepper.absolute_tolerance_v),
                      num(s.render.preroll_s), num(s.render.dc_block_hz), num(s.render.carrier_steps_floor));
+    if (s.tuner.layout == tuner_layout::bench) return o;
+    const auto& a = s.antenna;
+    const auto& t = s.tuner;
+    o += "\n[antenna]\n";
+    if (!a.preset.empty()) o += fmt::format("preset = {}\n", toml_quote(a.preset));
+    o += fmt::format("effective_height_m = {}\ncapacitance_f = {}\ninductance_h = {}\nresistance_ohm = {}\n", num(a.effective_height_m),
+                     num(a.capacitance_f), num(a.inductance_h), num(a.resistance_ohm));
+    o += fmt::format("\n[tuner]\nlayout = \"{}\"\ncoil_h = {}\ncoil_q = {}\ntuned_hz = {}\ncapacitance_f = {}\ndetector_tap = {}\n"
+                     "antenna_tap = {}\nantenna_coil_h = {}\nantenna_coil_q = {}\ncoupling = {}\ndc_return_ohm = {}\n",
+                     to_string(t.layout), num(t.coil_h), num(t.coil_q), num(t.tuned_hz), num(t.capacitance_f), num(t.detector_tap),
+                     num(t.antenna_tap), num(t.antenna_coil_h), num(t.antenna_coil_q), num(t.coupling), num(t.dc_return_ohm));
+    for (const auto& st : s.stations) {
+        o += fmt::format("\n[[station]]\nname = {}\ncarrier_hz = {}\nfield_v_per_m = {}\nmodulation_index = {}\n", toml_quote(st.params.name),
+                         num(st.params.carrier_hz), num(st.params.field_v_per_m), num(st.params.modulation_index));
+        if (st.kind == programme_kind::clip) o += fmt::format("audio = {}\n", toml_quote(st.audio.string()));
+        else o += fmt::format("tone_hz = {}\n", num(st.tone_hz));
+    }
     return o;
 }
 

@@ -5,9 +5,11 @@
 
 #include "galena/audio_io.hpp"
 #include "galena/circuit.hpp"
+#include "galena/front_end.hpp"
 #include "galena/render.hpp"
 #include "galena/signal.hpp"
 #include "galena/units.hpp"
+#include "galena/stations.hpp"
 
 #include <filesystem>
 #include <memory>
@@ -48,6 +50,14 @@ struct output_spec {
     double full_scale_v = 2.0;
 };
 
+/// One [[station]] of a receiver scenario: its parameters and its programme (a tone or a clip).
+struct station_spec {
+    station_params params;
+    programme_kind kind = programme_kind::tone; ///< tone or clip
+    std::filesystem::path audio;                ///< clip path, resolved relative to the scenario file
+    double tone_hz = 1000.0;                    ///< Hz
+};
+
 /// A complete, validated scenario.
 struct scenario {
     std::filesystem::path file;      ///< where it came from (empty for built-in)
@@ -57,6 +67,11 @@ struct scenario {
     circuit_params circuit;
     render_settings render;
     output_spec output;
+    /// The front end: tuner.layout = bench (the default) renders [signal] through [source]; the other layouts
+    /// render the [[station]]s through [antenna] and [tuner].
+    antenna_params antenna;
+    tuner_params tuner;
+    std::vector<station_spec> stations;  ///< the first is the wanted station
 };
 
 /// Parses and validates a scenario file, then applies `overrides` ("section.key=value", TOML value syntax;
@@ -93,6 +108,10 @@ void refuse_audio_file(const std::filesystem::path& file, const std::string& tex
 /// Builds the modulation the scenario describes (opens the audio file for clips). Errors about the clip
 /// (audio_error, config_error) name the clip's file.
 [[nodiscard]] std::unique_ptr<modulation> make_programme(const scenario& s);
+
+/// The programme of each station of a receiver scenario, in scenario order (tones last signal.duration_s;
+/// clips are conditioned with signal.audio_cutoff_hz and limited by signal.duration_s when > 0).
+[[nodiscard]] std::vector<std::unique_ptr<modulation>> make_station_programmes(const scenario& s);
 
 /// Programme length, s, without conditioning the clip: a clip's header gives frames / rate (limited by
 /// signal.duration_s when that is > 0); a test signal lasts signal.duration_s. Throws audio_error for a
