@@ -6,12 +6,14 @@
 #include "galena/metrics.hpp"
 #include "galena/constants.hpp"
 #include "galena/error.hpp"
+#include "galena/units.hpp"
 #include "galena/validate.hpp"
 
 #include <chrono>
 #include <cmath>
 #include <fmt/format.h>
 #include <nlohmann/json.hpp>
+#include <optional>
 
 namespace galena {
 
@@ -75,6 +77,89 @@ nlohmann::json job_metrics(const scenario& s, std::span<const float> earpiece_v,
     return j;
 }
 
+nlohmann::json receiver_job_metrics(const scenario& s, std::span<const float> earpiece_v, const receiver_figures& fig,
+                                    const std::vector<std::string>& warnings)
+{
+    const double fs_hz = s.render.audio_rate_hz;
+    // Skip the output network's settling, as measure_render does.
+    const settling_window sw = choose_settling_window(detector_network(s.circuit));
+    const auto skip = std::min(earpiece_v.size(), static_cast<std::size_t>(std::ceil(sw.settle_s * fs_hz)));
+    const std::vector<double> v(earpiece_v.begin() + static_cast<std::ptrdiff_t>(skip), earpiece_v.end());
+    nlohmann::json j = to_json(measure_levels(v, fs_hz, 20.0, std::min(10000.0, 0.45 * fs_hz)));
+    std::vector<std::string> w = warnings;
+    const auto& wanted = s.stations.front();
+    for (const char* k : {"tone_hz", "fundamental_v", "h2_ratio", "h3_ratio", "thd_percent", "thd_n_percent", "sinad_db"}) j[k] = nullptr;
+    if (wanted.kind == programme_kind::tone) {
+        const tone_metrics tm = analyze_tone(v, fs_hz, wanted.tone_hz, 20.0, std::min(10000.0, 0.45 * fs_hz));
+        const nlohmann::json tj = to_json(tm);
+        for (auto it = tj.begin(); it != tj.end(); ++it) j[it.key()] = it.value();
+    } else {
+        w.push_back("no distortion figures: the wanted station's programme is not a test tone");
+    }
+    auto number_or_null = [](double x) { return std::isfinite(x) ? nlohmann::json(x) : nlohmann::json(nullptr); };
+    j["layout"] = std::string(to_string(s.tuner.layout));
+    j["tuned_hz"] = number_or_null(fig.tuned_hz);
+    j["unloaded_tuned_hz"] = number_or_null(fig.unloaded_tuned_hz);
+    j["loaded_q"] = number_or_null(fig.loaded_q);
+    j["rf_bandwidth_hz"] = number_or_null(fig.rf_bandwidth_hz);
+    j["detector_rf_peak_v"] = fig.detector_rf_peak_v;
+    j["detector_rf_resistance_ohm"] = number_or_null(1.0 / fig.detector_admittance_s.real());
+    j["wanted_emf_peak_v"] = fig.wanted_emf_peak_v;
+    // Every station's tone and every carrier-difference whistle in the audio band, fitted together.
+    const double top = 0.45 * fs_hz;
+    std::vector<double> freqs;
+    auto index_of = [&](double f) -> int {
+        for (std::size_t i = 0; i < freqs.size(); ++i)
+            if (std::fabs(freqs[i] - f) < 1e-6 * f) return static_cast<int>(i);
+        if (!(f >= 20.0 && f < top)) return -1;
+        freqs.push_back(f);
+        return static_cast<int>(freqs.size()) - 1;
+    };
+    std::vector<int> tone_idx, whistle_idx;
+    std::vector<int> tone_users(s.stations.size(), 0);
+    for (const auto& st : s.stations) tone_idx.push_back(st.kind == programme_kind::tone ? index_of(st.tone_hz) : -1);
+    for (std::size_t k = 1; k < s.stations.size(); ++k)
+        whistle_idx.push_back(index_of(std::fabs(s.stations[k].params.carrier_hz - wanted.params.carrier_hz)));
+    std::vector<double> amp(freqs.size(), std::numeric_limits<double>::quiet_NaN());
+    if (!freqs.empty() && v.size() >= 8 * (2 * freqs.size() + 1)) amp = fit_amplitudes(v, fs_hz, freqs);
+    // A tone frequency shared by two stations, or equal to a whistle, cannot be told apart: null.
+    std::vector<int> uses(freqs.size(), 0);
+    for (int i : tone_idx)
+        if (i >= 0) ++uses[static_cast<std::size_t>(i)];
+    for (int i : whistle_idx)
+        if (i >= 0) ++uses[static_cast<std::size_t>(i)];
+    auto level_at = [&](int i) { return i >= 0 && uses[static_cast<std::size_t>(i)] == 1 ? amp[static_cast<std::size_t>(i)] : std::numeric_limits<double>::quiet_NaN(); };
+    const double wanted_v = level_at(tone_idx.front());
+    nlohmann::json stations = nlohmann::json::array();
+    for (std::size_t k = 0; k < s.stations.size(); ++k) {
+        const auto& st = s.stations[k];
+        nlohmann::json e;
+        e["name"] = st.params.name;
+        e["carrier_hz"] = st.params.carrier_hz;
+        e["tone_hz"] = st.kind == programme_kind::tone ? nlohmann::json(st.tone_hz) : nlohmann::json(nullptr);
+        const double tv = level_at(tone_idx[k]);
+        e["tone_v"] = number_or_null(tv);
+        e["level_db"] = number_or_null(20.0 * std::log10(tv / wanted_v));
+        if (st.kind == programme_kind::tone && !std::isfinite(tv))
+            w.push_back(fmt::format("station \"{}\": its tone ({} Hz) shares a frequency with another tone or whistle, or lies outside "
+                                    "the audio band: no level", st.params.name, detail::format_value(st.tone_hz)));
+        stations.push_back(e);
+    }
+    j["stations"] = stations;
+    nlohmann::json whistles = nlohmann::json::array();
+    for (std::size_t k = 1; k < s.stations.size(); ++k) {
+        nlohmann::json e;
+        e["stations"] = {wanted.params.name, s.stations[k].params.name};
+        e["frequency_hz"] = std::fabs(s.stations[k].params.carrier_hz - wanted.params.carrier_hz);
+        e["level_v"] = number_or_null(level_at(whistle_idx[k - 1]));
+        whistles.push_back(e);
+    }
+    j["whistles"] = whistles;
+    j["settle_s"] = sw.settle_s;
+    j["warnings"] = w;
+    return j;
+}
+
 const std::vector<std::string>& job_file_names()
 {
     static const std::vector<std::string> n = {"recovered.wav", "recovered.json", "metrics.json", "recovered-normalised.wav"};
@@ -86,6 +171,9 @@ std::vector<fs::path> scenario_inputs(const scenario& s)
     std::vector<fs::path> in;
     if (!s.file.empty()) in.push_back(s.file);
     if (s.programme.kind == programme_kind::clip) in.push_back(s.programme.audio);
+    if (!s.diode_file.empty()) in.push_back(s.diode_file);
+    for (const auto& st : s.stations)
+        if (st.kind == programme_kind::clip) in.push_back(st.audio);
     return in;
 }
 
@@ -240,8 +328,18 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
         if (header.info().channels > 1)
             o.warnings.push_back(fmt::format("{}: {} channels mixed to mono (their average) before modulation",
                                              s.programme.audio.string(), header.info().channels));
+        const double whole_s = static_cast<double>(header.frames()) / header.sample_rate_hz();
+        if (s.programme.duration_s > 0.0 && s.programme.duration_s < whole_s)
+            o.warnings.push_back(fmt::format("signal.duration_s = {} s: only the first {} s of {} ({:.3g} s long) is rendered; "
+                                             "set signal.duration_s = 0 for the whole clip",
+                                             detail::format_value(s.programme.duration_s), detail::format_value(s.programme.duration_s),
+                                             s.programme.audio.filename().string(), whole_s));
     }
-    auto programme = make_programme(s);
+    const bool receiver = s.tuner.layout != tuner_layout::bench;
+    std::vector<std::unique_ptr<modulation>> programmes;
+    if (receiver) programmes = make_station_programmes(s);
+    else programmes.push_back(make_programme(s));
+    modulation* programme = programmes.front().get();
     const double fs_hz = s.render.audio_rate_hz;
     const auto total = static_cast<std::size_t>(std::llround(programme->duration_s() * fs_hz));
     const auto keep = static_cast<std::size_t>(analysis_limit_s * fs_hz);
@@ -259,7 +357,7 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
     try {
         wav_writer raw(raw_path, fs_hz, wav_format::float32, 1.0e3, true);
         std::vector<double> faded;
-        o.render = render(s.circuit, s.am, *programme, s.render, [&](const audio_block& b) {
+        const audio_sink sink = [&](const audio_block& b) {
             throw_if_cancelled();
             if (opt.stop != nullptr && opt.stop->load())
                 throw cancelled_error("stopped: another render of this command failed first", 0);
@@ -274,14 +372,25 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
             for (std::size_t i = 0; i < b.earpiece_v.size() && o.analysis_v.size() < keep; ++i)
                 o.analysis_v.push_back(static_cast<float>(b.earpiece_v[i]));
             if (opt.progress && total > 0) opt.progress(static_cast<double>(b.first_sample + b.earpiece_v.size()) / static_cast<double>(total));
-        });
+        };
+        if (receiver) {
+            receiver_spec spec;
+            spec.circuit = s.circuit;
+            spec.antenna = s.antenna;
+            spec.tuner = s.tuner;
+            for (std::size_t k = 0; k < s.stations.size(); ++k) spec.stations.push_back({s.stations[k].params, programmes[k].get()});
+            o.render = render_receiver(spec, s.render, sink, o.receiver);
+        } else {
+            o.render = render(s.circuit, s.am, *programme, s.render, sink);
+        }
         raw.commit();
     } catch (const integration_error& e) {
         throw integration_error(fmt::format("{}: {}; {}", s.file.string(), e.what(), likely_cause(s)), e.time_s());
     }
     // Measured before any output file exists, so a span too short to measure leaves nothing behind.
     try {
-        o.metrics = job_metrics(s, o.analysis_v, o.render.warnings);
+        o.metrics = receiver ? receiver_job_metrics(s, o.analysis_v, o.receiver, o.render.warnings)
+                             : job_metrics(s, o.analysis_v, o.render.warnings);
     } catch (const config_error& e) {
         throw config_error(fmt::format("{}: {}", s.file.string(), e.what()));
     }
@@ -329,6 +438,41 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
     write_text_atomic(o.sidecar, j.dump(2) + "\n");
     write_text_atomic(o.metrics_file, o.metrics.dump(2) + "\n");
     return o;
+}
+
+} // namespace galena
+
+namespace galena {
+
+std::string summary_text(const job_outcome& o, const scenario& s)
+{
+    auto number = [&](const char* key) -> std::optional<double> {
+        if (!o.metrics.contains(key) || !o.metrics[key].is_number()) return std::nullopt;
+        return o.metrics[key].get<double>();
+    };
+    auto volts = [](double v) { return format_quantity(v, unit::volt, 3, true); };
+    std::string t = fmt::format("wrote {}: {:.3g} s, {} {}, full scale {} peak\n", o.wav.string(),
+                                static_cast<double>(o.render.samples) / o.render.audio_rate_hz,
+                                format_quantity(o.render.audio_rate_hz, unit::hertz, 4, true), to_string(s.output.format),
+                                volts(o.full_scale_v));
+    if (const auto rms = number("audio_rms_v")) {
+        t += fmt::format("level: {} rms", volts(*rms));
+        if (const auto a = number("a_weighted_dbv")) t += fmt::format(" ({:.1f} dBV A-weighted)", *a);
+        if (const auto pk = number("audio_peak_v")) t += fmt::format(", peak {}", volts(*pk));
+        if (const auto dc = number("dc_v")) t += fmt::format("; DC {} at the earpiece", volts(*dc));
+        t += "\n";
+    }
+    if (const auto thd = number("thd_percent")) {
+        t += fmt::format("distortion: THD {:.3g} %", *thd);
+        if (const auto n = number("thd_n_percent")) t += fmt::format(", THD+N {:.3g} %", *n);
+        if (const auto sinad = number("sinad_db")) t += fmt::format(", SINAD {:.1f} dB", *sinad);
+        if (const auto f = number("tone_hz")) t += fmt::format(" ({} tone)", format_quantity(*f, unit::hertz, 4, true));
+        t += "\n";
+    }
+    if (!o.normalised_wav.empty())
+        t += fmt::format("clipped: {} samples beyond full scale; {} is {:.1f} dB quieter\n", o.clipped_samples,
+                         o.normalised_wav.string(), -o.normalised_gain_db);
+    return t;
 }
 
 } // namespace galena

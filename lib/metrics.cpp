@@ -536,4 +536,35 @@ std::string to_text(const nlohmann::json& flat)
     return out;
 }
 
+std::vector<double> fit_amplitudes(std::span<const double> x, double fs_hz, std::span<const double> f_hz)
+{
+    const auto m = static_cast<Eigen::Index>(f_hz.size());
+    const Eigen::Index k = 2 * m + 1;
+    if (x.size() < static_cast<std::size_t>(4 * k))
+        throw config_error(fmt::format("fit_amplitudes: {} samples: need at least {}", x.size(), 4 * k));
+    Eigen::MatrixXd ata = Eigen::MatrixXd::Zero(k, k);
+    Eigen::VectorXd atb = Eigen::VectorXd::Zero(k);
+    Eigen::VectorXd row(k);
+    // Rotating phasors per frequency, re-anchored every 4096 samples so rounding does not accumulate.
+    std::vector<std::complex<double>> p(static_cast<std::size_t>(m)), rot(static_cast<std::size_t>(m));
+    for (Eigen::Index i = 0; i < m; ++i) rot[static_cast<std::size_t>(i)] = std::polar(1.0, two_pi * f_hz[static_cast<std::size_t>(i)] / fs_hz);
+    for (std::size_t n = 0; n < x.size(); ++n) {
+        for (Eigen::Index i = 0; i < m; ++i) {
+            auto& ph = p[static_cast<std::size_t>(i)];
+            if (n % 4096 == 0) ph = std::polar(1.0, two_pi * f_hz[static_cast<std::size_t>(i)] * static_cast<double>(n) / fs_hz);
+            row[2 * i] = ph.real();
+            row[2 * i + 1] = ph.imag();
+            ph *= rot[static_cast<std::size_t>(i)];
+        }
+        row[2 * m] = 1.0;
+        ata.selfadjointView<Eigen::Lower>().rankUpdate(row);
+        atb += row * x[n];
+    }
+    ata = ata.selfadjointView<Eigen::Lower>();
+    const Eigen::VectorXd c = ata.ldlt().solve(atb);
+    std::vector<double> a;
+    for (Eigen::Index i = 0; i < m; ++i) a.push_back(std::hypot(c[2 * i], c[2 * i + 1]));
+    return a;
+}
+
 } // namespace galena

@@ -544,6 +544,7 @@ std::string render_page(const pack_page& p)
                     "</head><body>\n";
     h += "<h1>" + html_escape(p.title) + "</h1>\n";
     if (!p.note.empty()) h += "<p>" + html_escape(p.note) + "</p>\n";
+    h += p.extra_html;
     const sweep_result& sw = *p.sweep;
     const double fsv = sw.variants.empty() ? 0.0 : sw.variants[0].scene.output.full_scale_v;
     h += fmt::format("<p>All level-consistent files share one calibration: digital full scale = {:.4g} V at the earpiece, so "
@@ -626,12 +627,18 @@ pack_outcome make_pack(const fs::path& base_file, const std::vector<std::string>
     }
     staged.owns("matched");
     staged.owns("plots");
+    for (const auto& f : opt.extra_outputs) {
+        staged.check(f);
+        staged.owns(f);
+    }
     const fs::path dir = staged.dir();
     o.page = dir / "index.html";
     o.playlist_wav = dir / "playlist.wav";
     o.playlist_csv = dir / "playlist.csv";
     with_described_errors(staged, [&] {
         render_sweep(o.sweep, dir, opt.sweep);
+        std::string extra_html;
+        if (opt.extras) extra_html = opt.extras(o.sweep, dir);
         std::vector<fs::path> wavs;
         std::vector<std::string> names, labels;
         for (const auto& r : vs) {
@@ -652,6 +659,7 @@ pack_outcome make_pack(const fs::path& base_file, const std::vector<std::string>
         pack_page page;
         page.title = opt.title;
         page.note = opt.note;
+        page.extra_html = extra_html;
         page.dir = dir;
         page.sweep = &o.sweep;
         page.playlist = o.playlist;

@@ -88,7 +88,8 @@ cmake -S "$here" -B "$build" -DCMAKE_BUILD_TYPE=Release -DGALENA_BUILD_TESTS=$([
 cmake --build "$build" -j "$jobs"
 
 if [ "$mode" = demo ]; then
-  "$build/tools/galena" demo --out "$here/demo-out"
+  # demo-out/ belongs to this command: running the set-up again refreshes it.
+  "$build/tools/galena" demo --out "$here/demo-out" --overwrite
   echo "bootstrap: the demo pack is in $here/demo-out (open demo-out/index.html)"
 else
   ctest --test-dir "$build" --output-on-failure -j "$jobs"

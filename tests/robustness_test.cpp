@@ -343,7 +343,7 @@ TEST_CASE("scenario files that are missing, directories or the wrong thing")
     r = galena_cli("render " + q(d) + " --out " + q(d / "out") + " -q", d / "b");
     expect_refused(r, 2, {d.string(), "is a directory, not a scenario file"}, d / "out", d);
     r = galena_cli("render " + q(src_dir / "audio-samples/tone-1khz.wav") + " --out " + q(d / "out") + " -q", d / "c");
-    expect_refused(r, 2, {"tone-1khz.wav:", "malformed TOML"}, d / "out", d);
+    expect_refused(r, 2, {"tone-1khz.wav:", "is an audio file", "not a scenario file", "--set signal.audio="}, d / "out", d);
 }
 
 TEST_CASE("pack files: unknown sections and keys, wrong types and bad values name the file and line")

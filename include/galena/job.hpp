@@ -51,6 +51,7 @@ struct job_outcome {
     std::size_t clipped_samples = 0;       ///< in the calibrated WAV
     double normalised_gain_db = 0.0;       ///< gain applied in the normalised copy, dB
     render_result render;
+    receiver_figures receiver;             ///< whole-receiver layouts: the front-end figures
     std::vector<float> analysis_v;         ///< the earpiece voltage (DC included) for metrics; bounded
     std::filesystem::path metrics_file;    ///< DIR/metrics.json
     nlohmann::json metrics;                ///< what metrics.json holds (flat keys, SI units)
@@ -65,6 +66,12 @@ struct job_outcome {
 /// Throws config_error when the span is too short to analyse after the settling window.
 [[nodiscard]] nlohmann::json job_metrics(const scenario& s, std::span<const float> earpiece_v,
                                          const std::vector<std::string>& warnings);
+/// Metrics of a whole-receiver render (tuner.layout other than bench): levels, the wanted station's tone
+/// figures (when a tone), tuned_hz, loaded_q, rf_bandwidth_hz, detector_rf_peak_v, the `stations` list
+/// (name, carrier_hz, tone_hz, tone_v, level_db relative to the wanted station) and the carrier-difference
+/// `whistles` (frequency_hz, level_v).
+[[nodiscard]] nlohmann::json receiver_job_metrics(const scenario& s, std::span<const float> earpiece_v, const receiver_figures& fig,
+                                                  const std::vector<std::string>& warnings);
 
 /// Renders `s` into `out_dir` (created if missing) as one unit: the files are staged beside it and
 /// published together (staged_output), so on any failure or cancel no output file is left behind. Refuses
@@ -81,6 +88,13 @@ job_outcome run_render_job(const scenario& s, const std::filesystem::path& out_d
 /// staging, no length limit. Throws as run_render_job.
 job_outcome render_job_into(const scenario& s, const std::filesystem::path& dir, const job_options& opt,
                             double analysis_limit_s = 60.0);
+
+/// A few lines for a person after a render (the library prints nothing; the CLI prints these): the file
+/// written with its length, rate, format and full scale; the level (RMS, A-weighted, peak, DC); THD, THD+N
+/// and SINAD when the programme is a tone; the clipping note when the calibrated WAV clipped. Values in
+/// engineering notation ("41.3 mV"). Warnings are not included: they are in o.warnings, for the caller to
+/// show once. The full figures are in o.metrics (metrics.json).
+[[nodiscard]] std::string summary_text(const job_outcome& o, const scenario& s);
 
 /// Output file names of one render job, relative to its directory.
 [[nodiscard]] const std::vector<std::string>& job_file_names();

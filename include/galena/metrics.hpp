@@ -175,4 +175,10 @@ struct fidelity_metrics {
 /// One line per key, "key = value unit"-style, for humans.
 [[nodiscard]] std::string to_text(const nlohmann::json& flat);
 
+/// Peak amplitudes, V, of sinusoids at the given frequencies (Hz; distinct, in (0, fs/2)) fitted jointly with
+/// a DC term by linear least squares (normal equations; the multi-frequency extension of the IEEE Std 1057
+/// sine fit). For several stations' tones and their carriers' difference whistles in one earpiece signal.
+/// Throws config_error with fewer samples than 4 x the number of unknowns.
+[[nodiscard]] std::vector<double> fit_amplitudes(std::span<const double> samples, double fs_hz, std::span<const double> frequencies_hz);
+
 } // namespace galena

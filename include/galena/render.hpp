@@ -6,9 +6,12 @@
 
 #include "galena/circuit.hpp"
 #include "galena/cycle_integrator.hpp"
+#include "galena/front_end.hpp"
 #include "galena/integrator.hpp"
 #include "galena/signal.hpp"
+#include "galena/stations.hpp"
 
+#include <complex>
 #include <cstddef>
 #include <functional>
 #include <span>
@@ -91,6 +94,38 @@ struct render_result {
 /// Throws config_error (bad settings), integration_error (solver failure, with the simulated time).
 render_result render(const circuit_params& circuit, am_params am, modulation& programme, const render_settings& settings,
                      const audio_sink& sink);
+
+/// One station of a whole-receiver render: its parameters and its programme (non-owning; must outlive the render).
+struct receiver_station {
+    station_params params;
+    modulation* programme = nullptr;
+};
+
+/// A whole receiver: detector, load and earpiece as in circuit_params (its source is unused), the antenna,
+/// the tuned circuit (any layout but bench) and the stations, the first one wanted (the grid's reference).
+struct receiver_spec {
+    circuit_params circuit;
+    antenna_params antenna;
+    tuner_params tuner;
+    std::vector<receiver_station> stations;
+};
+
+/// Front-end figures measured by a whole-receiver render (SI units).
+struct receiver_figures {
+    double tuned_hz = 0.0;             ///< response peak with the detector's measured RF loading, Hz (NaN: none)
+    double loaded_q = 0.0;             ///< tuned_hz / rf_bandwidth_hz (NaN when untuned)
+    double rf_bandwidth_hz = 0.0;      ///< -3 dB bandwidth at the detector, Hz (NaN when untuned)
+    double unloaded_tuned_hz = 0.0;    ///< the same peak with the junction removed, Hz
+    double detector_rf_peak_v = 0.0;   ///< largest |voltage| at the detector's input node over the programme, V
+    std::complex<double> detector_admittance_s{}; ///< the junction's effective admittance at the wanted carrier, S
+    double wanted_emf_peak_v = 0.0;    ///< the wanted station's unmodulated EMF peak, V
+};
+
+/// Renders a whole receiver at RF on the rf_integrator (N = settings.steps_per_cycle, 0 = 32, steps per cycle
+/// of the wanted carrier), delivering programme-aligned audio like render(). The automatic preroll also
+/// covers the tuned circuit's settling (12 x Q_u / (pi f0)). Throws config_error, integration_error.
+render_result render_receiver(const receiver_spec& spec, const render_settings& settings, const audio_sink& sink,
+                              receiver_figures& figures);
 
 /// Convenience: renders and returns the whole earpiece (DC included) and audio (DC removed) signals.
 struct rendered_audio {

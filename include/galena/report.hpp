@@ -5,6 +5,7 @@
 #include "galena/sweep.hpp"
 
 #include <filesystem>
+#include <functional>
 #include <string>
 #include <vector>
 
@@ -93,6 +94,7 @@ struct pack_page {
     std::vector<matched_gain> matched;
     std::vector<std::string> plot_stems;        ///< SVGs in dir/plots, inlined
     std::string note;                           ///< free text under the title
+    std::string extra_html;                     ///< HTML placed under the note (e.g. a ranking); trusted
 };
 
 /// The page as HTML: inline SVG plots, <audio> players with relative links, the metrics, gains and
@@ -107,6 +109,11 @@ struct pack_options {
     std::string title = "galena comparison";
     std::string note;
     std::vector<std::filesystem::path> protect; ///< more files never to be replaced (the pack file)
+    /// Optional: called after the variants are rendered with the sweep and the staging folder, before the
+    /// page is written; what it writes there is published with the pack, the HTML it returns goes on the
+    /// page under the note. `extra_outputs` (relative names) are checked for clashes before rendering.
+    std::function<std::string(sweep_result&, const std::filesystem::path& staged_dir)> extras;
+    std::vector<std::string> extra_outputs;
 };
 
 /// Everything a pack wrote.

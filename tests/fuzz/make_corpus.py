@@ -183,6 +183,34 @@ format = 24
     "malformed.toml": """[signal
 carrier_hz = = 3
 """,
+    "engineering-values.toml": """[signal]
+tone_hz = "1kHz"
+carrier_hz = "1 MHz"
+carrier_peak_v = "300mV"
+duration_s = "200ms"
+[source]
+resistance_ohm = "20k ohm"
+[diode]
+junction_capacitance_f = "0.5pF"
+saturation_current_a = "2uA"
+temperature_c = "25°C"
+[load]
+bleeder_ohm = "47kΩ"
+filter_capacitance_f = "1nF"
+[earpiece]
+capacitance_f = "10 nF"
+@set load.bleeder_ohm=2.2M
+@set signal.modulation_index=30
+@set bleeder_ohm=47k
+@set earpiece.leakage_ohm=10nF
+""",
+    "diode-file.toml": """[signal]
+tone_hz = 1000
+[diode]
+file = "no-such-diode.toml"
+emission_coefficient = 1.4
+@set diode.file=/dev/null
+""",
 }
 for name, text in scenarios.items():
     (sc_dir / name).write_text(text)

@@ -1,0 +1,264 @@
+// The whole-receiver RF integrator against closed forms: the resonance of a tuned circuit (textbook
+// f0 = 1/(2 pi sqrt(LC))), the universal resonance curve, the envelope low-pass of a tuned circuit
+// (complex-envelope theorem), coupled identical circuits (coupled-resonator theory), a tapped load, and
+// the detector's loading (large-signal R_L/2, small-signal n Vt/Is). Stations off the reference grid are
+// measured as well as the reference carrier.
+#include "galena/error.hpp"
+#include "galena/front_end.hpp"
+#include "galena/network.hpp"
+#include "galena/rf_integrator.hpp"
+#include "galena/signal.hpp"
+#include "galena/stations.hpp"
+
+#include <doctest/doctest.h>
+#include "detector_laws.hpp"
+#include <Eigen/QR>
+#include <fmt/format.h>
+
+#include <cmath>
+#include <complex>
+#include <vector>
+
+using namespace galena;
+using galena_test::vt_25c;
+
+namespace {
+// Independent constant: the test does not take it from galena/constants.hpp.
+constexpr double k_pi = 3.14159265358979323846;
+
+/// A junction that carries no current (an open port), for linear tests.
+junction_law open_junction()
+{
+    junction_law j;
+    j.inv_emission_voltage = 1.0 / 0.0257;
+    return j;
+}
+
+/// Least-squares amplitudes (complex, e^{j w t} convention: x = Re(A e^{j w t})) of sinusoids at `f_hz` plus DC
+/// in samples x[k] at t0 + k dt (the multi-frequency extension of the IEEE Std 1057 sine fit).
+std::vector<std::complex<double>> fit(const std::vector<double>& x, double t0, double dt, const std::vector<double>& f_hz)
+{
+    const auto n = static_cast<Eigen::Index>(x.size());
+    const auto m = static_cast<Eigen::Index>(f_hz.size());
+    Eigen::MatrixXd a(n, 2 * m + 1);
+    Eigen::VectorXd y(n);
+    for (Eigen::Index k = 0; k < n; ++k) {
+        const double t = t0 + static_cast<double>(k) * dt;
+        for (Eigen::Index i = 0; i < m; ++i) {
+            a(k, 2 * i) = std::cos(2.0 * k_pi * f_hz[static_cast<std::size_t>(i)] * t);
+            a(k, 2 * i + 1) = -std::sin(2.0 * k_pi * f_hz[static_cast<std::size_t>(i)] * t);
+        }
+        a(k, 2 * m) = 1.0;
+        y[k] = x[static_cast<std::size_t>(k)];
+    }
+    const Eigen::VectorXd c = a.colPivHouseholderQr().solve(y);
+    std::vector<std::complex<double>> r;
+    for (Eigen::Index i = 0; i < m; ++i) r.emplace_back(c[2 * i], c[2 * i + 1]);
+    return r;
+}
+
+struct run_result {
+    std::vector<double> samples; // output 0 at every step end of the recorded cycles
+    double t0 = 0.0;             // time of the first recorded sample, s
+    double dt = 0.0;
+};
+
+/// Runs `cycles` reference cycles and records output row (c, d, dj) over the last `record` cycles.
+run_result run(const state_space& ss, const junction_law& law, const station_source& src, double f_ref, int n,
+               std::size_t cycles, std::size_t record, const Eigen::RowVectorXd& c, double d, double dj)
+{
+    rf_settings st;
+    st.steps_per_cycle = n;
+    rf_integrator ig(ss, 0, law, src, f_ref, st);
+    ig.add_output(c, d, dj);
+    ig.initialize();
+    run_result r;
+    r.dt = 1.0 / (f_ref * n);
+    std::vector<double> buf(static_cast<std::size_t>(n));
+    for (std::size_t k = 0; k < cycles; ++k) {
+        ig.advance_cycle(buf);
+        if (k + record >= cycles) {
+            if (r.samples.empty()) r.t0 = static_cast<double>(k) / f_ref + r.dt;
+            r.samples.insert(r.samples.end(), buf.begin(), buf.end());
+        }
+    }
+    return r;
+}
+
+/// One unmodulated (or tone-modulated) station of EMF peak `peak_v` at f_hz.
+struct one_station {
+    tone_modulation tone;
+    station_source src;
+    one_station(double f_hz, double peak_v, double m, double fm_hz) : tone({fm_hz}, {1.0}, 1.0)
+    {
+        am_params p;
+        p.carrier_hz = f_hz;
+        p.carrier_peak_v = peak_v;
+        p.modulation_index = m;
+        src.add("s", am_source(p, &tone));
+    }
+};
+
+/// Series RLC: EMF -- C -- L -- R -- ground; the loop current times R is node `r_node`'s voltage.
+struct series_rlc {
+    network net;
+    node_id r_node = 0;
+    series_rlc(double l, double c, double r)
+    {
+        const node_id e = net.add_node("emf");
+        const node_id a = net.add_node("a");
+        r_node = net.add_node("r");
+        net.add_voltage_source(e, ground_node);
+        net.add_capacitor(e, a, c);
+        net.add_inductor(a, r_node, l);
+        net.add_resistor(r_node, ground_node, r);
+        net.set_junction(r_node, ground_node, 0.0);
+    }
+};
+
+constexpr double l_h = 240e-6;
+const double f0 = 1e6;
+const double c_f = 1.0 / (std::pow(2.0 * k_pi * f0, 2) * l_h); // 105.54 pF
+const double q_100_r = 2.0 * k_pi * f0 * l_h / 100.0;         // series R for Q = 100, 15.08 ohm
+
+/// Steady-state amplitude and phase of the loop current (as a voltage on R) for one station at f_hz.
+std::complex<double> series_response(double f_hz, int n)
+{
+    series_rlc s(l_h, c_f, q_100_r);
+    const state_space ss = s.net.assemble();
+    one_station st(f_hz, 1.0, 0.0, 1000.0);
+    // 40 time constants 2Q/w0 settle the tank to e^-40; record 50 whole cycles of the reference.
+    const auto r = run(ss, open_junction(), st.src, f0, n, 1300, 50, ss.node_c(s.r_node), ss.node_d(s.r_node)(0), 0.0);
+    return fit(r.samples, r.t0, r.dt, {f_hz})[0];
+}
+
+} // namespace
+
+TEST_CASE("rf_integrator: a 1 MHz resonance stays within 1e-5 relative at 32 steps per cycle")
+{
+    // Textbook resonance f0 = 1/(2 pi sqrt(LC)) (240 uH with 105.54 pF for 1 MHz): at resonance the loop
+    // current of a series RLC is in phase with the EMF, and its phase moves by 2 Q df / f0 when the resonance
+    // moves by df. A resonance moved by 1e-5 relative would show as 2e-3 rad at Q = 100. (The trapezoidal rule
+    // at 32 steps per cycle moves it by 3.2e-3 relative: 0.64 rad.)
+    for (int n : {16, 32}) {
+        const std::complex<double> h = series_response(f0, n);
+        const double phase = std::arg(h);
+        MESSAGE(fmt::format("N = {}: phase at f0 {:.3g} rad, |H| = {:.9f}", n, phase, std::abs(h)));
+        CHECK(std::fabs(phase) / (2.0 * 100.0) < 1e-5);
+        CHECK(std::fabs(phase) < 1e-6); // measured 4e-12 rad: the discretisation is exact for a linear network
+        CHECK(std::abs(h) == doctest::Approx(1.0).epsilon(1e-7)); // |I R / E| = 1 at resonance
+    }
+}
+
+TEST_CASE("rf_integrator: universal resonance curve, Q = 100 at 1 MHz, stations off the grid")
+{
+    // Universal resonance curve -10 log10(1 + x^2), x = Q (f/f0 - f0/f): -3.00 dB at +5 kHz, -6.96 dB at
+    // +10 kHz, -12.22 dB at +20 kHz (worked from the formula; radio engineering handbooks tabulate it). The
+    // stations at f0 + 5, 10, 20 kHz are not on the 1 MHz grid; -5 kHz checks the other side.
+    const double ref = std::abs(series_response(f0, 32));
+    for (const auto& [df, published] : {std::pair{5e3, -3.00}, std::pair{10e3, -6.96}, std::pair{20e3, -12.22}, std::pair{-5e3, 0.0}}) {
+        const double f = f0 + df;
+        const double x = 100.0 * (f / f0 - f0 / f);
+        const double exact_db = -10.0 * std::log10(1.0 + x * x);
+        const double got_db = 20.0 * std::log10(std::abs(series_response(f, 32)) / ref);
+        MESSAGE(fmt::format("{:+.0f} Hz: {:.6f} dB (formula {:.6f})", df, got_db, exact_db));
+        CHECK(std::fabs(got_db - exact_db) < 1e-6); // measured below 1e-8 dB
+        if (published != 0.0) CHECK(std::fabs(got_db - published) < 0.006); // published values are rounded to 0.01 dB
+    }
+}
+
+TEST_CASE("rf_integrator: envelope low-pass of a tuned circuit, m_out/m_in = 1/sqrt(1 + (2 Q fm/f0)^2)")
+{
+    // Complex-envelope theorem (communications texts): Q = 100, f0 = 1 MHz, fm = 5 kHz gives -3.01 dB and
+    // fm = 10 kHz -6.99 dB. That is the narrow-band form; the series RLC's exact sidebands (H(f) = 1/(1 + jx),
+    // x = Q (f/f0 - f0/f)) differ from it by 5e-5 dB here, so the measured figure is checked tightly against
+    // the exact sidebands (measured difference below 1e-6 dB) and within the rounding against the published values.
+    for (const auto& [fm, published] : {std::pair{5e3, -3.01}, std::pair{10e3, -6.99}}) {
+        series_rlc s(l_h, c_f, q_100_r);
+        const state_space ss = s.net.assemble();
+        one_station st(f0, 1.0, 0.5, fm);
+        const auto r = run(ss, open_junction(), st.src, f0, 32, 1400, 400, ss.node_c(s.r_node), ss.node_d(s.r_node)(0), 0.0);
+        const auto a = fit(r.samples, r.t0, r.dt, {f0, f0 - fm, f0 + fm});
+        const double m_out = (std::abs(a[1]) + std::abs(a[2])) / std::abs(a[0]);
+        const double got_db = 20.0 * std::log10(m_out / 0.5);
+        auto h = [](double f) {
+            const double x = 100.0 * (f / f0 - f0 / f);
+            return 1.0 / std::sqrt(1.0 + x * x);
+        };
+        const double exact_db = 20.0 * std::log10(0.5 * (h(f0 - fm) + h(f0 + fm)));
+        MESSAGE(fmt::format("fm = {:.0f} Hz: {:.5f} dB (exact sidebands {:.5f}, narrow-band {:.2f})", fm, got_db, exact_db, published));
+        CHECK(std::fabs(got_db - exact_db) < 1e-5);
+        CHECK(std::fabs(got_db - published) < 0.006);
+    }
+}
+
+namespace {
+/// Runs a single-coil set with the detector on tap n and returns the detector's effective RF admittance
+/// J1/V1 at the carrier (S), measured from the last 200 cycles of 1200.
+std::complex<double> detector_admittance(const circuit_params& cp, double tap, double emf_peak_v, receiver_network* out = nullptr)
+{
+    antenna_params ant;
+    ant.capacitance_f = 1e-12;
+    ant.resistance_ohm = 10.0;
+    tuner_params t;
+    t.layout = tuner_layout::single_coil;
+    t.coil_h = 240e-6;
+    t.coil_q = 200.0;
+    t.tuned_hz = 1e6;
+    t.antenna_tap = 1.0;
+    t.detector_tap = tap;
+    receiver_network rn = build_receiver_network(cp, ant, t);
+    const state_space ss = rn.net.assemble();
+    one_station st(1e6, emf_peak_v, 0.0, 1000.0);
+    rf_settings s;
+    rf_integrator ig(ss, rn.emf_input, diode_model(cp.diode).law(), st.src, 1e6, s);
+    ig.initialize();
+    for (int c = 0; c < 1200; ++c) {
+        if (c == 1000) ig.start_phasors();
+        ig.advance_cycle();
+    }
+    if (out != nullptr) *out = std::move(rn);
+    MESSAGE(fmt::format("RF at the port {:.4g} V peak", 2.0 * std::abs(ig.port_voltage_phasor()) / (200.0 * 32.0)));
+    return ig.junction_current_phasor() / ig.port_voltage_phasor();
+}
+} // namespace
+
+TEST_CASE("rf_integrator: detector loading, large-signal R_L/2, small-signal n Vt/Is, matched tap Q_u/2")
+{
+    // Peak-detector theory (radio engineering texts): a diode detector with load R_L driven well above n Vt
+    // presents about R_L/2 to its source (energy balance: V^2/(2 R_in) = V_dc^2/R_L with V_dc ~ V); driven far
+    // below n Vt it presents the diode's zero-bias resistance n Vt / Is. A tap that matches the detector to the
+    // tank's dynamic resistance halves the unloaded Q.
+    circuit_params cp;
+    cp.diode.saturation_current_a = 2e-6;
+    cp.diode.emission_coefficient = 1.5;
+    cp.diode.series_resistance_ohm = 0.0;
+    cp.diode.junction_capacitance_f = 0.0;
+    cp.earpiece.kind = earpiece_kind::resistor;
+    cp.earpiece.resistance_ohm = 100e3;
+    cp.load.filter_capacitance_f = 2e-9;
+    SUBCASE("large signal: about 2 / R_L")
+    {
+        // A diode whose zero-bias resistance n Vt / Is (2.7 MOhm) is far above R_L, driven to 5.5 V peak at the tap.
+        cp.diode.saturation_current_a = 1e-8;
+        cp.diode.emission_coefficient = 1.05;
+        const std::complex<double> y = detector_admittance(cp, 0.5, 20.0);
+        MESSAGE(fmt::format("large signal: R_in = {:.0f} ohm (R_L/2 = 50000), susceptance {:.3g} S", 1.0 / y.real(), y.imag()));
+        // The energy-balance figure assumes a detection efficiency of 1; at a few volts a real diode reaches
+        // about 0.95, which raises R_in by a few per cent (measured 6.8 % above R_L/2).
+        CHECK(1.0 / y.real() == doctest::Approx(50e3).epsilon(0.10));
+    }
+    SUBCASE("small signal: Is / (n Vt), and the matched tap halves Q")
+    {
+        const double rv = 1.5 * vt_25c / 2e-6; // 19.27 kOhm
+        const double x = 2.0 * k_pi * 1e6 * 240e-6;
+        const double tap = std::sqrt(rv / (200.0 * x)); // R_v / n^2 = Q_u w0 L
+        receiver_network rn;
+        const std::complex<double> y = detector_admittance(cp, tap, 2e-4, &rn);
+        MESSAGE(fmt::format("small signal: R_in = {:.1f} ohm (n Vt / Is = {:.1f})", 1.0 / y.real(), rv));
+        CHECK(1.0 / y.real() == doctest::Approx(rv).epsilon(1e-3)); // measured below 1e-5 at 34 uV
+        const rf_tuning tu = analyse_tuning(rn, y, 1e6);
+        MESSAGE(fmt::format("matched tap {:.4f}: loaded Q {:.2f} (Q_u / 2 = 100)", tap, tu.loaded_q));
+        CHECK(tu.loaded_q == doctest::Approx(100.0).epsilon(0.01)); // measured 0.36 % (k = 0.99 sections)
+    }
+}
