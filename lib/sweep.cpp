@@ -377,12 +377,16 @@ pack_spec load_pack(const fs::path& file)
 
 bool is_pack_file(const fs::path& file)
 {
-    std::ifstream in(file, std::ios::binary);
-    if (!in) return false;
-    std::stringstream ss;
-    ss << in.rdbuf();
+    // The same capped, checked read as every input file (a device such as /dev/zero must not hang here);
+    // a file that cannot be read is not a pack, and the caller's own read names the problem.
+    std::string text;
     try {
-        const toml::table root = toml::parse(ss.str(), file.string());
+        text = read_text_input(file, "pack file");
+    } catch (const config_error&) {
+        return false;
+    }
+    try {
+        const toml::table root = toml::parse(text, file.string());
         return root.contains("pack") || root.contains("variant");
     } catch (const toml::parse_error&) {
         return false;
