@@ -955,7 +955,7 @@ std::string to_toml(const scenario& s)
                      to_string(s.render.method), s.render.steps_per_cycle, num(s.render.dc_tolerance), num(s.render.newton_tolerance),
                      num(s.render.stepper.relative_tolerance), num(s.render.stepper.absolute_tolerance_v),
                      num(s.render.preroll_s), num(s.render.dc_block_hz), num(s.render.carrier_steps_floor));
-    if (s.tuner.layout == tuner_layout::bench) return o;
+    // Every key explicit, in the bench layout too (the front end's keys are then unused but round-trip).
     const auto& a = s.antenna;
     const auto& t = s.tuner;
     o += "\n[antenna]\n";

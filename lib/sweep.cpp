@@ -483,7 +483,10 @@ std::string table_markdown(const std::vector<variant_result>& rows)
             const std::string cell = !r.metrics.contains(k) ? std::string()
                                      : volts                ? format_quantity(r.metrics[k].get<double>(), unit::volt, 4)
                                                             : json_cell(r.metrics[k], 4, false);
-            o += " " + (cell.empty() ? std::string("-") : markdown_cell(cell)) + " |";
+            // Appended piece by piece: `" " + std::string(...)` trips GCC 12's -Wrestrict false positive.
+            o += ' ';
+            o += cell.empty() ? std::string("-") : markdown_cell(cell);
+            o += " |";
         }
         o += "\n";
     }

@@ -196,6 +196,8 @@ std::string format_quantity(double value, unit u, int significant_digits, bool w
     std::string_view pre;
     for (const auto& p : prefixes)
         if (p.exponent == e3 && p.text != "\u00b5" && p.text != "\u03bc") pre = p.text;
+    // A bare "m" after a length reads as the metre, so milli-metres always carry their symbol ("1mm").
+    if (u == unit::metre && pre == "m" && sym.empty()) return fmt::format("{}{}mm", negative ? "-" : "", m);
     return fmt::format("{}{}{}{}{}", negative ? "-" : "", m, space, pre, sym);
 }
 

@@ -120,7 +120,7 @@ TEST_CASE("likely slips get a hint, checked against the real rules")
     // A key without its section: every section that holds it.
     CHECK(message_of(base, {"bleeder_ohm=47k"}) ==
           "--set bleeder_ohm=47k: must look like section.key=value (did you mean load.bleeder_ohm=47k?)");
-    CHECK(message_of(base, {"resistance_ohm=1k"}).find("did you mean earpiece.resistance_ohm=1k or source.resistance_ohm=1k?") !=
+    CHECK(message_of(base, {"resistance_ohm=1k"}).find("did you mean antenna.resistance_ohm=1k, earpiece.resistance_ohm=1k or source.resistance_ohm=1k?") !=
           std::string::npos);
     CHECK(message_of(base, {"bleder_ohm=47k"}).find("did you mean load.bleeder_ohm=47k?") != std::string::npos);
     // A prefix left unquoted in a file.

@@ -193,7 +193,8 @@ TEST_CASE("the key table's units agree with the unit each key's name carries")
     // the table fails here.
     const std::vector<std::pair<std::string, unit>> suffixes = {{"_ohm", unit::ohm}, {"_f", unit::farad}, {"_h", unit::henry},
                                                                 {"_hz", unit::hertz}, {"_v", unit::volt},  {"_a", unit::ampere},
-                                                                {"_s", unit::second}, {"_c", unit::celsius}, {"_ev", unit::electronvolt}};
+                                                                {"_s", unit::second}, {"_c", unit::celsius}, {"_ev", unit::electronvolt},
+                                                                {"_m", unit::metre}};
     for (const auto& k : scenario_keys()) {
         if (!k.numeric) continue;
         unit by_name = unit::none;
