@@ -92,6 +92,8 @@ private:
     [[nodiscard]] double envelope_at_cycle(std::size_t station, long long c) const noexcept;
     void load_envelopes(std::size_t c);
     double solve_junction(double alpha, double beta, double v_guess, double& j1);
+    template <int N>
+    void run_cycle(std::span<double> out);
 
     const station_source* m_src;
     junction_law m_law;
@@ -110,6 +112,7 @@ private:
     std::vector<double> m_env;                                // per station: envelope at cycles c-1 .. c+2
     std::vector<Eigen::RowVectorXd> m_out_c;
     std::vector<double> m_out_du, m_out_dj, m_out_mean, m_out_peak, m_out_last;
+    std::vector<std::complex<double>> m_ref_phasor;           // e^{-j 2 pi k / N}, k = 1..N
     std::vector<double> m_v_prev; // port voltage at each phase of the previous cycle (predictor)
     Eigen::VectorXd m_x, m_tmp;
     double m_v = 0.0, m_j = 0.0, m_i0 = 0.0, m_qr0 = 0.0;
