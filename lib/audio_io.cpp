@@ -38,32 +38,77 @@ wav_format parse_wav_format(std::string_view s)
 }
 
 namespace {
-/// For RIFF/WAVE files: the frames the data chunk's header declares and the frames the file really holds.
-/// Returns false when the file is not plain RIFF/WAVE or declares no usable size (0 or 0xFFFFFFFF, as
-/// streaming writers leave it).
-bool riff_data_frames(const fs::path& path, std::size_t block_bytes, std::size_t& declared, std::size_t& present)
+/// errno values that mean a resource ran out rather than a bad file.
+bool out_of_resources(int err) { return err == EMFILE || err == ENFILE || err == ENOMEM; }
+
+/// The frames a container's header declares and the frames its data really holds, read from the chunks
+/// themselves (libsndfile quietly clamps a short data chunk to what is there). Covers RIFF/WAVE (PCM, float,
+/// A-law, mu-law, IMA/MS ADPCM, WAVE_FORMAT_EXTENSIBLE with any channel count: frames from the data chunk's
+/// size and the fmt chunk's block alignment and samples per block) and AIFF/AIFC (COMM's frame count
+/// against the SSND chunk). Returns false for other containers and for sizes a streaming writer leaves
+/// unset (0 or 0xFFFFFFFF).
+bool container_frames(const fs::path& path, std::size_t& declared, std::size_t& present)
 {
     std::ifstream in(path, std::ios::binary);
-    char head[12];
-    if (block_bytes == 0 || !in.read(head, 12) || std::string_view(head, 4) != "RIFF" || std::string_view(head + 8, 4) != "WAVE")
-        return false;
+    unsigned char head[12];
+    if (!in.read(reinterpret_cast<char*>(head), 12)) return false;
+    const bool riff = std::memcmp(head, "RIFF", 4) == 0 && std::memcmp(head + 8, "WAVE", 4) == 0;
+    const bool form = std::memcmp(head, "FORM", 4) == 0 && (std::memcmp(head + 8, "AIFF", 4) == 0 || std::memcmp(head + 8, "AIFC", 4) == 0);
+    if (!riff && !form) return false;
     std::error_code ec;
     const auto file_size = static_cast<std::uint64_t>(fs::file_size(path, ec));
     if (ec) return false;
+    auto u16 = [&](const unsigned char* p) -> std::uint32_t { return riff ? (p[0] | p[1] << 8) : (p[0] << 8 | p[1]); };
+    auto u32 = [&](const unsigned char* p) -> std::uint32_t {
+        return riff ? (std::uint32_t(p[0]) | std::uint32_t(p[1]) << 8 | std::uint32_t(p[2]) << 16 | std::uint32_t(p[3]) << 24)
+                    : (std::uint32_t(p[0]) << 24 | std::uint32_t(p[1]) << 16 | std::uint32_t(p[2]) << 8 | std::uint32_t(p[3]));
+    };
+    std::uint32_t block_align = 0, samples_per_block = 0, channels = 0, bits = 0, comm_frames = 0, fact_frames = 0;
+    bool have_fmt = false, have_comm = false;
     std::uint64_t at = 12;
     for (int chunk = 0; chunk < 4096 && at + 8 <= file_size; ++chunk) {
         unsigned char h[8];
         in.seekg(static_cast<std::streamoff>(at));
         if (!in.read(reinterpret_cast<char*>(h), 8)) return false;
-        const std::uint32_t size = static_cast<std::uint32_t>(h[4]) | static_cast<std::uint32_t>(h[5]) << 8 |
-                                   static_cast<std::uint32_t>(h[6]) << 16 | static_cast<std::uint32_t>(h[7]) << 24;
-        if (std::memcmp(h, "data", 4) == 0) {
-            if (size == 0 || size == 0xFFFFFFFFu) return false;
-            declared = size / block_bytes;
-            present = static_cast<std::size_t>(std::min<std::uint64_t>(size, file_size - (at + 8)) / block_bytes);
-            return true;
+        const std::uint32_t size = u32(h + 4);
+        const std::uint64_t body = at + 8;
+        unsigned char f[20] = {};
+        const std::size_t want = std::min<std::uint64_t>(std::min<std::uint64_t>(size, sizeof f), file_size - body);
+        in.read(reinterpret_cast<char*>(f), static_cast<std::streamsize>(want));
+        in.clear();
+        if (riff && std::memcmp(h, "fmt ", 4) == 0 && want >= 16) {
+            const std::uint32_t tag = u16(f);
+            channels = u16(f + 2);
+            block_align = u16(f + 12);
+            bits = u16(f + 14);
+            // IMA (0x11) and MS (0x02) ADPCM: whole blocks of wSamplesPerBlock frames.
+            if ((tag == 0x11 || tag == 0x02) && want >= 20) samples_per_block = u16(f + 18);
+            have_fmt = true;
+        } else if (riff && std::memcmp(h, "fact", 4) == 0 && want >= 4) {
+            fact_frames = u32(f); // compressed formats: the exact frame count
+        } else if (form && std::memcmp(h, "COMM", 4) == 0 && want >= 8) {
+            channels = u16(f);
+            comm_frames = u32(f + 2);
+            bits = u16(f + 6);
+            have_comm = true;
+        } else if (riff && have_fmt && std::memcmp(h, "data", 4) == 0) {
+            if (size == 0 || size == 0xFFFFFFFFu || block_align == 0) return false;
+            const std::uint64_t held = std::min<std::uint64_t>(size, file_size - body);
+            if (held >= size) return false; // whole
+            const std::uint64_t per = samples_per_block != 0 ? samples_per_block : 1;
+            declared = static_cast<std::size_t>(samples_per_block != 0 && fact_frames != 0 ? fact_frames : size / block_align * per);
+            present = std::min(declared, static_cast<std::size_t>(held / block_align * per));
+            return present < declared;
+        } else if (form && have_comm && std::memcmp(h, "SSND", 4) == 0) {
+            const std::uint64_t frame_bytes = static_cast<std::uint64_t>(channels) * ((bits + 7) / 8);
+            if (size < 8 || frame_bytes == 0) return false;
+            const std::uint64_t held = std::min<std::uint64_t>(size, file_size - body);
+            const std::uint64_t data = held > 8 ? held - 8 : 0;
+            declared = comm_frames;
+            present = static_cast<std::size_t>(std::min<std::uint64_t>(data / frame_bytes, comm_frames));
+            return held < size && present < declared;
         }
-        at += 8 + static_cast<std::uint64_t>(size) + (size & 1u);
+        at = body + static_cast<std::uint64_t>(size) + (size & 1u);
     }
     return false;
 }
@@ -76,8 +121,15 @@ wav_reader::wav_reader(const fs::path& path) : m_path(path)
     if (!fs::exists(path, ec)) throw audio_error(fmt::format("{}: no such file", path.string()));
     SF_INFO info{};
     SNDFILE* f = sf_open(path.c_str(), SFM_READ, &info);
-    if (f == nullptr)
-        throw audio_error(fmt::format("{}: cannot read as audio: {}", path.string(), sf_strerror(nullptr)));
+    if (f == nullptr) {
+        const int err = errno;
+        const std::string why = sf_strerror(nullptr); // before anything else can change it
+        throw_if_cancelled(); // a blocking open (a FIFO) interrupted by Ctrl-C is an interruption, not a bad file
+        if (out_of_resources(err))
+            throw resource_error(fmt::format("{}: cannot open: {} (a file-descriptor or memory limit was reached)", path.string(),
+                                             std::strerror(err)));
+        throw audio_error(fmt::format("{}: cannot read as audio: {}", path.string(), why));
+    }
     m_file = f;
     m_info.sample_rate_hz = info.samplerate;
     m_info.channels = info.channels;
@@ -104,20 +156,12 @@ wav_reader::wav_reader(const fs::path& path) : m_path(path)
     }
     // A header that promises more than the file holds (an interrupted copy or download): libsndfile quietly
     // reads what is there, which would render a shortened clip as if it were whole.
-    const int sub = info.format & SF_FORMAT_SUBMASK;
-    const std::size_t sample_bytes = sub == SF_FORMAT_PCM_S8 || sub == SF_FORMAT_PCM_U8 ? 1
-                                     : sub == SF_FORMAT_PCM_16                          ? 2
-                                     : sub == SF_FORMAT_PCM_24                          ? 3
-                                     : sub == SF_FORMAT_PCM_32 || sub == SF_FORMAT_FLOAT ? 4
-                                     : sub == SF_FORMAT_DOUBLE                          ? 8
-                                                                                        : 0;
     std::size_t declared = 0, present = 0;
-    if ((info.format & SF_FORMAT_TYPEMASK) == SF_FORMAT_WAV &&
-        riff_data_frames(path, sample_bytes * static_cast<std::size_t>(m_info.channels), declared, present) && present < declared) {
+    if (container_frames(path, declared, present)) {
         sf_close(f);
         m_file = nullptr;
-        throw audio_error(fmt::format("{}: truncated: the header declares {} frames but the file holds {}", path.string(),
-                                      declared, present));
+        throw audio_error(fmt::format("{}: truncated: the header declares {} frames but the file holds {} ({})", path.string(),
+                                      declared, present, m_info.format));
     }
 }
 
@@ -192,8 +236,13 @@ wav_writer::wav_writer(const fs::path& path, double rate, wav_format format, dou
                                                   : SF_FORMAT_FLOAT;
     info.format = SF_FORMAT_WAV | sub;
     SNDFILE* f = sf_open(m_temp.c_str(), SFM_WRITE, &info);
-    if (f == nullptr)
+    if (f == nullptr) {
+        const int err = errno;
+        if (out_of_resources(err))
+            throw resource_error(fmt::format("{}: cannot create: {} (a file-descriptor or memory limit was reached)", path.string(),
+                                             std::strerror(err)));
         throw audio_error(fmt::format("{}: cannot write: {}", path.string(), sf_strerror(nullptr)));
+    }
     m_file = f;
     const auto comment = fmt::format("galena calibrated output: full scale = {:.6g} V peak", full_scale_v);
     sf_set_string(f, SF_STR_COMMENT, comment.c_str());
@@ -265,7 +314,13 @@ void write_text_atomic(const fs::path& path, const std::string& text)
     const fs::path tmp = temp_beside(path.parent_path().empty() ? fs::path(".") / path : path);
     {
         std::ofstream out(tmp, std::ios::binary | std::ios::trunc);
-        if (!out) throw audio_error(fmt::format("{}: cannot write: {}", path.string(), std::strerror(errno)));
+        if (!out) {
+            const int err = errno;
+            if (out_of_resources(err))
+                throw resource_error(fmt::format("{}: cannot create: {} (a file-descriptor or memory limit was reached)",
+                                                 path.string(), std::strerror(err)));
+            throw audio_error(fmt::format("{}: cannot write: {}", path.string(), std::strerror(err)));
+        }
         out << text;
         out.flush();
         const int err = errno;

@@ -23,6 +23,7 @@ const char* signal_name(int sig)
     switch (sig) {
     case SIGINT: return "SIGINT (Ctrl-C)";
     case SIGTERM: return "SIGTERM";
+    case SIGHUP: return "SIGHUP (the terminal closed)";
     default: return "a signal";
     }
 }
@@ -54,10 +55,14 @@ void install_signal_handlers()
     sa.sa_flags = SA_RESETHAND; // the second signal takes the default action
     sigaction(SIGINT, &sa, nullptr);
     sigaction(SIGTERM, &sa, nullptr);
+    sigaction(SIGHUP, &sa, nullptr); // a closed terminal stops the work like SIGTERM: cleanly, stage removed
     struct sigaction ign{};
     ign.sa_handler = SIG_IGN;
     sigemptyset(&ign.sa_mask);
     sigaction(SIGXFSZ, &ign, nullptr);
+    // A closed pipe (progress piped into `head`) is an EPIPE error on that write, not death by SIGPIPE: the
+    // CLI stops printing and the work goes on (or stops cleanly) with the stage removed.
+    sigaction(SIGPIPE, &ign, nullptr);
 }
 
 } // namespace galena

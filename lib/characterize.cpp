@@ -51,7 +51,7 @@ std::pair<double, double> fit_line(const std::vector<double>& x, const std::vect
 }
 
 /// Order-of-magnitude DC output, V, for a carrier peak V: square law V^2 / (4 n Vt) below n Vt, V above,
-/// times the divider R_dc / (R_dc + R_v + R) (CHECKS.md item 2). Used only to scale the solver tolerance.
+/// times the divider R_dc / (R_dc + R_v + R) (small-signal limit of the I0 law, Torrey & Whitmer 1948). Used only to scale the solver tolerance.
 double estimated_output_v(const detector_network& net, double v)
 {
     const double nvt = net.diode().emission_voltage_v();
@@ -124,13 +124,13 @@ clipping_diagnosis diagnose_clipping(const detector_network& net, double tone_hz
     d.dc_load_ohm = net.dc_load_ohm();
     d.node_capacitance_f = net.node_capacitance_f();
     const double g_dc = std::isfinite(d.dc_load_ohm) ? 1.0 / d.dc_load_ohm : 0.0;
-    // Diagonal clipping: 1 / sqrt(1 + (wm R C)^2) with the DC load and the node capacitance (CHECKS.md item 4).
+    // Diagonal clipping: 1 / sqrt(1 + (wm R C)^2) with the DC load and the node capacitance (Haykin, Communication Systems).
     const double wrc = w * d.dc_load_ohm * d.node_capacitance_f;
     d.diagonal_m_max = std::isfinite(wrc) ? 1.0 / std::sqrt(1.0 + wrc * wrc) : 0.0;
     const std::complex<double> y_load = net.node_conductance_s() + earpiece_branch_admittance(e, w);
     d.ac_coupled_load = e.has_motional_branch();
     d.ac_load_ohm = y_load.real() > 0.0 ? 1.0 / y_load.real() : std::numeric_limits<double>::infinity();
-    // Negative-peak clipping: R_ac / R_dc (CHECKS.md item 5); only an AC-coupled load makes it bind.
+    // Negative-peak clipping: R_ac / R_dc (Haykin, Communication Systems); only an AC-coupled load makes it bind.
     d.negative_peak_m_max = d.ac_coupled_load && std::isfinite(d.dc_load_ohm) ? d.ac_load_ohm / d.dc_load_ohm : 1.0;
     const double y_abs = std::abs(y_load + std::complex<double>(0.0, w * d.node_capacitance_f));
     d.combined_m_max = y_abs > 0.0 ? g_dc / y_abs : 1.0;
@@ -376,7 +376,14 @@ render_metrics measure_render(std::span<const double> ev, double fs, const circu
     rm.levels = measure_levels(win, fs, lo, hi);
     std::vector<nlohmann::json> parts{to_json(rm.settling), to_json(rm.levels)};
     double top_hz = q.clip_top_hz;
-    if (q.tone_hz > 0.0 && q.tone2_hz > 0.0) {
+    // Without modulation there is no tone at the earpiece: a fit would report noise as distortion.
+    std::string no_tone_reason;
+    if (q.tone_hz > 0.0 && !(am.modulation_index > 0.0)) {
+        no_tone_reason = fmt::format("signal.modulation_index = {}: the carrier is unmodulated, so there is no tone to "
+                                     "measure; tone and distortion figures are null",
+                                     am.modulation_index);
+        rm.warnings.push_back(no_tone_reason);
+    } else if (q.tone_hz > 0.0 && q.tone2_hz > 0.0) {
         rm.has_imd = true;
         rm.imd = analyze_two_tone(win, fs, q.tone_hz, q.tone2_hz, q.tone_ratio, 3);
         parts.push_back(to_json(rm.imd));
@@ -400,7 +407,7 @@ render_metrics measure_render(std::span<const double> ev, double fs, const circu
         rm.clipping = diagnose_clipping(net, top_hz, am.modulation_index);
         observe_failure_to_follow(rm.clipping, net, win, fs);
         parts.push_back(to_json(rm.clipping));
-        rm.warnings = clipping_warnings(rm.clipping);
+        for (auto& w : clipping_warnings(rm.clipping)) rm.warnings.push_back(std::move(w));
     }
     nlohmann::json extra;
     extra["carrier_hz"] = num(am.carrier_hz);
@@ -408,6 +415,7 @@ render_metrics measure_render(std::span<const double> ev, double fs, const circu
     extra["modulation_index"] = num(am.modulation_index);
     extra["detection_efficiency"] = rm.has_tone ? num(rm.detection_efficiency) : nlohmann::json(nullptr);
     extra["analysed_s"] = num(static_cast<double>(win.size()) / fs);
+    extra["tone_not_applicable"] = no_tone_reason.empty() ? nlohmann::json(nullptr) : nlohmann::json(no_tone_reason);
     parts.push_back(extra);
     rm.json = merge_metrics(parts, rm.warnings);
     return rm;

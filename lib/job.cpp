@@ -6,12 +6,14 @@
 #include "galena/metrics.hpp"
 #include "galena/constants.hpp"
 #include "galena/error.hpp"
+#include "galena/units.hpp"
 #include "galena/validate.hpp"
 
 #include <chrono>
 #include <cmath>
 #include <fmt/format.h>
 #include <nlohmann/json.hpp>
+#include <optional>
 
 namespace galena {
 
@@ -69,7 +71,8 @@ nlohmann::json job_metrics(const scenario& s, std::span<const float> earpiece_v,
         if (!j.contains(k)) j[k] = nullptr;
     std::vector<std::string> w = warnings;
     for (const auto& x : j["warnings"]) w.push_back(x.get<std::string>());
-    if (!m.has_tone) w.push_back("no distortion figures: the programme is not a single test tone");
+    if (!m.has_tone && p.kind != programme_kind::tone && p.kind != programme_kind::two_tone)
+        w.push_back("no distortion figures: the programme is not a single test tone");
     j["warnings"] = w;
     return j;
 }
@@ -168,6 +171,7 @@ std::vector<fs::path> scenario_inputs(const scenario& s)
     std::vector<fs::path> in;
     if (!s.file.empty()) in.push_back(s.file);
     if (s.programme.kind == programme_kind::clip) in.push_back(s.programme.audio);
+    if (!s.diode_file.empty()) in.push_back(s.diode_file);
     for (const auto& st : s.stations)
         if (st.kind == programme_kind::clip) in.push_back(st.audio);
     return in;
@@ -200,40 +204,95 @@ std::string wall_text(double s)
 }
 } // namespace
 
-double estimate_render_wall_s(const scenario& s, double programme_s, std::size_t renders, unsigned threads)
+namespace {
+/// The pilot render: 10 ms of settled carrier and a 20 ms tone (shorter at a high carrier), with this
+/// scenario's circuit, carrier and solver. Returns wall seconds per simulated second and the steps per carrier cycle it used.
+std::pair<double, double> pilot_render(const scenario& s)
 {
-    // Pilot: 10 ms of settled carrier and a 20 ms tone, with this scenario's circuit, carrier and solver.
     render_settings rs = s.render;
-    rs.preroll_s = 0.01;
-    tone_modulation tone({std::min(1000.0, 0.2 * rs.audio_rate_hz)}, {1.0}, 0.02);
+    // At least 10 ms + 20 ms, but no more than about 5e4 carrier cycles at a high carrier: a faster output
+    // rate (up to 192 kHz, below 0.8 fc) shortens the chain's start-up that the preroll must cover.
+    const double fc = s.am.carrier_hz;
+    rs.audio_rate_hz = std::max(rs.audio_rate_hz, std::min(192000.0, std::floor(0.8 * fc)));
+    rs.preroll_s = std::max(std::min(0.01, 2e4 / fc), audio_chain_warm_up_s(rs.audio_rate_hz));
+    tone_modulation tone({std::min(1000.0, 0.2 * rs.audio_rate_hz)}, {1.0}, std::max(std::min(0.02, 3e4 / fc), 64.0 / rs.audio_rate_hz));
     const auto t0 = std::chrono::steady_clock::now();
     const render_result r = render(s.circuit, s.am, tone, rs, [](const audio_block&) { throw_if_cancelled(); });
     const double wall = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
-    const double per_s = wall / std::max(r.simulated_s, 1e-6);
-    const double preroll = automatic_preroll_s(detector_network(s.circuit), rs.audio_rate_hz);
-    const double work_s = programme_s + static_cast<double>(renders) * preroll;
-    return per_s * work_s / static_cast<double>(std::max<std::size_t>(1, std::min<std::size_t>(threads, renders)));
+    const double cycles = std::max(r.simulated_s * s.am.carrier_hz, 1.0);
+    const double steps = r.steps_per_cycle > 0 ? static_cast<double>(r.steps_per_cycle) : static_cast<double>(r.stats.accepted) / cycles;
+    return {wall / std::max(r.simulated_s, 1e-6), steps};
+}
+
+double work_seconds(const scenario& s, double programme_s, std::size_t renders)
+{
+    return programme_s + static_cast<double>(renders) * automatic_preroll_s(detector_network(s.circuit), s.render.audio_rate_hz);
+}
+} // namespace
+
+double estimate_render_wall_s(const scenario& s, double programme_s, std::size_t renders, unsigned threads)
+{
+    const double per_s = pilot_render(s).first;
+    return per_s * work_seconds(s, programme_s, renders) /
+           static_cast<double>(std::max<std::size_t>(1, std::min<std::size_t>(threads, renders)));
 }
 
 void check_render_length(const scenario& s, const std::string& where, double programme_s, std::size_t renders, unsigned threads,
                          bool allow_long)
 {
-    if (allow_long || !(programme_s > long_render_limit_s)) return;
-    const double est = estimate_render_wall_s(s, programme_s, renders, threads);
-    throw config_error(fmt::format("{}: {} s of programme to render{}: more than the {} s limit for one command; estimated "
-                                   "wall time about {} on this machine; pass --allow-long to render it (Ctrl-C stops it "
-                                   "cleanly), or set signal.duration_s to render part of it",
-                                   where, detail::format_value(programme_s),
-                                   renders > 1 ? fmt::format(" in {} renders", renders) : std::string(),
-                                   detail::format_value(long_render_limit_s), wall_text(est)));
+    if (allow_long) return;
+    const double cycles = work_seconds(s, programme_s, renders) * s.am.carrier_hz;
+    const auto refuse = [&](const std::string& what, const std::string& limit, double wall) {
+        throw config_error(fmt::format("{}: {}: more than the {} limit for one command; estimated wall time about {} on this "
+                                       "machine; pass --allow-long to render it (Ctrl-C stops it cleanly), or set "
+                                       "signal.duration_s to render part of it",
+                                       where, what, limit, wall_text(wall)));
+    };
+    const std::string in_renders = renders > 1 ? fmt::format(" in {} renders", renders) : std::string();
+    if (programme_s > long_render_limit_s) {
+        const double est = estimate_render_wall_s(s, programme_s, renders, threads);
+        refuse(fmt::format("{} s of programme to render{}", detail::format_value(programme_s), in_renders),
+               fmt::format("{} s", detail::format_value(long_render_limit_s)), est);
+    }
+    // Work, not programme seconds: carrier cycles x steps per cycle. Below the smallest possible N nothing
+    // needs a pilot; otherwise the pilot render tells the N (or the adaptive path's steps) this circuit takes.
+    if (cycles * 4096.0 <= long_render_limit_steps) return;
+    const auto [per_s, steps_per_cycle] = pilot_render(s);
+    const double steps = cycles * steps_per_cycle;
+    if (steps > long_render_limit_steps) {
+        const double wall = per_s * work_seconds(s, programme_s, renders) /
+                            static_cast<double>(std::max<std::size_t>(1, std::min<std::size_t>(threads, renders)));
+        refuse(fmt::format("{:.3g} carrier cycles x {:.3g} steps per cycle = {:.3g} solver steps{} ({} s of programme at "
+                           "signal.carrier_hz = {})",
+                           cycles, steps_per_cycle, steps, in_renders, detail::format_value(programme_s),
+                           detail::format_value(s.am.carrier_hz)),
+               fmt::format("{:.3g}-step", long_render_limit_steps), wall);
+    }
+}
+
+void check_measurable(const scenario& s, const std::string& where)
+{
+    const double settle_s = choose_settling_window(detector_network(s.circuit)).settle_s;
+    const double need_s = settle_s + 64.0 / s.render.audio_rate_hz;
+    const double have_s = programme_duration_s(s);
+    if (have_s < need_s)
+        throw config_error(fmt::format("{}: signal.duration_s: the programme lasts {:.4g} s: too short to measure; the analysis "
+                                       "skips {:.4g} s of settling (5 x the slowest time constant) and needs 64 samples "
+                                       "after it, so at least {:.4g} s",
+                                       where, have_s, settle_s, need_s));
 }
 
 job_outcome run_render_job(const scenario& s, const fs::path& out_dir, const job_options& opt, double analysis_limit_s)
 {
     // Refuse up front (before the out folder is touched): an overlong programme.
     check_render_length(s, s.file.string(), programme_duration_s(s), 1, 1, opt.allow_long);
+    check_measurable(s, s.file.string());
     staged_output staged(out_dir, opt.overwrite, scenario_inputs(s));
-    for (const auto& n : job_file_names()) staged.check(n);
+    for (const auto& n : job_file_names()) {
+        staged.check(n);
+        staged.owns(n);
+    }
+    staged.owns("plots");
     job_outcome o;
     with_described_errors(staged, [&] {
         o = render_job_into(s, staged.dir(), opt, analysis_limit_s);
@@ -268,6 +327,12 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
         if (header.info().channels > 1)
             o.warnings.push_back(fmt::format("{}: {} channels mixed to mono (their average) before modulation",
                                              s.programme.audio.string(), header.info().channels));
+        const double whole_s = static_cast<double>(header.frames()) / header.sample_rate_hz();
+        if (s.programme.duration_s > 0.0 && s.programme.duration_s < whole_s)
+            o.warnings.push_back(fmt::format("signal.duration_s = {} s: only the first {} s of {} ({:.3g} s long) is rendered; "
+                                             "set signal.duration_s = 0 for the whole clip",
+                                             detail::format_value(s.programme.duration_s), detail::format_value(s.programme.duration_s),
+                                             s.programme.audio.filename().string(), whole_s));
     }
     const bool receiver = s.tuner.layout != tuner_layout::bench;
     std::vector<std::unique_ptr<modulation>> programmes;
@@ -297,8 +362,9 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
                 throw cancelled_error("stopped: another render of this command failed first", 0);
             faded.assign(b.audio_v.begin(), b.audio_v.end());
             for (std::size_t i = 0; i < faded.size(); ++i) {
-                o.peak_audio_v = std::max(o.peak_audio_v, std::fabs(faded[i]));
+                // The peak of what the WAV holds (after the fade), so the normalised copy peaks where it says.
                 faded[i] *= fade_gain(b.first_sample + i, total, fs_hz, opt.fade_s);
+                o.peak_audio_v = std::max(o.peak_audio_v, std::fabs(faded[i]));
                 if (std::fabs(faded[i]) > s.output.full_scale_v) ++o.clipped_samples;
             }
             raw.write_volts(faded);
@@ -325,7 +391,7 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
         o.metrics = receiver ? receiver_job_metrics(s, o.analysis_v, o.receiver, o.render.warnings)
                              : job_metrics(s, o.analysis_v, o.render.warnings);
     } catch (const config_error& e) {
-        throw config_error(fmt::format("{}: {} (the programme is too short to measure)", s.file.string(), e.what()));
+        throw config_error(fmt::format("{}: {}", s.file.string(), e.what()));
     }
     o.metrics["peak_audio_v"] = o.peak_audio_v;
     o.metrics["clipped_samples"] = o.clipped_samples;
@@ -358,7 +424,6 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
     j["normalised_wav"] = o.normalised_wav.empty() ? nlohmann::json(nullptr) : nlohmann::json(o.normalised_wav.filename().string());
     j["normalised_gain_db"] = o.normalised_gain_db;
     j["simulated_s"] = o.render.simulated_s;
-    j["wall_s"] = o.render.wall_s;
     j["fine_sample_rate_hz"] = o.render.sample_rate_fine_hz;
     j["steps_accepted"] = o.render.stats.accepted;
     j["steps_rejected"] = o.render.stats.rejected_error + o.render.stats.rejected_newton;
@@ -372,6 +437,41 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
     write_text_atomic(o.sidecar, j.dump(2) + "\n");
     write_text_atomic(o.metrics_file, o.metrics.dump(2) + "\n");
     return o;
+}
+
+} // namespace galena
+
+namespace galena {
+
+std::string summary_text(const job_outcome& o, const scenario& s)
+{
+    auto number = [&](const char* key) -> std::optional<double> {
+        if (!o.metrics.contains(key) || !o.metrics[key].is_number()) return std::nullopt;
+        return o.metrics[key].get<double>();
+    };
+    auto volts = [](double v) { return format_quantity(v, unit::volt, 3, true); };
+    std::string t = fmt::format("wrote {}: {:.3g} s, {} {}, full scale {} peak\n", o.wav.string(),
+                                static_cast<double>(o.render.samples) / o.render.audio_rate_hz,
+                                format_quantity(o.render.audio_rate_hz, unit::hertz, 4, true), to_string(s.output.format),
+                                volts(o.full_scale_v));
+    if (const auto rms = number("audio_rms_v")) {
+        t += fmt::format("level: {} rms", volts(*rms));
+        if (const auto a = number("a_weighted_dbv")) t += fmt::format(" ({:.1f} dBV A-weighted)", *a);
+        if (const auto pk = number("audio_peak_v")) t += fmt::format(", peak {}", volts(*pk));
+        if (const auto dc = number("dc_v")) t += fmt::format("; DC {} at the earpiece", volts(*dc));
+        t += "\n";
+    }
+    if (const auto thd = number("thd_percent")) {
+        t += fmt::format("distortion: THD {:.3g} %", *thd);
+        if (const auto n = number("thd_n_percent")) t += fmt::format(", THD+N {:.3g} %", *n);
+        if (const auto sinad = number("sinad_db")) t += fmt::format(", SINAD {:.1f} dB", *sinad);
+        if (const auto f = number("tone_hz")) t += fmt::format(" ({} tone)", format_quantity(*f, unit::hertz, 4, true));
+        t += "\n";
+    }
+    if (!o.normalised_wav.empty())
+        t += fmt::format("clipped: {} samples beyond full scale; {} is {:.1f} dB quieter\n", o.clipped_samples,
+                         o.normalised_wav.string(), -o.normalised_gain_db);
+    return t;
 }
 
 } // namespace galena

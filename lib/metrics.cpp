@@ -12,6 +12,7 @@
 #include <unsupported/Eigen/FFT>
 
 #include <algorithm>
+#include <cstdlib>
 #include <cmath>
 #include <mutex>
 #include <complex>
@@ -48,9 +49,24 @@ std::mutex& fft_mutex()
     return m;
 }
 
+/// FFTW aborts the process ("assertion failed: p") when its own allocation fails, so the memory a
+/// transform of n points needs (FFTW's buffers, twiddles and plan: well under 4 complex arrays of n) is
+/// tried first: throws resource_error naming the transform when it is not there.
+void reserve_fft_memory(std::size_t n)
+{
+    const std::size_t bytes = 4 * n * sizeof(std::complex<double>) + (1u << 20);
+    void* p = std::malloc(bytes);
+    if (p == nullptr)
+        throw resource_error(fmt::format("out of memory: an FFT of {} points needs about {} MB that cannot be allocated "
+                                         "(free memory, raise the memory limit, or render a shorter programme)",
+                                         n, bytes >> 20));
+    std::free(p);
+}
+
 cvec forward_fft(std::span<const double> x, std::size_t padded = 0)
 {
     const std::size_t n = std::max(padded, x.size());
+    reserve_fft_memory(n);
     cvec in(n, {0.0, 0.0});
     for (std::size_t i = 0; i < x.size(); ++i) in[i] = x[i];
     cvec out;
@@ -62,6 +78,7 @@ cvec forward_fft(std::span<const double> x, std::size_t padded = 0)
 
 cvec inverse_fft(const cvec& x)
 {
+    reserve_fft_memory(x.size());
     cvec out;
     const std::lock_guard lock(fft_mutex());
     Eigen::FFT<double> fft; // scaled by 1/N by default
@@ -73,6 +90,7 @@ cvec inverse_fft(const cvec& x)
 /// memory of forward_fft on a real signal.
 cvec forward_rfft(std::span<const double> x)
 {
+    reserve_fft_memory(x.size());
     const std::vector<double> in(x.begin(), x.end());
     cvec out;
     const std::lock_guard lock(fft_mutex());
@@ -85,6 +103,7 @@ cvec forward_rfft(std::span<const double> x)
 /// Inverse of forward_rfft: the real n-point signal whose bins 0 .. n/2 are `half`.
 std::vector<double> inverse_rfft(const cvec& half, std::size_t n)
 {
+    reserve_fft_memory(n);
     std::vector<double> out;
     const std::lock_guard lock(fft_mutex());
     Eigen::FFT<double> fft; // scaled by 1/N by default

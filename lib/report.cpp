@@ -6,6 +6,7 @@
 #include "galena/constants.hpp"
 #include "galena/error.hpp"
 #include "galena/metrics.hpp"
+#include "galena/text_table.hpp"
 
 #include <algorithm>
 #include <atomic>
@@ -19,7 +20,13 @@
 #include <set>
 #include <sstream>
 #include <csignal>
+#include <cerrno>
+#include <cstring>
+#include <fcntl.h>
+#include <spawn.h>
 #include <sys/wait.h>
+#include <time.h>
+#include <unistd.h>
 #include <thread>
 
 namespace galena {
@@ -52,13 +59,6 @@ std::string gp_escape(const std::string& s)
         else o += c;
     }
     return o;
-}
-
-std::string shell_quote(const std::string& s)
-{
-    std::string o = "'";
-    for (char c : s) o += c == '\'' ? std::string("'\\''") : std::string(1, c);
-    return o + "'";
 }
 
 std::string read_text(const fs::path& p)
@@ -161,41 +161,37 @@ std::vector<playlist_segment> write_playlist(const std::vector<fs::path>& wavs, 
         segs.push_back(s);
     }
     write_wav(out_wav, out, fs_hz, format, 1.0, true);
-    std::string csv = "number,name,label,code_start_s,audio_start_s,audio_end_s,audio_start_sample,audio_samples,sample_rate_hz\n";
+    std::string csv = csv_row({"number", "name", "label", "code_start_s", "audio_start_s", "audio_end_s", "audio_start_sample",
+                               "audio_samples", "sample_rate_hz"});
     for (const auto& s : segs)
-        csv += fmt::format("{},{},\"{}\",{:.6f},{:.6f},{:.6f},{},{},{}\n", s.number, s.name, s.label, s.code_start_s,
-                           s.audio_start_s, s.audio_end_s, s.audio_start_sample, s.audio_samples, fs_hz);
+        csv += csv_row({std::to_string(s.number), s.name, s.label, fmt::format("{:.6f}", s.code_start_s),
+                        fmt::format("{:.6f}", s.audio_start_s), fmt::format("{:.6f}", s.audio_end_s),
+                        std::to_string(s.audio_start_sample), std::to_string(s.audio_samples), fmt::format("{}", fs_hz)});
     write_text_atomic(out_csv, csv);
     return segs;
 }
 
 std::vector<playlist_segment> read_playlist_table(const fs::path& csv)
 {
-    std::istringstream in(read_text(csv));
-    std::string line;
-    std::getline(in, line);
+    const auto rows = parse_csv(read_text(csv), csv);
     std::vector<playlist_segment> segs;
-    int row = 1;
-    while (std::getline(in, line)) {
-        ++row;
-        if (line.empty()) continue;
-        // number,name,"label",code,start,end,start_sample,samples,rate (label quoted, may hold commas)
+    for (std::size_t r = 1; r < rows.size(); ++r) {
+        const auto& f = rows[r];
+        if (f.size() == 1 && f[0].empty()) continue;
+        if (f.size() != 9) throw audio_error(fmt::format("{}: record {}: {} fields: must be 9", csv.string(), r + 1, f.size()));
         playlist_segment s;
-        const auto q1 = line.find('"');
-        const auto q2 = line.rfind('"');
-        if (q1 == std::string::npos || q2 <= q1) throw audio_error(fmt::format("{}:{}: malformed row", csv.string(), row));
-        const std::string head = line.substr(0, q1);
-        const std::string tail = line.substr(q2 + 2);
-        s.label = line.substr(q1 + 1, q2 - q1 - 1);
-        const auto c = head.find(',');
-        s.number = std::stoi(head.substr(0, c));
-        s.name = head.substr(c + 1, head.size() - c - 2);
-        std::istringstream t(tail);
-        char comma = 0;
-        double rate = 0.0;
-        t >> s.code_start_s >> comma >> s.audio_start_s >> comma >> s.audio_end_s >> comma >> s.audio_start_sample >> comma >>
-            s.audio_samples >> comma >> rate;
-        if (!t && !t.eof()) throw audio_error(fmt::format("{}:{}: malformed row", csv.string(), row));
+        try {
+            s.number = std::stoi(f[0]);
+            s.name = f[1];
+            s.label = f[2];
+            s.code_start_s = std::stod(f[3]);
+            s.audio_start_s = std::stod(f[4]);
+            s.audio_end_s = std::stod(f[5]);
+            s.audio_start_sample = static_cast<std::size_t>(std::stoull(f[6]));
+            s.audio_samples = static_cast<std::size_t>(std::stoull(f[7]));
+        } catch (const std::exception&) {
+            throw audio_error(fmt::format("{}: record {}: malformed number", csv.string(), r + 1));
+        }
         segs.push_back(s);
     }
     return segs;
@@ -208,7 +204,7 @@ std::vector<matched_gain> write_loudness_matched(const std::vector<fs::path>& wa
     fs::create_directories(dir, ec);
     if (ec) throw audio_error(fmt::format("{}: cannot create: {}", dir.string(), ec.message()));
     std::vector<matched_gain> out;
-    std::string csv = "variant,file,rms_dbfs,gain_db,peak_limited\n";
+    std::string csv = csv_row({"variant", "file", "rms_dbfs", "gain_db", "peak_limited"});
     const double peak_limit = std::pow(10.0, -1.0 / 20.0);
     for (std::size_t i = 0; i < wavs.size(); ++i) {
         double rate = 0.0;
@@ -235,30 +231,104 @@ std::vector<matched_gain> write_loudness_matched(const std::vector<fs::path>& wa
         std::vector<double> y(x.begin(), x.end());
         for (double& v : y) v *= gain;
         write_wav(g.wav, y, rate, format, 1.0, true);
-        csv += fmt::format("{},{},{:.2f},{:.2f},{}\n", g.name, g.wav.filename().string(), g.rms_dbfs, g.gain_db,
-                           g.peak_limited ? "yes" : "no");
+        csv += csv_row({g.name, g.wav.filename().string(), fmt::format("{:.2f}", g.rms_dbfs), fmt::format("{:.2f}", g.gain_db),
+                        g.peak_limited ? "yes" : "no"});
         out.push_back(g);
     }
     write_text_atomic(dir / "gains.csv", csv);
     return out;
 }
 
+namespace {
+/// The last non-empty line of a small log file (gnuplot's own reason), or "".
+std::string last_log_line(const fs::path& log)
+{
+    std::ifstream in(log, std::ios::binary);
+    std::string line, last;
+    while (std::getline(in, line))
+        if (line.find_first_not_of(" \t\r^") != std::string::npos) last = line;
+    return last;
+}
+} // namespace
+
 void run_gnuplot(const std::string& script, const fs::path& work_dir, const std::string& stem)
 {
     const fs::path gp = work_dir / (stem + ".gp");
+    const fs::path log = work_dir / (stem + ".log");
     write_text_atomic(gp, script);
-    const std::string cmd = fmt::format("cd {} && gnuplot {} 2> {}", shell_quote(work_dir.string()), shell_quote(stem + ".gp"),
-                                        shell_quote(stem + ".log"));
+    // Messages name the plot, not a path: the work folder is often a stage that is removed afterwards.
+    const std::string what_plot = fmt::format("plot {}", stem);
     throw_if_cancelled();
-    const int rc = std::system(cmd.c_str());
-    // system() ignores SIGINT while gnuplot runs; a Ctrl-C at the terminal reaches gnuplot and shows here.
-    if (rc != -1 && WIFSIGNALED(rc) && (WTERMSIG(rc) == SIGINT || WTERMSIG(rc) == SIGTERM)) request_cancel(WTERMSIG(rc));
+    // posix_spawn instead of system(): system() blocks SIGINT and SIGTERM in galena while the child runs, so
+    // a signal sent to galena's process id alone was lost. Here galena keeps its handlers, polls the cancel
+    // flag while gnuplot runs and stops gnuplot itself; the child starts with default signal dispositions
+    // (galena ignores SIGPIPE and SIGXFSZ, which an exec would otherwise pass on).
+    posix_spawn_file_actions_t fa;
+    posix_spawnattr_t attr;
+    posix_spawn_file_actions_init(&fa);
+    posix_spawnattr_init(&attr);
+    sigset_t def;
+    sigemptyset(&def);
+    for (int sig : {SIGINT, SIGTERM, SIGHUP, SIGPIPE, SIGXFSZ}) sigaddset(&def, sig);
+    posix_spawnattr_setsigdefault(&attr, &def);
+    sigset_t none;
+    sigemptyset(&none);
+    posix_spawnattr_setsigmask(&attr, &none);
+    posix_spawnattr_setflags(&attr, POSIX_SPAWN_SETSIGDEF | POSIX_SPAWN_SETSIGMASK);
+    posix_spawn_file_actions_addchdir_np(&fa, work_dir.c_str());
+    posix_spawn_file_actions_addopen(&fa, 0, "/dev/null", O_RDONLY, 0);
+    posix_spawn_file_actions_addopen(&fa, 1, "/dev/null", O_WRONLY, 0);
+    posix_spawn_file_actions_addopen(&fa, 2, (stem + ".log").c_str(), O_WRONLY | O_CREAT | O_TRUNC, 0644);
+    const std::string script_name = stem + ".gp";
+    char prog[] = "gnuplot";
+    std::vector<char> arg(script_name.begin(), script_name.end());
+    arg.push_back('\0');
+    char* argv[] = {prog, arg.data(), nullptr};
+    pid_t pid = -1;
+    const int rc = posix_spawnp(&pid, "gnuplot", &fa, &attr, argv, environ);
+    posix_spawn_file_actions_destroy(&fa);
+    posix_spawnattr_destroy(&attr);
+    if (rc == ENOENT)
+        throw audio_error(fmt::format("{}: gnuplot not found on PATH (install the Debian package gnuplot-nox)", what_plot));
+    if (rc == EAGAIN || rc == ENOMEM || rc == EMFILE || rc == ENFILE)
+        throw resource_error(fmt::format("{}: cannot start gnuplot: {} (a process, memory or file limit was reached)", what_plot,
+                                         std::strerror(rc)));
+    if (rc != 0) throw audio_error(fmt::format("{}: cannot start gnuplot: {}", what_plot, std::strerror(rc)));
+    int status = 0;
+    bool stopped = false;
+    for (;;) {
+        const pid_t w = ::waitpid(pid, &status, WNOHANG);
+        if (w == pid) break;
+        if (w < 0 && errno != EINTR) {
+            const int err = errno;
+            throw audio_error(fmt::format("{}: waiting for gnuplot failed: {}", what_plot, std::strerror(err)));
+        }
+        if (cancel_requested() && !stopped) {
+            ::kill(pid, SIGTERM);
+            stopped = true;
+        }
+        const timespec nap{0, 10'000'000}; // 10 ms
+        nanosleep(&nap, nullptr);
+    }
     throw_if_cancelled();
-    if (rc != 0)
-        throw audio_error(fmt::format("{}: gnuplot failed (exit status {}; is the Debian package gnuplot-nox installed?); see {}",
-                                      gp.string(), rc, (work_dir / (stem + ".log")).string()));
+    // A signal that reached gnuplot alone (e.g. Ctrl-C while galena had not seen it yet) stops the command too.
+    if (WIFSIGNALED(status) && (WTERMSIG(status) == SIGINT || WTERMSIG(status) == SIGTERM || WTERMSIG(status) == SIGHUP)) {
+        request_cancel(WTERMSIG(status));
+        throw_if_cancelled();
+    }
+    const std::string reason = last_log_line(log);
+    const std::string said = reason.empty() ? std::string() : fmt::format("; gnuplot said: {}", reason);
+    if (WIFSIGNALED(status)) {
+        const int sig = WTERMSIG(status);
+        const std::string what = fmt::format("{}: gnuplot was killed by signal {} ({}){}", what_plot, sig, strsignal(sig), said);
+        if (sig == SIGKILL || sig == SIGXCPU || sig == SIGXFSZ || sig == SIGSEGV || sig == SIGABRT || sig == SIGBUS)
+            throw resource_error(what + " (a memory, CPU-time or file-size limit is the usual cause)");
+        throw audio_error(what);
+    }
+    if (WIFEXITED(status) && WEXITSTATUS(status) != 0)
+        throw audio_error(fmt::format("{}: gnuplot failed with exit code {}{}", what_plot, WEXITSTATUS(status), said));
     std::error_code ec;
-    if (fs::file_size(work_dir / (stem + ".log"), ec) == 0) fs::remove(work_dir / (stem + ".log"), ec);
+    if (fs::file_size(log, ec) == 0) fs::remove(log, ec);
 }
 
 namespace {
@@ -474,6 +544,7 @@ std::string render_page(const pack_page& p)
                     "</head><body>\n";
     h += "<h1>" + html_escape(p.title) + "</h1>\n";
     if (!p.note.empty()) h += "<p>" + html_escape(p.note) + "</p>\n";
+    h += p.extra_html;
     const sweep_result& sw = *p.sweep;
     const double fsv = sw.variants.empty() ? 0.0 : sw.variants[0].scene.output.full_scale_v;
     h += fmt::format("<p>All level-consistent files share one calibration: digital full scale = {:.4g} V at the earpiece, so "
@@ -550,13 +621,24 @@ pack_outcome make_pack(const fs::path& base_file, const std::vector<std::string>
     // Everything is staged beside out_dir and published at the end: a failure or Ctrl-C leaves no pack.
     staged_output staged(out_dir, opt.sweep.overwrite, inputs);
     check_sweep_outputs(o.sweep, staged);
-    for (const char* f : {"index.html", "playlist.wav", "playlist.csv", "playlist-matched.wav", "playlist-matched.csv"}) staged.check(f);
+    for (const char* f : {"index.html", "playlist.wav", "playlist.csv", "playlist-matched.wav", "playlist-matched.csv"}) {
+        staged.check(f);
+        staged.owns(f);
+    }
+    staged.owns("matched");
+    staged.owns("plots");
+    for (const auto& f : opt.extra_outputs) {
+        staged.check(f);
+        staged.owns(f);
+    }
     const fs::path dir = staged.dir();
     o.page = dir / "index.html";
     o.playlist_wav = dir / "playlist.wav";
     o.playlist_csv = dir / "playlist.csv";
     with_described_errors(staged, [&] {
         render_sweep(o.sweep, dir, opt.sweep);
+        std::string extra_html;
+        if (opt.extras) extra_html = opt.extras(o.sweep, dir);
         std::vector<fs::path> wavs;
         std::vector<std::string> names, labels;
         for (const auto& r : vs) {
@@ -577,6 +659,7 @@ pack_outcome make_pack(const fs::path& base_file, const std::vector<std::string>
         pack_page page;
         page.title = opt.title;
         page.note = opt.note;
+        page.extra_html = extra_html;
         page.dir = dir;
         page.sweep = &o.sweep;
         page.playlist = o.playlist;

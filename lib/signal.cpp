@@ -107,8 +107,11 @@ std::size_t buffer_reader::read(std::span<float> out)
 // Clip conditioning pipeline: reader -> band-limiting FIR (delay removed) -> libsamplerate -> float samples.
 class clip_modulation::pipeline {
 public:
-    pipeline(std::unique_ptr<sample_reader> r, double cutoff_hz, double out_rate_hz, std::size_t max_frames)
+    /// input_gain scales the raw samples before any filtering, so that the float stages (FIR output,
+    /// libsamplerate) never see values that can overflow; it is 1 / (raw peak).
+    pipeline(std::unique_ptr<sample_reader> r, double cutoff_hz, double out_rate_hz, std::size_t max_frames, double input_gain)
         : m_reader(std::move(r)), m_ratio(out_rate_hz / m_reader->sample_rate_hz()), m_max_frames(max_frames),
+          m_input_gain(input_gain),
           m_fir(kaiser_lowpass(cutoff_hz / m_reader->sample_rate_hz(), 0.1 * cutoff_hz / m_reader->sample_rate_hz(), 60.0), 1)
     {
         int err = 0;
@@ -147,7 +150,7 @@ public:
         for (std::size_t i = 0; i < got; ++i) {
             if (!std::isfinite(raw[i]))
                 throw audio_error(fmt::format("audio sample {} is not finite (NaN or Inf)", m_consumed - got + i));
-            if (m_fir.push(raw[i], y)) emit(y);
+            if (m_fir.push(m_input_gain * static_cast<double>(raw[i]), y)) emit(y);
         }
         if (input_done) {
             // Flush the FIR's delay line so the last input samples come out.
@@ -189,6 +192,7 @@ private:
     std::unique_ptr<sample_reader> m_reader;
     double m_ratio;
     std::size_t m_max_frames;
+    double m_input_gain;
     fir_decimator m_fir;
     SRC_STATE* m_src = nullptr;
     std::size_t m_delay = 0;
@@ -211,7 +215,28 @@ clip_modulation::clip_modulation(std::unique_ptr<sample_reader> reader, const co
     if (s.max_duration_s > 0.0) frames = std::min(frames, static_cast<std::size_t>(std::llround(s.max_duration_s * in_rate)));
     if (frames == 0) throw audio_error("audio clip has no samples");
     m_duration_s = static_cast<double>(frames) / in_rate;
-    m_pipe = std::make_unique<pipeline>(std::move(reader), s.cutoff_hz, m_rate_hz, frames);
+    // Pass 0: the raw peak. A float clip may hold finite samples near FLT_MAX; filtering them unscaled
+    // overflows the float stages to Inf and the normalisation to NaN. Scaling by 1 / (raw peak) first keeps
+    // every stage within about [-2, 2] (the FIR's overshoot), whatever the clip's scale.
+    const double raw_peak = [&] {
+        double pk = 0.0;
+        std::vector<float> raw(4096);
+        std::size_t done = 0;
+        while (done < frames) {
+            const std::size_t want = std::min(raw.size(), frames - done);
+            const std::size_t got = reader->read(std::span<float>(raw.data(), want));
+            for (std::size_t i = 0; i < got; ++i) {
+                if (!std::isfinite(raw[i])) throw audio_error(fmt::format("audio sample {} is not finite (NaN or Inf)", done + i));
+                pk = std::max(pk, static_cast<double>(std::fabs(raw[i])));
+            }
+            done += got;
+            if (got < want) break;
+        }
+        reader->rewind();
+        return pk;
+    }();
+    if (!(raw_peak > 0.0)) throw audio_error("audio clip is silent (every sample is zero)");
+    m_pipe = std::make_unique<pipeline>(std::move(reader), s.cutoff_hz, m_rate_hz, frames, 1.0 / raw_peak);
     // Pass 1: the peak of the conditioned signal.
     double peak = 0.0;
     std::vector<float> tmp;
@@ -219,7 +244,9 @@ clip_modulation::clip_modulation(std::unique_ptr<sample_reader> reader, const co
         for (float v : tmp) peak = std::max(peak, static_cast<double>(std::fabs(v)));
         tmp.clear();
     }
-    if (!(peak > 1e-9)) throw audio_error("audio clip is silent after band-limiting (peak below 1e-9 of full scale)");
+    if (!(peak > 1e-9)) throw audio_error("audio clip is silent after band-limiting (peak below 1e-9 of its raw peak)");
+    if (!std::isfinite(peak)) throw audio_error("audio clip could not be conditioned (non-finite value after band-limiting)");
+    m_input_gain = 1.0 / raw_peak;
     m_gain = 1.0 / peak;
     m_pipe->rewind();
 }

@@ -4,10 +4,13 @@
 #include "galena/cancel.hpp"
 #include "galena/components.hpp"
 #include "galena/error.hpp"
+#include "galena/text_table.hpp"
+#include "galena/units.hpp"
 #include "galena/validate.hpp"
 
 #include <algorithm>
 #include <atomic>
+#include <chrono>
 #include <cerrno>
 #include <cmath>
 #include <cstring>
@@ -45,14 +48,18 @@ std::string trim(const std::string& s)
     return s.substr(b, e - b + 1);
 }
 
-double parse_number(const std::string& text, const std::string& what)
+/// The unit of a swept key, or unit::none for a key that is not numeric (or unknown: loading reports it).
+unit unit_of(const std::string& field)
 {
-    std::string t = trim(text);
-    if (t == "inf" || t == "none") return std::numeric_limits<double>::infinity();
-    char* end = nullptr;
-    const double v = std::strtod(t.c_str(), &end);
-    if (t.empty() || *end != '\0') throw config_error(fmt::format("{}: \"{}\" is not a number", what, text));
-    return v;
+    for (const auto& k : scenario_keys())
+        if (k.field == field) return k.numeric ? k.u : unit::none;
+    return unit::none;
+}
+
+std::string lower(std::string s)
+{
+    for (char& c : s) c = static_cast<char>(std::tolower(static_cast<unsigned char>(c)));
+    return s;
 }
 
 bool name_ok(const std::string& n)
@@ -61,14 +68,19 @@ bool name_ok(const std::string& n)
            std::all_of(n.begin(), n.end(), [](unsigned char c) { return std::isalnum(c) || c == '-' || c == '_' || c == '.'; });
 }
 
-/// Value text as it appears in a name: numbers compacted, words kept.
-std::string value_tag(const std::string& v)
+/// Value text as it appears in a name: numbers in engineering notation ("47k"), words kept.
+std::string value_tag(const std::string& field, const std::string& v)
 {
-    char* end = nullptr;
     const std::string t = trim(v);
-    const double x = std::strtod(t.c_str(), &end);
     if (t == "inf" || t == "none") return "none";
-    if (!t.empty() && *end == '\0') return short_si(x);
+    for (const auto& k : scenario_keys())
+        if (k.field == field && k.numeric) {
+            try {
+                return short_si(parse_quantity(t, k.u));
+            } catch (const config_error&) {
+                break; // loading the variant names the problem
+            }
+        }
     std::string s;
     for (char c : t) s += (std::isalnum(static_cast<unsigned char>(c)) || c == '-' || c == '.') ? c : '_';
     return s;
@@ -89,26 +101,21 @@ std::string json_cell(const nlohmann::json& j, int digits, bool csv)
     return j.dump();
 }
 
-std::string csv_quote(const std::string& s)
-{
-    if (s.find_first_of(",\"\n") == std::string::npos) return s;
-    std::string o = "\"";
-    for (char c : s) o += c == '"' ? std::string("\"\"") : std::string(1, c);
-    return o + "\"";
-}
-
 } // namespace
+
+const std::vector<std::string>& reserved_output_names()
+{
+    static const std::vector<std::string> n = {"table.csv", "table.md", "index.html", "playlist.wav", "playlist.csv",
+                                               "playlist-matched.wav", "playlist-matched.csv", "matched", "plots",
+                                               "gains.csv", "variant.json", "measure", "recovered.wav", "recovered.json",
+                                               "metrics.json", "recovered-normalised.wav"};
+    return n;
+}
 
 std::string short_si(double v)
 {
-    if (std::isinf(v)) return v > 0 ? "none" : "-inf";
-    if (v == 0.0) return "0";
-    static const std::pair<double, const char*> units[] = {{1e9, "G"}, {1e6, "M"}, {1e3, "k"}, {1.0, ""},
-                                                           {1e-3, "m"}, {1e-6, "u"}, {1e-9, "n"}, {1e-12, "p"}};
-    const double a = std::fabs(v);
-    for (const auto& [scale, suffix] : units)
-        if (a >= scale * 0.9999999) return fmt::format("{:.4g}{}", v / scale, suffix);
-    return fmt::format("{:.4g}", v);
+    if (std::isinf(v) && v > 0) return "none";
+    return format_quantity(v, unit::none, 4);
 }
 
 sweep_axis parse_sweep_axis(const std::string& spec)
@@ -116,7 +123,14 @@ sweep_axis parse_sweep_axis(const std::string& spec)
     const auto eq = spec.find('=');
     const auto dot = spec.find('.');
     if (eq == std::string::npos || dot == std::string::npos || dot > eq || eq + 1 >= spec.size())
-        throw config_error(fmt::format("--vary {}: must look like section.key=a,b,c or section.key=log:LO:HI:COUNT", spec));
+    {
+        std::string hint;
+        if (eq != std::string::npos && (dot == std::string::npos || dot > eq)) {
+            const auto fields = suggest_fields(trim(spec.substr(0, eq)));
+            if (!fields.empty()) hint = fmt::format(" (did you mean {}={}?)", fields.front(), spec.substr(eq + 1));
+        }
+        throw config_error(fmt::format("--vary {}: must look like section.key=a,b,c or section.key=log:LO:HI:COUNT{}", spec, hint));
+    }
     sweep_axis a;
     a.key = trim(spec.substr(0, eq));
     const std::string rhs = trim(spec.substr(eq + 1));
@@ -124,9 +138,17 @@ sweep_axis parse_sweep_axis(const std::string& spec)
         const auto parts = split(rhs.substr(4), ':');
         if (parts.size() != 3)
             throw config_error(fmt::format("--vary {}: a log range is log:LO:HI:COUNT", spec));
-        const double lo = parse_number(parts[0], "--vary " + spec + ": LO");
-        const double hi = parse_number(parts[1], "--vary " + spec + ": HI");
-        const double n = parse_number(parts[2], "--vary " + spec + ": COUNT");
+        auto number = [&](const std::string& text, const char* what, unit u) {
+            try {
+                return parse_quantity(text, u);
+            } catch (const config_error& e) {
+                throw config_error(fmt::format("--vary {}: {} = \"{}\": {}", spec, what, trim(text), e.what()));
+            }
+        };
+        const unit u = unit_of(a.key);
+        const double lo = number(parts[0], "LO", u);
+        const double hi = number(parts[1], "HI", u);
+        const double n = number(parts[2], "COUNT", unit::none);
         if (!(lo > 0.0) || !(hi > lo) || !std::isfinite(hi))
             throw config_error(fmt::format("--vary {}: a log range needs 0 < LO < HI < inf", spec));
         if (!(n >= 2.0) || n > 1000.0 || n != std::floor(n))
@@ -163,8 +185,13 @@ variant_spec parse_variant(const std::string& spec)
     for (const auto& o : split(spec.substr(colon + 1), ',')) {
         const std::string t = trim(o);
         if (t.empty()) continue;
-        if (t.find('=') == std::string::npos || t.find('.') > t.find('='))
-            throw config_error(fmt::format("--variant {}: \"{}\" must look like section.key=value", spec, t));
+        if (t.find('=') == std::string::npos || t.find('.') > t.find('=')) {
+            std::string hint;
+            if (const auto eq = t.find('='); eq != std::string::npos)
+                if (const auto fields = suggest_fields(trim(t.substr(0, eq))); !fields.empty())
+                    hint = fmt::format(" (did you mean {}={}?)", fields.front(), t.substr(eq + 1));
+            throw config_error(fmt::format("--variant {}: \"{}\" must look like section.key=value{}", spec, t, hint));
+        }
         v.overrides.push_back(t);
     }
     return v;
@@ -173,6 +200,12 @@ variant_spec parse_variant(const std::string& spec)
 std::vector<variant_spec> expand_sweep(const std::vector<sweep_axis>& axes)
 {
     if (axes.empty()) throw config_error("sweep: no --vary given; name at least one key to vary");
+    for (std::size_t i = 0; i < axes.size(); ++i)
+        for (std::size_t j = 0; j < i; ++j)
+            if (axes[i].key == axes[j].key)
+                throw config_error(fmt::format("--vary {}: the key is varied twice (axes {} and {}); give all its values in one "
+                                               "--vary",
+                                               axes[i].key, j + 1, i + 1));
     std::size_t total = 1;
     for (const auto& a : axes) {
         if (a.values.empty()) throw config_error(fmt::format("--vary {}: no values", a.key));
@@ -196,9 +229,9 @@ std::vector<variant_spec> expand_sweep(const std::vector<sweep_axis>& axes)
             const auto& a = axes[k];
             const std::string& val = a.values[idx[k]];
             const std::string short_key = a.key.substr(a.key.find('.') + 1);
-            v.name += "-" + short_key + "-" + value_tag(val);
+            v.name += "-" + short_key + "-" + value_tag(a.key, val);
             if (!v.label.empty()) v.label += ", ";
-            v.label += short_key + " = " + value_tag(val);
+            v.label += short_key + " = " + value_tag(a.key, val);
             v.overrides.push_back(a.key + "=" + val);
         }
         out.push_back(std::move(v));
@@ -221,13 +254,45 @@ std::string pack_string(const toml::table& t, const char* key, const std::string
     throw config_error(fmt::format("{}: {}: must be a string", pack_where(*n, file), field));
 }
 
-std::optional<double> pack_number(const toml::table& t, const char* key, const std::string& field, const fs::path& file)
+std::optional<double> pack_number(const toml::table& t, const char* key, const std::string& field, const fs::path& file, unit u)
 {
     const toml::node* n = t.get(key);
     if (n == nullptr) return std::nullopt;
     if (auto v = n->value_exact<double>()) return *v;
     if (auto v = n->value_exact<int64_t>()) return static_cast<double>(*v);
+    if (auto text = n->value_exact<std::string>()) {
+        try {
+            return parse_quantity(*text, u);
+        } catch (const config_error& e) {
+            throw config_error(fmt::format("{}: {}: {}", pack_where(*n, file), field, e.what()));
+        }
+    }
     throw config_error(fmt::format("{}: {}: must be a number", pack_where(*n, file), field));
+}
+
+/// A pack's `set` entry with a relative signal.audio or diode.file made absolute against the pack file's folder: paths in
+/// a file are relative to that file, wherever the command runs.
+std::string pack_relative(const std::string& entry, const fs::path& file, const std::string& where)
+{
+    const auto eq = entry.find('=');
+    if (eq == std::string::npos) return entry;
+    const std::string key = trim(entry.substr(0, eq));
+    if (key != "signal.audio" && key != "diode.file") return entry;
+    std::string path = trim(entry.substr(eq + 1));
+    try {
+        toml::table parsed = toml::parse("v = " + path);
+        if (auto str = parsed["v"].value<std::string>()) path = *str;
+    } catch (const toml::parse_error&) {
+    }
+    if (path.empty()) throw config_error(fmt::format("{}: set {}: {}: the path is empty", where, entry, key));
+    fs::path p(path);
+    if (p.is_relative()) {
+        std::error_code ec;
+        p = fs::absolute(file.parent_path() / p, ec);
+        if (ec) throw config_error(fmt::format("{}: set {}: {}: cannot resolve the path: {}", where, entry, key, ec.message()));
+    }
+    nlohmann::json q = p.string(); // a TOML basic string: JSON string escaping is a subset of it
+    return key + "=" + q.dump();
 }
 } // namespace
 
@@ -259,8 +324,9 @@ pack_spec parse_pack(const std::string& text, const fs::path& file)
     const std::string sc = pack_string(*pack, "scenario", "pack.scenario", file);
     if (sc.empty()) throw config_error(fmt::format("{}: pack.scenario: missing (the base scenario file)", file.string()));
     p.scenario = fs::path(sc).is_absolute() ? fs::path(sc) : file.parent_path() / sc;
-    p.measure_tone_hz = pack_number(*pack, "measure_tone_hz", "pack.measure_tone_hz", file).value_or(0.0);
-    p.measure_duration_s = pack_number(*pack, "measure_duration_s", "pack.measure_duration_s", file).value_or(0.3);
+    p.measure_tone_hz = pack_number(*pack, "measure_tone_hz", "pack.measure_tone_hz", file, unit::hertz).value_or(default_measure_tone_hz);
+    p.measure_duration_s =
+        pack_number(*pack, "measure_duration_s", "pack.measure_duration_s", file, unit::second).value_or(default_measure_duration_s);
     if (!(p.measure_tone_hz >= 0.0) || p.measure_tone_hz > 20000.0)
         throw config_error(fmt::format("{}: pack.measure_tone_hz = {}: must be 0 (off) or in (0, 20000] Hz",
                                        pack_where(*pack->get("measure_tone_hz"), file), detail::format_value(p.measure_tone_hz)));
@@ -293,7 +359,8 @@ pack_spec parse_pack(const std::string& text, const fs::path& file)
             for (const auto& e : *list) {
                 const auto s = e.value_exact<std::string>();
                 if (!s) throw config_error(fmt::format("{}: variant {}: set: must be a list of strings \"section.key=value\"", pack_where(e, file), i + 1));
-                v.overrides.push_back(*s);
+                v.overrides.push_back(pack_relative(*s, file, pack_where(e, file)));
+                v.origins.push_back(pack_where(e, file));
             }
         }
         p.variants.push_back(std::move(v));
@@ -303,13 +370,42 @@ pack_spec parse_pack(const std::string& text, const fs::path& file)
 
 pack_spec load_pack(const fs::path& file)
 {
-    std::error_code ec;
-    if (fs::is_directory(file, ec)) throw config_error(fmt::format("{}: is a directory, not a pack or scenario file", file.string()));
+    const std::string text = read_text_input(file, "pack file");
+    refuse_audio_file(file, text, "pack");
+    return parse_pack(text, file);
+}
+
+bool is_pack_file(const fs::path& file)
+{
     std::ifstream in(file, std::ios::binary);
-    if (!in) throw config_error(fmt::format("{}: cannot open the pack file: {}", file.string(), std::strerror(errno)));
+    if (!in) return false;
     std::stringstream ss;
     ss << in.rdbuf();
-    return parse_pack(ss.str(), file);
+    try {
+        const toml::table root = toml::parse(ss.str(), file.string());
+        return root.contains("pack") || root.contains("variant");
+    } catch (const toml::parse_error&) {
+        return false;
+    }
+}
+
+std::vector<scenario> load_pack_variants(const pack_spec& pack, const std::vector<std::string>& base_overrides)
+{
+    std::vector<scenario> out;
+    for (std::size_t i = 0; i < pack.variants.size(); ++i) {
+        const auto& v = pack.variants[i];
+        for (std::size_t j = 0; j < i; ++j)
+            if (pack.variants[j].name == v.name)
+                throw config_error(fmt::format("{}: variant {}: name \"{}\" is used twice", pack.file.string(), i + 1, v.name));
+        std::vector<std::string> ov = base_overrides;
+        ov.insert(ov.end(), v.overrides.begin(), v.overrides.end());
+        try {
+            out.push_back(load_scenario(pack.scenario, ov));
+        } catch (const config_error& e) {
+            throw config_error(fmt::format("{}: variant {}: {}", pack.file.string(), v.name, e.what()));
+        }
+    }
+    return out;
 }
 
 fs::path find_bundled_file(const fs::path& relative, const fs::path& executable, const fs::path& installed_data_dir)
@@ -345,36 +441,49 @@ const std::vector<std::string>& table_columns()
 
 std::string table_csv(const std::vector<variant_result>& rows)
 {
-    std::string o = "variant,label";
-    for (const auto& c : table_columns()) o += "," + c;
-    o += ",warnings\n";
+    std::vector<std::string> head = {"variant", "label"};
+    head.insert(head.end(), table_columns().begin(), table_columns().end());
+    head.emplace_back("warnings");
+    std::string o = csv_row(head);
     for (const auto& r : rows) {
-        o += csv_quote(r.spec.name) + "," + csv_quote(r.spec.label);
-        for (const auto& c : table_columns()) o += "," + (r.metrics.contains(c) ? json_cell(r.metrics[c], 10, true) : std::string());
-        o += "," + std::to_string(r.metrics.contains("warnings") ? r.metrics["warnings"].size() : 0) + "\n";
+        std::vector<std::string> f = {r.spec.name, r.spec.label};
+        for (const auto& c : table_columns()) f.push_back(r.metrics.contains(c) ? json_cell(r.metrics[c], 10, true) : std::string());
+        f.push_back(std::to_string(r.metrics.contains("warnings") ? r.metrics["warnings"].size() : 0));
+        o += csv_row(f);
     }
     return o;
 }
 
 std::string table_markdown(const std::vector<variant_result>& rows)
 {
-    static const std::vector<std::pair<std::string, std::string>> heads = {
-        {"carrier_peak_v", "carrier V"}, {"dc_v", "DC V"},          {"audio_rms_v", "audio rms V"},
-        {"a_weighted_dbv", "dBV(A)"},    {"fundamental_v", "tone V"}, {"h2_ratio", "H2/H1"},
-        {"h3_ratio", "H3/H1"},           {"thd_percent", "THD %"},   {"thd_n_percent", "THD+N %"},
-        {"sinad_db", "SINAD dB"},        {"peak_audio_v", "peak V"}, {"clipped_samples", "clipped"}};
+    // Volt columns are written in engineering notation ("21.86m" under "DC V"), as builders write values;
+    // ratios, % and dB stay plain.
+    struct head {
+        std::string key, text;
+        bool volts;
+    };
+    static const std::vector<head> heads = {
+        {"carrier_peak_v", "carrier V", true}, {"dc_v", "DC V", true},        {"audio_rms_v", "audio rms V", true},
+        {"a_weighted_dbv", "dBV(A)", false},   {"fundamental_v", "tone V", true}, {"h2_ratio", "H2/H1", false},
+        {"h3_ratio", "H3/H1", false},          {"thd_percent", "THD %", false}, {"thd_n_percent", "THD+N %", false},
+        {"sinad_db", "SINAD dB", false},       {"peak_audio_v", "peak V", true}, {"clipped_samples", "clipped", false}};
     std::string o = "| variant | label |";
     std::string rule = "|---|---|";
-    for (const auto& [k, h] : heads) {
-        o += " " + h + " |";
+    for (const auto& h : heads) {
+        o += " " + h.text + " |";
         rule += "---:|";
     }
     o += "\n" + rule + "\n";
     for (const auto& r : rows) {
-        o += "| " + r.spec.name + " | " + r.spec.label + " |";
-        for (const auto& [k, h] : heads) {
-            const std::string cell = r.metrics.contains(k) ? json_cell(r.metrics[k], 4, false) : std::string();
-            o += " " + (cell.empty() ? std::string("-") : cell) + " |";
+        o += "| " + markdown_cell(r.spec.name) + " | " + markdown_cell(r.spec.label) + " |";
+        for (const auto& h : heads) {
+            const std::string& k = h.key;
+            const bool volts = h.volts && r.metrics.contains(k) && r.metrics[k].is_number_float() &&
+                               std::isfinite(r.metrics[k].get<double>());
+            const std::string cell = !r.metrics.contains(k) ? std::string()
+                                     : volts                ? format_quantity(r.metrics[k].get<double>(), unit::volt, 4)
+                                                            : json_cell(r.metrics[k], 4, false);
+            o += " " + (cell.empty() ? std::string("-") : markdown_cell(cell)) + " |";
         }
         o += "\n";
     }
@@ -399,15 +508,36 @@ sweep_result prepare_sweep(const fs::path& base_file, const std::vector<std::str
     for (std::size_t i = 0; i < variants.size(); ++i) {
         auto& r = res.variants[i];
         r.spec = variants[i];
+        const std::string where = r.spec.origins.empty() ? fmt::format("variant {}", i + 1) : r.spec.origins.front();
         for (std::size_t j = 0; j < i; ++j)
-            if (variants[j].name == r.spec.name)
-                throw config_error(fmt::format("variant {}: name \"{}\" is used twice", i + 1, r.spec.name));
+            if (lower(variants[j].name) == lower(r.spec.name))
+                throw config_error(fmt::format("{}: name \"{}\" is used twice (variant {} has it; names are compared without "
+                                               "regard to case)",
+                                               where, r.spec.name, j + 1));
+        if (!r.spec.name.empty() && r.spec.name.front() == '.')
+            throw config_error(fmt::format("{}: name \"{}\": must not start with '.'", where, r.spec.name));
+        for (const auto& reserved : reserved_output_names())
+            if (lower(r.spec.name) == reserved)
+                throw config_error(fmt::format("{}: name \"{}\": galena names its own output {} so; choose another name", where,
+                                               r.spec.name, reserved));
         std::vector<std::string> ov = base_overrides;
         ov.insert(ov.end(), r.spec.overrides.begin(), r.spec.overrides.end());
         try {
             r.scene = load_scenario(base_file, ov);
         } catch (const config_error& e) {
-            throw config_error(fmt::format("variant {}: {}", r.spec.name, e.what()));
+            // A pack's `set` entry is named by its own file and line, not as a --set the user never typed.
+            std::string msg = e.what();
+            for (std::size_t k = 0; k < r.spec.origins.size() && k < r.spec.overrides.size(); ++k) {
+                const std::string& o = r.spec.overrides[k];
+                for (const std::string& from : {base_file.string() + " (--set " + o + ")", "--set " + o}) {
+                    const auto at = msg.find(from);
+                    if (at != std::string::npos) {
+                        msg.replace(at, from.size(), fmt::format("{} (set \"{}\" of variant {})", r.spec.origins[k], o, r.spec.name));
+                        throw config_error(msg);
+                    }
+                }
+            }
+            throw config_error(fmt::format("variant {}: {}", r.spec.name, msg));
         }
         r.measured_separately = opt.measure_tone_hz > 0.0 && r.scene.programme.kind == programme_kind::clip;
         if (r.measured_separately) {
@@ -437,7 +567,9 @@ sweep_result prepare_sweep(const fs::path& base_file, const std::vector<std::str
             throw audio_error(fmt::format("variant {}: {}", r.spec.name, e.what()));
         }
         ++renders;
+        check_measurable(r.scene, fmt::format("variant {}", r.spec.name));
         if (r.measured_separately) {
+            check_measurable(r.measure_scene, fmt::format("variant {} (--measure-tone)", r.spec.name));
             programme_s += r.measure_scene.programme.duration_s;
             ++renders;
         }
@@ -447,11 +579,14 @@ sweep_result prepare_sweep(const fs::path& base_file, const std::vector<std::str
     return res;
 }
 
-void check_sweep_outputs(const sweep_result& res, const staged_output& staged)
+void check_sweep_outputs(const sweep_result& res, staged_output& staged)
 {
     staged.check("table.csv");
     staged.check("table.md");
+    staged.owns("table.csv");
+    staged.owns("table.md");
     for (const auto& r : res.variants) {
+        staged.owns(r.spec.name);
         for (const auto& n : job_file_names()) staged.check(fs::path(r.spec.name) / n);
         if (r.measured_separately)
             for (const auto& n : job_file_names()) staged.check(fs::path(r.spec.name) / "measure" / n);
@@ -499,7 +634,41 @@ void render_sweep(sweep_result& res, const fs::path& out_dir, const sweep_option
     std::exception_ptr first_error;
     std::size_t first_error_index = count;
     std::mutex m;
-    std::size_t finished = 0;
+    // Progress (all under m): each render's share of the work is its programme time, so a tick's fraction
+    // moves evenly through variants of different lengths; finished variants are reported in order.
+    const auto t0 = std::chrono::steady_clock::now();
+    std::vector<double> main_s(count), measure_s(count), part(count, 0.0);
+    std::vector<char> done(count, 0);
+    std::size_t reported = 0;
+    double total_s = 0.0;
+    auto last_tick = t0;
+    if (opt.progress) {
+        for (std::size_t i = 0; i < count; ++i) {
+            const auto& r = res.variants[i];
+            main_s[i] = std::max(programme_duration_s(r.scene), 1e-3);
+            measure_s[i] = r.measured_separately ? r.measure_scene.programme.duration_s : 0.0;
+            total_s += main_s[i] + measure_s[i];
+        }
+    }
+    auto report = [&](std::string_view finished_name) {
+        double worked = 0.0;
+        for (std::size_t i = 0; i < count; ++i) worked += part[i];
+        sweep_progress p;
+        p.fraction = total_s > 0.0 ? std::min(1.0, worked / total_s) : 1.0;
+        p.elapsed_s = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
+        p.reported = reported;
+        p.total = count;
+        p.finished = finished_name;
+        opt.progress(p);
+    };
+    auto tick = [&](std::size_t i, double worked_s) {
+        std::lock_guard<std::mutex> lk(m);
+        part[i] = worked_s;
+        const auto now = std::chrono::steady_clock::now();
+        if (now - last_tick < std::chrono::milliseconds(100)) return;
+        last_tick = now;
+        report({});
+    };
     auto work = [&] {
         for (;;) {
             const std::size_t i = next.fetch_add(1);
@@ -512,10 +681,12 @@ void render_sweep(sweep_result& res, const fs::path& out_dir, const sweep_option
                 job_options jo;
                 jo.overwrite = opt.overwrite;
                 jo.stop = &failed;
+                if (opt.progress) jo.progress = [&, i](double f) { tick(i, f * main_s[i]); };
                 r.job = render_job_into(r.scene, r.dir, jo);
                 r.metrics = r.job.metrics;
                 if (r.measured_separately) {
                     fs::create_directories(r.dir / "measure", ec);
+                    if (opt.progress) jo.progress = [&, i](double f) { tick(i, main_s[i] + f * measure_s[i]); };
                     job_outcome mo = render_job_into(r.measure_scene, r.dir / "measure", jo);
                     r.measure_earpiece_v = std::move(mo.analysis_v);
                     // Levels of the programme itself; distortion figures from the tone.
@@ -536,8 +707,14 @@ void render_sweep(sweep_result& res, const fs::path& out_dir, const sweep_option
                 write_text_atomic(r.dir / "variant.json",
                                   nlohmann::json{{"name", r.spec.name}, {"label", r.spec.label}, {"set", r.spec.overrides}}.dump(2) + "\n");
                 std::lock_guard<std::mutex> lk(m);
-                ++finished;
-                if (opt.progress) opt.progress(finished, count, r.spec.name);
+                done[i] = 1;
+                if (opt.progress) {
+                    part[i] = main_s[i] + measure_s[i];
+                    while (reported < count && done[reported] != 0) {
+                        ++reported;
+                        report(res.variants[reported - 1].spec.name);
+                    }
+                }
             } catch (...) {
                 std::lock_guard<std::mutex> lk(m);
                 // A render stopped because another variant had already failed is not the cause.

@@ -1,8 +1,8 @@
 #!/usr/bin/env bash
 # Installs what is missing (Debian packages, idempotent), builds galena, then either renders the bundled
 # demo pack (`demo`), runs the whole test suite (`test`), runs it again under ASan + UBSan (`sanitize`), or
-# builds the libFuzzer harnesses with clang and runs each for a bounded time on its seed corpus (`fuzz`;
-# GALENA_FUZZ_SECONDS per harness, default 60). Run from anywhere; needs root or sudo only when a package
+# builds the libFuzzer harnesses with clang and runs each deterministically on its seed corpus (`fuzz`, CI:
+# fixed seed and execution count) or open-ended (`fuzz-open`, for developers). Run from anywhere; needs root or sudo only when a package
 # is missing.
 set -euo pipefail
 mode="${1:-demo}"
@@ -16,8 +16,8 @@ fuzz_pkgs=(clang-14 libclang-rt-14-dev)
 case "$mode" in
   demo) pkgs=("${build_pkgs[@]}") ;;
   test|sanitize) pkgs=("${build_pkgs[@]}" "${test_pkgs[@]}") ;;
-  fuzz) pkgs=("${build_pkgs[@]}" "${fuzz_pkgs[@]}") ;;
-  *) echo "usage: $0 demo|test|sanitize|fuzz" >&2; exit 2 ;;
+  fuzz|fuzz-open) pkgs=("${build_pkgs[@]}" "${fuzz_pkgs[@]}") ;;
+  *) echo "usage: $0 demo|test|sanitize|fuzz|fuzz-open" >&2; exit 2 ;;
 esac
 
 missing=()
@@ -34,21 +34,27 @@ fi
 
 jobs="$(nproc 2>/dev/null || echo 2)"
 if [ "$mode" = sanitize ]; then
-  # The whole suite again under AddressSanitizer + UndefinedBehaviorSanitizer (the installed-package
-  # consumer test is left out: it would build a consumer without the sanitizer runtime).
+  # The suite again under AddressSanitizer + UndefinedBehaviorSanitizer, less the tests labelled `slow`
+  # (long physics references, run once in the Release pass) and the installed-package consumer test (it
+  # would build a consumer without the sanitizer runtime).
   san="${GALENA_SANITIZE_BUILD_DIR:-$here/build-asan}"
   cmake -S "$here" -B "$san" -DCMAKE_BUILD_TYPE=RelWithDebInfo -DGALENA_SANITIZE=ON -DGALENA_BUILD_TESTS=ON
   cmake --build "$san" -j "$jobs"
-  ctest --test-dir "$san" --output-on-failure -j "$jobs" -E package_consumer
+  ctest --test-dir "$san" --output-on-failure -j "$jobs" -E package_consumer -LE slow
   exit 0
 fi
-if [ "$mode" = fuzz ]; then
+if [ "$mode" = fuzz ] || [ "$mode" = fuzz-open ]; then
   # libFuzzer harnesses (tests/fuzz): clang 14 with ASan + UBSan, assertions on (-O1 -g, no NDEBUG); toml++
   # linked as its shared library. New inputs go to a scratch corpus; the seeds in tests/fuzz/corpus stay as
   # they are. A crash, leak, sanitizer report or broken property fails this step and leaves the input in
   # build-fuzz/crash-*.
+  #   fuzz       (CI): deterministic. A fixed seed (-seed=1) and a fixed number of executions per harness
+  #              (GALENA_FUZZ_RUNS_SCENARIO, default 400000; GALENA_FUZZ_RUNS_WAV, default 20000), starting
+  #              from the seed corpus; max_total_time only bounds a very slow machine.
+  #   fuzz-open  (developers): open-ended, a random seed, GALENA_FUZZ_SECONDS per harness (default 600).
+  #              Copy what it finds (build-fuzz/crash-*) into tests/fuzz/corpus/<harness>/ as a seed named
+  #              found-*, and fix it.
   fz="${GALENA_FUZZ_BUILD_DIR:-$here/build-fuzz}"
-  secs="${GALENA_FUZZ_SECONDS:-60}"
   cmake -S "$here" -B "$fz" -DCMAKE_CXX_COMPILER=clang++-14 -DCMAKE_BUILD_TYPE=RelWithDebInfo \
         -DCMAKE_CXX_FLAGS_RELWITHDEBINFO="-O1 -g" -DGALENA_FUZZ=ON -DGALENA_BUILD_TESTS=OFF -DGALENA_BUILD_TOOLS=OFF
   cmake --build "$fz" -j "$jobs" --target scenario_fuzz wav_fuzz
@@ -58,12 +64,23 @@ if [ "$mode" = fuzz ]; then
     mkdir -p "$work"
     max_len=8192
     [ "$h" = wav ] && max_len=65536
-    echo "bootstrap: fuzzing $h for $secs s"
-    "$fz/tests/fuzz/${h}_fuzz" -max_total_time="$secs" -timeout=30 -rss_limit_mb=2048 -max_len="$max_len" \
+    if [ "$mode" = fuzz ]; then
+      runs=400000
+      [ "$h" = wav ] && runs=20000
+      [ "$h" = scenario ] && runs="${GALENA_FUZZ_RUNS_SCENARIO:-$runs}"
+      [ "$h" = wav ] && runs="${GALENA_FUZZ_RUNS_WAV:-$runs}"
+      limits=(-seed=1 -runs="$runs" -max_total_time=900)
+      echo "bootstrap: fuzzing $h deterministically: seed 1, $runs executions"
+    else
+      secs="${GALENA_FUZZ_SECONDS:-600}"
+      limits=(-max_total_time="$secs")
+      echo "bootstrap: fuzzing $h open-ended for $secs s"
+    fi
+    "$fz/tests/fuzz/${h}_fuzz" "${limits[@]}" -timeout=30 -rss_limit_mb=2048 -max_len="$max_len" \
         -print_final_stats=1 -artifact_prefix="$fz/crash-$h-" "$work" "$here/tests/fuzz/corpus/$h" > "$fz/$h.log" 2>&1 \
       || { tail -n 60 "$fz/$h.log"; echo "bootstrap: fuzz $h FAILED (input in $fz/crash-$h-*)" >&2; exit 1; }
-    runs="$(sed -n 's/^stat::number_of_executed_units: *//p' "$fz/$h.log")"
-    echo "fuzz $h: ${runs:-?} executions in $secs s, corpus $(ls "$work" | wc -l) new + $(ls "$here/tests/fuzz/corpus/$h" | wc -l) seeds, no findings"
+    done_runs="$(sed -n 's/^stat::number_of_executed_units: *//p' "$fz/$h.log")"
+    echo "fuzz $h: ${done_runs:-?} executions, corpus $(ls "$work" | wc -l) new + $(ls "$here/tests/fuzz/corpus/$h" | wc -l) seeds, no findings"
   done
   exit 0
 fi
@@ -71,7 +88,8 @@ cmake -S "$here" -B "$build" -DCMAKE_BUILD_TYPE=Release -DGALENA_BUILD_TESTS=$([
 cmake --build "$build" -j "$jobs"
 
 if [ "$mode" = demo ]; then
-  "$build/tools/galena" demo --out "$here/demo-out"
+  # demo-out/ belongs to this command: running the set-up again refreshes it.
+  "$build/tools/galena" demo --out "$here/demo-out" --overwrite
   echo "bootstrap: the demo pack is in $here/demo-out (open demo-out/index.html)"
 else
   ctest --test-dir "$build" --output-on-failure -j "$jobs"

@@ -101,3 +101,53 @@ TEST_CASE("writer refuses to replace an existing file unless asked; reader error
     write_text_atomic(txt, "this is not audio\n");
     CHECK_THROWS_WITH_AS(wav_reader{txt}, doctest::Contains("cannot read as audio"), audio_error);
 }
+
+TEST_CASE("truncated files are refused for every container and subtype, with frames declared and found")
+{
+    // Each format is written whole by libsndfile, then cut to 40 % of its bytes (an interrupted copy).
+    struct fmt_case {
+        const char* name;
+        int format;
+        int channels;
+    };
+    const fmt_case cases[] = {
+        {"pcm16.wav", SF_FORMAT_WAV | SF_FORMAT_PCM_16, 1},      {"alaw.wav", SF_FORMAT_WAV | SF_FORMAT_ALAW, 1},
+        {"ulaw.wav", SF_FORMAT_WAV | SF_FORMAT_ULAW, 1},         {"ima.wav", SF_FORMAT_WAV | SF_FORMAT_IMA_ADPCM, 1},
+        {"msadpcm.wav", SF_FORMAT_WAV | SF_FORMAT_MS_ADPCM, 2},  {"ext24.wav", SF_FORMAT_WAVEX | SF_FORMAT_PCM_24, 1},
+        {"ext6ch.wav", SF_FORMAT_WAVEX | SF_FORMAT_PCM_16, 6},   {"float.wav", SF_FORMAT_WAV | SF_FORMAT_FLOAT, 2},
+        {"pcm16.aiff", SF_FORMAT_AIFF | SF_FORMAT_PCM_16, 1},    {"pcm24.aiff", SF_FORMAT_AIFF | SF_FORMAT_PCM_24, 2},
+    };
+    const int frames = 8000;
+    for (const auto& c : cases) {
+        CAPTURE(c.name);
+        const fs::path whole = scratch(std::string("whole-") + c.name);
+        SF_INFO info{};
+        info.samplerate = 16000;
+        info.channels = c.channels;
+        info.format = c.format;
+        SNDFILE* f = sf_open(whole.c_str(), SFM_WRITE, &info);
+        REQUIRE(f != nullptr);
+        std::vector<float> x(static_cast<std::size_t>(frames * c.channels));
+        for (std::size_t i = 0; i < x.size(); ++i) x[i] = 0.5f * static_cast<float>(std::sin(0.05 * static_cast<double>(i)));
+        sf_writef_float(f, x.data(), frames);
+        sf_close(f);
+        // The whole file reads in full (ADPCM pads its last block: up to one block of 505 or 1012 frames more).
+        const std::size_t whole_frames = read_mono(whole).size();
+        CHECK(whole_frames >= static_cast<std::size_t>(frames));
+        CHECK(whole_frames < static_cast<std::size_t>(frames) + 1024);
+        const auto size = fs::file_size(whole);
+        const fs::path cut = scratch(std::string("cut-") + c.name);
+        fs::copy_file(whole, cut);
+        fs::resize_file(cut, size * 2 / 5);
+        // Declared: the fact chunk's exact count where there is one (MS ADPCM: 8000), else whole blocks.
+        std::string msg;
+        try {
+            wav_reader r(cut);
+        } catch (const audio_error& e) {
+            msg = e.what();
+        }
+        const bool named = msg.find(fmt::format("truncated: the header declares {} frames but the file holds", frames)) != std::string::npos ||
+                           msg.find(fmt::format("truncated: the header declares {} frames but the file holds", whole_frames)) != std::string::npos;
+        CHECK_MESSAGE(named, msg);
+    }
+}

@@ -32,7 +32,7 @@ circuit_params rc_detector(const char* preset, double r_ohm, double c_f)
 characterize_settings fast_settings(double tone_hz, double m)
 {
     // A 200 kHz carrier keeps the runs short; the detector laws tested here need only R C >> 1/fc
-    // (CHECKS.md item 6), which every circuit below satisfies by a factor >= 10.
+    // (the design window 1/fc << RC << 1/fm of the standard AM detector texts), which every circuit below satisfies by a factor >= 10.
     characterize_settings s;
     s.carrier_hz = 200e3;
     s.tone_hz = tone_hz;
@@ -62,10 +62,10 @@ tone_metrics simulate_tone(const circuit_params& c, double carrier_v, double m, 
 
 TEST_CASE("square-law detection: H2/H1 approaches m/4 at a carrier far below n Vt")
 {
-    // CHECKS.md item 3 (standard AM detector analysis): a square-law detector of A(1 + m cos) gives
+    // Standard AM detector analysis (communication-systems textbooks, e.g. Haykin, Communication Systems): a square-law detector of A(1 + m cos) gives
     // A^2 (1 + 2 m cos + m^2 cos^2), so H1 = 2m, H2 = m^2/2 and H2/H1 = m/4. At 2 mV the germanium preset's
     // argument x = V / (n Vt) = 0.06; the next term of ln I0(x) = x^2/4 - x^4/64 shifts the ratio by
-    // O(x^2/4) ~ 0.1 % (derived from CHECKS.md item 1). The load pole (R_v || R_L) C ~ 3 kHz attenuates H2 at
+    // O(x^2/4) ~ 0.1 % (derived from the I0 law of Torrey & Whitmer, Crystal Rectifiers, 1948). The load pole (R_v || R_L) C ~ 3 kHz attenuates H2 at
     // 400 Hz 0.6 % more than H1 at 200 Hz, so the band is 3 %.
     const auto c = rc_detector("germanium-point-contact", 100e3, 2e-9);
     for (double m : {0.3, 0.8}) {
@@ -79,7 +79,7 @@ TEST_CASE("square-law detection: H2/H1 approaches m/4 at a carrier far below n V
 
 TEST_CASE("clipping limits: diagonal 1/sqrt(1+(wm R C)^2), negative-peak R_ac/R_dc")
 {
-    // Diagonal clipping (CHECKS.md item 4): R = 27.57 kohm, C = 10 nF + 10 pF stray, fm = 1 kHz.
+    // Diagonal clipping, m_max = 1/sqrt(1 + (wm R C)^2) (Haykin, Communication Systems; Kennedy & Davis, Electronic Communication Systems; from memory): R = 27.57 kohm, C = 10 nF + 10 pF stray, fm = 1 kHz.
     const auto c = rc_detector("small-signal-schottky", 27.57e3, 10e-9);
     const detector_network net(c);
     const auto d = diagnose_clipping(net, 1000.0, 0.3);
@@ -92,7 +92,7 @@ TEST_CASE("clipping limits: diagonal 1/sqrt(1+(wm R C)^2), negative-peak R_ac/R_
     CHECK_FALSE(d.exceeds_diagonal);
     CHECK(diagnose_clipping(net, 1000.0, 0.6).exceeds_diagonal);
 
-    // Negative-peak clipping (CHECKS.md item 5): a piezo whose motional branch (Rm, Lm, Cm) is resonant at
+    // Negative-peak clipping, m_max = R_ac / R_dc (the same texts, from memory): a piezo whose motional branch (Rm, Lm, Cm) is resonant at
     // the tone is an AC-coupled resistance Rm; with a bleeder R_b as the only DC path, R_dc = R_b and
     // R_ac = R_b || Rm, so m_max = Rm / (R_b + Rm).
     circuit_params p = c;
@@ -161,13 +161,13 @@ TEST_CASE("diagonal clipping on the simulated circuit: THD low below m_max, risi
 
 TEST_CASE("transfer curve: about 2 dB/dB at low level and about 1 dB/dB at high level")
 {
-    // CHECKS.md item 2: audio output grows as V^2 in the square-law region and as V in the linear region.
+    // Small-signal limit of the I0 law (Torrey & Whitmer 1948, derived): audio output grows as V^2 in the square-law region and as V in the linear region.
     // The low points stay below 0.14 n Vt (slope 2 - x^2/4 > 1.99, derived from the ln I0 expansion); the
     // high points are at V >> n Vt where the forward drop grows only logarithmically (slope 1 + O(n Vt / V)).
     // Bands of +-0.1 dB/dB leave room for those corrections and no more.
     //
     // Transition (derived): the square-law asymptote is audio = k_low m V^2 / (2 n Vt), with the divider
-    // k_low = R_L / (R_L + R_th), R_th = R_src + R_s + (R_v || R_leak) (CHECKS.md item 2, d/dm of
+    // k_low = R_L / (R_L + R_th), R_th = R_src + R_s + (R_v || R_leak) (small-signal limit of the I0 law, derived; d/dm of
     // k_low (V (1 + m x))^2 / (4 n Vt)); the linear asymptote is audio = eta m V with eta = cos(theta), where
     // tan(theta) - theta = pi R / R_L (peak detector with series resistance R, standard rectifier analysis,
     // from memory). They cross at V_t = 2 n Vt eta / k_low. The fitted high-level line has slope ~1.03, not
@@ -194,7 +194,7 @@ TEST_CASE("transfer curve: about 2 dB/dB at low level and about 1 dB/dB at high 
         CHECK(tc.low_slope_db_per_db == doctest::Approx(2.0).epsilon(0.05).scale(0.0));
         CHECK(tc.high_slope_db_per_db == doctest::Approx(1.0).epsilon(0.1).scale(0.0));
         CHECK(tc.transition_v == doctest::Approx(v_t).epsilon(0.1).scale(0.0));
-        // DC follows V^2 at low level (CHECKS.md item 2). At high level V_dc ~ eta V - V_drop, the diode's
+        // DC follows V^2 at low level (small-signal limit of the I0 law, derived). At high level V_dc ~ eta V - V_drop, the diode's
         // forward drop, so its log slope eta V / (eta V - V_drop) is above 1 and falls toward 1 (derived).
         CHECK(tc.low_dc_slope_db_per_db == doctest::Approx(2.0).epsilon(0.05).scale(0.0));
         CHECK(tc.high_dc_slope_db_per_db > 1.0);
@@ -207,7 +207,7 @@ TEST_CASE("transfer curve: about 2 dB/dB at low level and about 1 dB/dB at high 
 TEST_CASE("weak-signal frequency response: the corner is the load pole behind the video resistance")
 {
     // In the square-law region the detector is a source of V^2/(4 n Vt) behind its zero-bias resistance
-    // (CHECKS.md item 2): R_th = R_src + R_s + (R_v || R_leak), with R_v = n Vt / Is. With load R_L || C the
+    // (small-signal limit of the I0 law, derived): R_th = R_src + R_s + (R_v || R_leak), with R_v = n Vt / Is. With load R_L || C the
     // recovered audio then falls as a first-order low-pass with f_c = 1 / (2 pi C (R_L || R_th)) (derived).
     const auto c = rc_detector("germanium-point-contact", 100e3, 10e-9);
     const auto& d = c.diode;
@@ -258,10 +258,20 @@ TEST_CASE("carrier ripple of a peak detector: the sawtooth V_dc / (fc R C)")
     const double dv = rip.dc_v / (fc * 100e3 * cap);
     INFO("dc " << rip.dc_v << " (" << vdc << "), rms " << rip.ripple_rms_v << " (" << dv / (2 * std::sqrt(3.0)) << "), fc rms "
                << rip.harmonic_rms_v[0] << " (" << dv / (k_pi * std::sqrt(2.0)) << ")");
+    // The forward drop at the current's peak: the diode current peaks at about a (1 - cos theta) / r (the
+    // ideal-diode conduction pulse), so the drop is n Vt ln(1 + I_peak / Is) (derived from Shockley's law).
+    const double i_peak = a * (1.0 - std::cos(theta)) / r;
+    const double drop = c.diode.emission_coefficient * c.diode.thermal_voltage() *
+                        std::log1p(i_peak / c.diode.saturation_current_at_temperature());
+    MESSAGE("dc " << rip.dc_v << " V; ideal-diode " << vdc << " V less the drop " << drop << " V = " << vdc - drop << " V");
     CHECK(rip.dc_v < vdc);
-    CHECK(rip.dc_v > vdc - 0.5);
-    CHECK(rip.ripple_rms_v == doctest::Approx(dv / (2 * std::sqrt(3.0))).epsilon(0.1).scale(0.0));
-    CHECK(rip.harmonic_rms_v[0] == doctest::Approx(dv / (k_pi * std::sqrt(2.0))).epsilon(0.1).scale(0.0));
+    // Measured 2.698 V against 2.974 - 0.302 = 2.672 V: 1.0 % apart (the drop is taken at the peak current,
+    // where the diode spends little of the conduction angle); bound 2 %.
+    CHECK(rip.dc_v == doctest::Approx(vdc - drop).epsilon(0.02));
+    // Measured: RMS 5.9 % below the sawtooth's (the conduction angle rounds its edge), the fundamental
+    // 0.4 % and the second harmonic 2 % off the 1/k law; bounds 8 %, 2 % and 4 %.
+    CHECK(rip.ripple_rms_v == doctest::Approx(dv / (2 * std::sqrt(3.0))).epsilon(0.08).scale(0.0));
+    CHECK(rip.harmonic_rms_v[0] == doctest::Approx(dv / (k_pi * std::sqrt(2.0))).epsilon(0.02).scale(0.0));
     // Sawtooth harmonics fall as 1/k.
-    CHECK(rip.harmonic_rms_v[1] == doctest::Approx(rip.harmonic_rms_v[0] / 2).epsilon(0.15).scale(0.0));
+    CHECK(rip.harmonic_rms_v[1] == doctest::Approx(rip.harmonic_rms_v[0] / 2).epsilon(0.04).scale(0.0));
 }

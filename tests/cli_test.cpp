@@ -101,7 +101,7 @@ TEST_CASE("render on a bundled clip writes the WAV, metrics.json and plots; the 
 
 TEST_CASE("render of a weak tone: square-law H2/H1 = m/4, and the WAV's calibration matches metrics.json")
 {
-    // CHECKS.md item 3 [pub: square-law detection of (1 + m cos)^2]: H2/H1 = m/4 = 0.075 at m = 0.3 when the
+    // Square-law detection of A(1 + m cos)^2 (standard AM detector analysis in communication-systems textbooks, e.g. Haykin, Communication Systems; derived): H2/H1 = m/4 = 0.075 at m = 0.3 when the
     // carrier is far below n Vt (here 10 mV against n Vt ~ 33 mV; the next term of I0 changes the ratio by
     // about (V/nVt)^2/8 ~ 1 %, derived from the I0 series). A resistive earpiece and no capacitances keep
     // the load memoryless in the audio band, so the low-pass filtering does not tilt H2 against H1.
@@ -190,7 +190,7 @@ TEST_CASE("sweep: identical tables and WAVs with 1 and 3 threads; the DC falls a
         REQUIRE(fs::exists(p));
         dc.push_back(nlohmann::json::parse(slurp(p))["dc_v"].get<double>());
     }
-    // CHECKS.md item 1 [pub]: Is (I0(V/nVt) exp(-Vdc/nVt) - 1) = Vdc / RL has a root Vdc that grows with RL
+    // Torrey & Whitmer, Crystal Rectifiers, MIT Radiation Laboratory Series vol. 15, 1948 (from memory): Is (I0(V/nVt) exp(-Vdc/nVt) - 1) = Vdc / RL has a root Vdc that grows with RL
     // (the left side falls with Vdc, the right side's slope 1/RL falls with RL), so the DC is ordered.
     CHECK(dc[0] > dc[1]);
     CHECK(dc[1] > dc[2]);

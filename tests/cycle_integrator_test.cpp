@@ -217,7 +217,7 @@ circuit_params law_circuit(double is_a, double n, double rl_ohm, double c_f)
 
 TEST_CASE("rectified DC follows the exponential-diode law through the phase-locked integrator and its estimator")
 {
-    // CHECKS.md "Diode detector laws" item 1 [pub]: the DC of an exponential diode into RL || C with
+    // The I0 law (H. C. Torrey and C. A. Whitmer, Crystal Rectifiers, 1948, from memory): the DC of an exponential diode into RL || C with
     // negligible ripple. Two galena routes: (a) the full phase-locked integration, mean over whole cycles
     // after settling (RL C = 1000 periods keeps the ripple's effect on the mean below 0.05 %), and (b)
     // frozen_output_dc_v, which holds the output at the DC (no ripple at all, as the law assumes). Bound

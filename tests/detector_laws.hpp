@@ -18,7 +18,7 @@ inline const double vt_25c = k_boltzmann * (25.0 + 273.15) / k_charge;
 /// Solves Is (I0(V/(n Vt)) exp(-Vdc/(n Vt)) - 1) = Vdc / RL for Vdc (V) with TOMS 748 on the bracket
 /// y = Vdc/(n Vt) in [0, ln I0(a)]: the left side minus the right is Is (I0 - 1) > 0 at y = 0 and
 /// -ln(I0) n Vt / RL < 0 at y = ln I0, and strictly decreasing in between.
-/// [pub: Torrey & Whitmer, Crystal Rectifiers, 1948 (from memory); /work/shared/CHECKS.md item 1]
+/// [pub: H. C. Torrey and C. A. Whitmer, Crystal Rectifiers, MIT Radiation Laboratory Series vol. 15, 1948 (from memory)]
 inline double dc_law_v(double v_peak, double is_a, double n, double rl_ohm)
 {
     const double nvt = n * vt_25c;

@@ -299,5 +299,7 @@ TEST_CASE("production stepper agrees with the Boost.Odeint rosenbrock4 reference
     }
     const double rel = std::sqrt(num / den);
     MESSAGE("TR-BDF2 (40 steps/cycle) vs rosenbrock4 reference: relRMS = " << rel);
-    CHECK(rel < 1e-3);
+    // Measured 3.3e-6 (TR-BDF2 at rtol 1e-3 with the 40-steps-per-cycle bound); bound 1e-5, three times the
+    // figure, for compiler and library rounding (the reference itself is within 2.4e-7).
+    CHECK(rel < 1e-5);
 }

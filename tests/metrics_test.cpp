@@ -32,7 +32,7 @@ std::vector<double> sample(std::size_t n, auto&& f)
 
 TEST_CASE("half-wave rectified sine: DC 1/pi, H1 1/2, even harmonics 2/(pi(k^2-1)), no odd harmonics")
 {
-    // Fourier series of max(0, sin wt) (any table of Fourier series; CHECKS.md "Distortion metrics"):
+    // Fourier series of max(0, sin wt) (any table of Fourier series, e.g. a mathematics handbook):
     //   1/pi + (1/2) sin wt - (2/pi) sum_{k even} cos(k wt) / (k^2 - 1).
     // f0 = 997 Hz is not commensurate with fs, so the record holds no whole number of cycles and the aliases
     // of the (infinite) series do not land on the harmonics.
@@ -171,7 +171,7 @@ TEST_CASE("flat-top window reads an off-bin tone's amplitude within 0.02 dB")
 
 TEST_CASE("A-weighting matches IEC 61672-1:2013 Table 3 within 0.1 dB")
 {
-    // IEC 61672-1:2013, Table 3 (values copied in CHECKS.md, "A-weighting").
+    // IEC 61672-1:2013, Table 3.
     CHECK(std::fabs(a_weighting_db(100.0) - -19.1) < 0.1);
     CHECK(std::fabs(a_weighting_db(500.0) - -3.2) < 0.1);
     CHECK(std::fabs(a_weighting_db(1000.0) - 0.0) < 0.1);

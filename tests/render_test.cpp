@@ -67,9 +67,12 @@ TEST_CASE("the carrier does not reach the audio: nothing but harmonics above -70
     // Carrier components that alias through the decimation chain would appear at frequencies unrelated
     // to the 1 kHz tone (below 100 Hz sits the DC high-pass settling after the modulation shifts the
     // rectified DC, which is not aliasing). Blackman-Harris (4-term) window: sidelobes below -92 dB (Harris, Proc. IEEE 1978).
+    // The carrier, 301.37 kHz, is chosen so that its harmonics and their 1 kHz sidebands fold to
+    // frequencies away from every harmonic of the tone at 48 kHz (n fc mod 48 kHz: 13.37, 21.26, 7.89, ...
+    // kHz), so an alias cannot hide in the bins excluded around the harmonics (300 kHz folds onto 12 kHz).
     tone_modulation tone({1000.0}, {1.0}, 0.1);
     am_params am;
-    am.carrier_hz = 300e3;
+    am.carrier_hz = 301.37e3;
     am.carrier_peak_v = 2.0;
     am.modulation_index = 0.3;
     render_settings rs;

@@ -4,6 +4,8 @@
 
 #include <doctest/doctest.h>
 #include <cmath>
+#include <filesystem>
+#include <fstream>
 
 using namespace galena;
 
@@ -69,4 +71,60 @@ TEST_CASE("bad input: one message naming file, line, field, value and rule")
     CHECK_THROWS_WITH_AS(parse_scenario("[earpiece]\nkind = \"horn\"\n", "e.toml"), doctest::Contains("e.toml:2: earpiece.kind"), config_error);
     CHECK_THROWS_WITH_AS(parse_scenario("[source]\nresistance_ohm = \"big\"\n", "t.toml"), doctest::Contains("must be a number"), config_error);
     CHECK_THROWS_WITH_AS(load_scenario("/nonexistent/file.toml"), doctest::Contains("cannot open"), config_error);
+}
+
+TEST_CASE("diode.file: a fitted diode file, relative to the scenario; keys beside it override it")
+{
+    namespace fs = std::filesystem;
+    const fs::path dir = fs::path(GALENA_TEST_TMP) / "scenario_diode_file";
+    fs::remove_all(dir);
+    fs::create_directories(dir / "fits" / "b");
+    auto write = [](const fs::path& p, const std::string& text) {
+        std::ofstream f(p);
+        f << text;
+    };
+    write(dir / "fits" / "b" / "diode.toml", "# a diode file\n[diode]\nsaturation_current_a = 3e-7\nemission_coefficient = 1.25\n"
+                                           "series_resistance_ohm = 40.0\nleakage_resistance_ohm = 5e5\ntemperature_c = 21.0\n"
+                                           "nominal_temperature_c = 21.0\n");
+    const std::string base = "[signal]\ntone_hz = 1000\n[diode]\nfile = \"fits/b/diode.toml\"\n";
+    write(dir / "s.toml", base);
+    const auto s = load_scenario(dir / "s.toml");
+    CHECK(s.circuit.diode.saturation_current_a == 3e-7);
+    CHECK(s.circuit.diode.emission_coefficient == 1.25);
+    CHECK(s.circuit.diode.series_resistance_ohm == 40.0);
+    CHECK(s.circuit.diode.leakage_resistance_ohm == 5e5);
+    CHECK(s.circuit.diode.nominal_temperature_c == 21.0);
+    // Keys absent from the file take diode_params' defaults, not a preset's (no junction charge).
+    CHECK(s.circuit.diode.junction_capacitance_f == 0.0);
+    CHECK(fs::equivalent(s.diode_file, dir / "fits" / "b" / "diode.toml"));
+    // Beside it, a key overrides the file; so does --set.
+    write(dir / "s2.toml", base + "emission_coefficient = 1.5\n");
+    CHECK(load_scenario(dir / "s2.toml").circuit.diode.emission_coefficient == 1.5);
+    CHECK(load_scenario(dir / "s.toml", {"diode.series_resistance_ohm=10"}).circuit.diode.series_resistance_ohm == 10.0);
+    // A --set diode.file replaces a preset in the file; to_toml names the file and round-trips.
+    write(dir / "p.toml", "[signal]\ntone_hz = 1000\n[diode]\npreset = \"small-signal-schottky\"\n");
+    const auto sp = load_scenario(dir / "p.toml", {"diode.file=" + (dir / "fits" / "b" / "diode.toml").string()});
+    CHECK(sp.circuit.diode.saturation_current_a == 3e-7);
+    const std::string t = to_toml(sp);
+    CHECK(t.find("file = ") != std::string::npos);
+    CHECK(to_toml(parse_scenario(t, dir / "p.toml")) == t);
+    // Both in one file: an error naming the line.
+    write(dir / "both.toml", "[diode]\npreset = \"small-signal-schottky\"\nfile = \"fits/b/diode.toml\"\n");
+    CHECK_THROWS_WITH_AS(load_scenario(dir / "both.toml"), doctest::Contains("both.toml:3: diode.file and diode.preset"), config_error);
+    // Mistakes inside the diode file name the diode file and its line.
+    write(dir / "fits" / "bad.toml", "[diode]\nemission_coefficient = 1.2\nsaturation_current = 1e-7\n");
+    write(dir / "s3.toml", "[diode]\nfile = \"fits/bad.toml\"\n");
+    CHECK_THROWS_WITH_AS(load_scenario(dir / "s3.toml"),
+                         doctest::Contains("bad.toml:3: diode.saturation_current: unknown key (did you mean diode.saturation_current_a?)"),
+                         config_error);
+    write(dir / "fits" / "range.toml", "[diode]\nemission_coefficient = 12\n");
+    write(dir / "s4.toml", "[diode]\nfile = \"fits/range.toml\"\n");
+    CHECK_THROWS_WITH_AS(load_scenario(dir / "s4.toml"), doctest::Contains("range.toml:2: diode.emission_coefficient = 12: must be in [0.5, 10]"),
+                         config_error);
+    write(dir / "fits" / "other.toml", "[load]\nbleeder_ohm = 1e3\n");
+    write(dir / "s5.toml", "[diode]\nfile = \"fits/other.toml\"\n");
+    CHECK_THROWS_WITH_AS(load_scenario(dir / "s5.toml"), doctest::Contains("other.toml:1: [load]: a diode file holds only a [diode] section"),
+                         config_error);
+    write(dir / "s6.toml", "[diode]\nfile = \"fits/missing.toml\"\n");
+    CHECK_THROWS_WITH_AS(load_scenario(dir / "s6.toml"), doctest::Contains("s6.toml:2: diode.file = "), config_error);
 }

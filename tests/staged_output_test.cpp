@@ -8,6 +8,9 @@
 #include <doctest/doctest.h>
 
 #include <csignal>
+#include <fmt/format.h>
+#include <sys/wait.h>
+#include <unistd.h>
 #include <filesystem>
 #include <fstream>
 #include <sstream>
@@ -105,6 +108,77 @@ TEST_CASE("a target that is a file, or an input, is refused before anything is m
     CHECK_THROWS_WITH_AS(staged_output(d / "f.toml", true), doctest::Contains("f.toml: --out exists and is not a directory"), audio_error);
     CHECK_THROWS_WITH_AS(staged_output(d / "f.toml/out", true), doctest::Contains("cannot create the output directory"), audio_error);
     CHECK(entries(d) == 1);
+}
+
+TEST_CASE("publish checks every parent first: a file where a folder must go moves nothing")
+{
+    const fs::path d = fresh("parents");
+    fs::create_directories(d / "out");
+    write_text_atomic(d / "out/plots", "a file");
+    staged_output st(d / "out", true);
+    write_text_atomic(st.dir() / "a.txt", "A");
+    fs::create_directories(st.dir() / "plots");
+    write_text_atomic(st.dir() / "plots/p.svg", "P");
+    CHECK_THROWS_WITH_AS(st.publish(), doctest::Contains("out/plots: is a file where the output needs a folder"), audio_error);
+    CHECK_FALSE(fs::exists(d / "out/a.txt"));
+    CHECK(read(d / "out/plots") == "a file");
+}
+
+TEST_CASE("a move that fails midway is rolled back: the old set stays, no new file, no new folder")
+{
+    const fs::path d = fresh("rollback");
+    fs::create_directories(d / "out");
+    write_text_atomic(d / "out/a.txt", "old a");
+    write_text_atomic(d / "out/stale.txt", "old stale");
+    for (int fail_at = 0; fail_at < 5; ++fail_at) { // five moves: two aside, three in
+        CAPTURE(fail_at);
+        {
+            staged_output st(d / "out", true);
+            st.owns("stale.txt");
+            write_text_atomic(st.dir() / "a.txt", "new a");
+            fs::create_directories(st.dir() / "sub/deeper");
+            write_text_atomic(st.dir() / "sub/deeper/b.txt", "new b");
+            write_text_atomic(st.dir() / "c.txt", "new c");
+            detail::publish_fault_after_moves = fail_at;
+            CHECK_THROWS_WITH_AS(st.publish(), doctest::Contains("nothing was changed in"), audio_error);
+            detail::publish_fault_after_moves = -1;
+        }
+        CHECK(read(d / "out/a.txt") == "old a");
+        CHECK(read(d / "out/stale.txt") == "old stale");
+        CHECK_FALSE(fs::exists(d / "out/sub"));
+        CHECK_FALSE(fs::exists(d / "out/c.txt"));
+        CHECK(entries(d / "out") == 2);
+        CHECK(entries(d) == 1);
+    }
+    // Without a fault the same publish replaces the whole owned set.
+    staged_output st(d / "out", true);
+    st.owns("stale.txt");
+    write_text_atomic(st.dir() / "a.txt", "new a");
+    st.publish();
+    CHECK(read(d / "out/a.txt") == "new a");
+    CHECK_FALSE(fs::exists(d / "out/stale.txt"));
+    CHECK(entries(d) == 1);
+}
+
+TEST_CASE("stale stages: a dead process's stage is removed and reported; a live one is left alone")
+{
+    const fs::path d = fresh("stale");
+    (void)take_staging_notices();
+    const pid_t dead = fork();
+    if (dead == 0) _exit(0);
+    waitpid(dead, nullptr, 0);
+    const fs::path gone = d / fmt::format(".out.partial-{}-00000001", dead);
+    const fs::path live = d / fmt::format(".out.partial-{}-00000002", getppid());
+    fs::create_directories(gone);
+    fs::create_directories(live);
+    {
+        staged_output st(d / "out", false);
+    }
+    CHECK_FALSE(fs::exists(gone));
+    CHECK(fs::exists(live));
+    const auto notes = take_staging_notices();
+    REQUIRE(notes.size() == 1);
+    CHECK(notes[0].find(fmt::format("left by process {}, which no longer runs", dead)) != std::string::npos);
 }
 
 TEST_CASE("cancel: the flag is raised once, names the signal, and throws until reset")

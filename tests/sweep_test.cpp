@@ -3,9 +3,11 @@
 #include "galena/sweep.hpp"
 
 #include <doctest/doctest.h>
+#include <fmt/format.h>
 
 #include <filesystem>
 #include <string>
+#include <vector>
 
 using namespace galena;
 namespace fs = std::filesystem;
@@ -60,4 +62,80 @@ TEST_CASE("pack text: every mistake names the file and line")
     REQUIRE(p.variants.size() == 1);
     CHECK(p.variants[0].label == "v-1");
     CHECK(p.variants[0].overrides == std::vector<std::string>{"load.bleeder_ohm=1e3"});
+}
+
+TEST_CASE("engineering values in axes, labels and pack files; the pack's default measurement tone")
+{
+    // log: ranges and lists take prefixes and the key's unit; labels and names write them back.
+    const auto a = parse_sweep_axis("load.bleeder_ohm=log:10k:1M ohm:3");
+    REQUIRE(a.values.size() == 3);
+    const auto v = expand_sweep({a, parse_sweep_axis("load.filter_capacitance_f=0,4.7nF")});
+    REQUIRE(v.size() == 6);
+    CHECK(v[0].name == "01-bleeder_ohm-10k-filter_capacitance_f-0");
+    CHECK(v[3].label == "bleeder_ohm = 100k, filter_capacitance_f = 4.7n");
+    CHECK(v[5].name == "06-bleeder_ohm-1M-filter_capacitance_f-4.7n");
+    CHECK_THROWS_WITH_AS(parse_sweep_axis("load.bleeder_ohm=log:10kF:1M:3"),
+                         doctest::Contains("LO = \"10kF\": unit F does not match the key's unit, ohm"), config_error);
+    CHECK_THROWS_WITH_AS(parse_sweep_axis("bleeder_ohm=10k,47k"), doctest::Contains("(did you mean load.bleeder_ohm=10k,47k?)"),
+                         config_error);
+    CHECK_THROWS_WITH_AS(parse_variant("x:bleeder_ohm=47k"), doctest::Contains("(did you mean load.bleeder_ohm=47k?)"), config_error);
+    // Pack numbers take prefixes and units too; without measure_tone_hz the documented default applies.
+    const auto p = parse_pack("[pack]\nscenario = \"a.toml\"\nmeasure_duration_s = \"200ms\"\n[[variant]]\nname = \"v\"\n", "p.toml");
+    CHECK(p.measure_tone_hz == default_measure_tone_hz);
+    CHECK(p.measure_duration_s == 0.2);
+    CHECK(parse_pack("[pack]\nscenario = \"a.toml\"\nmeasure_tone_hz = \"400 Hz\"\n[[variant]]\nname = \"v\"\n", "p.toml").measure_tone_hz == 400.0);
+    CHECK(parse_pack("[pack]\nscenario = \"a.toml\"\nmeasure_tone_hz = 0\n[[variant]]\nname = \"v\"\n", "p.toml").measure_tone_hz == 0.0);
+    CHECK_THROWS_WITH_AS(parse_pack("[pack]\nscenario = \"a.toml\"\nmeasure_tone_hz = \"1kV\"\n[[variant]]\nname = \"v\"\n", "p.toml"),
+                         doctest::Contains("p.toml:3: pack.measure_tone_hz: unit V does not match the key's unit, Hz"), config_error);
+}
+
+TEST_CASE("pack files are told from scenarios; check loads every variant and names the one that fails")
+{
+    const fs::path dir = fs::path(GALENA_SOURCE_DIR) / "scenarios";
+    CHECK(is_pack_file(dir / "demo-pack.toml"));
+    CHECK(is_pack_file(dir / "example-pack.toml"));
+    CHECK_FALSE(is_pack_file(dir / "example.toml"));
+    CHECK_FALSE(is_pack_file(fs::path(GALENA_SOURCE_DIR) / "audio-samples/tone-1khz.wav"));
+    const pack_spec demo = load_pack(dir / "demo-pack.toml");
+    const auto scenes = load_pack_variants(demo);
+    REQUIRE(scenes.size() == demo.variants.size());
+    CHECK(scenes[1].circuit.load.bleeder_ohm == 10e3); // ge-weak-10k
+    pack_spec broken = demo;
+    broken.variants[2].overrides.push_back("load.bleeder_ohm=10nF");
+    std::string msg;
+    try {
+        (void)load_pack_variants(broken);
+    } catch (const config_error& e) {
+        msg = e.what();
+    }
+    CHECK(msg.rfind((dir / "demo-pack.toml").string() + ": variant ge-weak-47k: ", 0) == 0);
+    CHECK(msg.find("load.bleeder_ohm = '10nF': unit F does not match the key's unit, ohm") != std::string::npos);
+}
+
+TEST_CASE("sweep progress: finished variants reported once each, in variant order, with a rising work fraction")
+{
+    const fs::path out = fs::path(GALENA_TEST_TMP) / "sweep-progress";
+    fs::remove_all(out);
+    std::vector<variant_spec> variants;
+    // Unequal lengths, so that on two threads the short later variants finish before the long first one.
+    for (const char* d : {"0.3", "0.05", "0.05", "0.05", "0.2"}) variants.push_back({fmt::format("v{}", variants.size()), "", {std::string("signal.duration_s=") + d}});
+    sweep_options opt;
+    opt.threads = 2;
+    std::vector<std::string> finished;
+    std::vector<std::size_t> reported;
+    std::vector<double> fractions;
+    opt.progress = [&](const sweep_progress& p) {
+        CHECK(p.total == variants.size());
+        fractions.push_back(p.fraction);
+        if (!p.finished.empty()) {
+            finished.emplace_back(p.finished);
+            reported.push_back(p.reported);
+        }
+    };
+    (void)run_sweep(fs::path(GALENA_SOURCE_DIR) / "scenarios/example.toml", {"signal.carrier_hz=200k"}, variants, out, opt);
+    CHECK(finished == std::vector<std::string>{"v0", "v1", "v2", "v3", "v4"});
+    CHECK(reported == std::vector<std::size_t>{1, 2, 3, 4, 5});
+    REQUIRE_FALSE(fractions.empty());
+    for (std::size_t i = 1; i < fractions.size(); ++i) CHECK(fractions[i] >= fractions[i - 1]);
+    CHECK(fractions.back() == 1.0);
 }

@@ -1,21 +1,37 @@
 // galena command-line tool: argument parsing and exit codes only; all work is done by the library.
 #include "galena/cancel.hpp"
 #include "galena/components.hpp"
+#include "galena/diode_report.hpp"
 #include "galena/error.hpp"
 #include "galena/job.hpp"
 #include "galena/metrics.hpp"
 #include "galena/report.hpp"
 #include "galena/scenario.hpp"
+#include "galena/staged_output.hpp"
 #include "galena/sweep.hpp"
+#include "galena/units.hpp"
 
 #include <CLI/CLI.hpp>
+#include <cerrno>
+#include <algorithm>
 #include <chrono>
+#include <cmath>
 #include <csignal>
+#include <optional>
 #include <cstdio>
 #include <fmt/format.h>
 #include <unistd.h>
 
 namespace {
+
+/// The installed data folder: <prefix>/share/galena, with <prefix> the folder above this executable's bin/.
+std::filesystem::path installed_data_dir()
+{
+    std::error_code ec;
+    const auto exe = std::filesystem::weakly_canonical("/proc/self/exe", ec);
+    if (ec || exe.empty()) return {};
+    return exe.parent_path().parent_path() / GALENA_INSTALL_DATA_SUBDIR;
+}
 
 /// Documented exit codes (README, "Exit codes").
 enum exit_code : int {
@@ -23,6 +39,7 @@ enum exit_code : int {
     exit_usage = 2,       ///< bad command line or scenario
     exit_audio = 3,       ///< audio or output file problem
     exit_numerical = 4,   ///< the solver failed
+    exit_resource = 5,    ///< a resource ran out (memory, file descriptors, processes, FFTW plan)
     exit_internal = 70,   ///< a bug: please report
     exit_signal_base = 128, ///< stopped by signal N (Ctrl-C / SIGINT: 130, SIGTERM: 143)
 };
@@ -38,22 +55,94 @@ int report(const std::string& what, int code)
 }
 int report(const std::exception& e, int code) { return report(std::string(e.what()), code); }
 
-/// Progress of a sweep: a bar on a terminal, plain lines otherwise.
-std::function<void(std::size_t, std::size_t, const std::string&)> sweep_progress(bool quiet)
+/// Progress and status text on stderr: once a write fails (EPIPE when stderr is a pipe whose reader has
+/// gone, e.g. `2>&1 | head`), nothing more is printed and the work goes on.
+bool g_stderr_open = true;
+void progress_text(const char* text)
+{
+    if (!g_stderr_open) return;
+    if (std::fputs(text, stderr) < 0 || std::fflush(stderr) != 0) g_stderr_open = false;
+}
+
+/// Staging notices (stale stages removed, stages that could not be removed) as warnings.
+void print_staging_notices()
+{
+    for (const auto& n : galena::take_staging_notices()) {
+        std::string line = "galena: warning: " + n + "\n";
+        progress_text(line.c_str());
+    }
+}
+
+/// Wall time left, from the time spent and the share done ("about 12 s left"); empty until it means something.
+std::string time_left(double elapsed_s, double fraction)
+{
+    if (!(fraction >= 0.02) || elapsed_s < 1.0) return "estimating time left";
+    if (fraction >= 1.0) return "done";
+    const double left = elapsed_s * (1.0 - fraction) / fraction;
+    if (left < 90.0) return fmt::format("about {:.0f} s left", std::ceil(left));
+    return fmt::format("about {:.0f} min left", std::ceil(left / 60.0));
+}
+
+std::string bar(double fraction)
+{
+    const int width = 24;
+    const int filled = std::clamp(static_cast<int>(fraction * width), 0, width);
+    return "[" + std::string(static_cast<std::size_t>(filled), '#') + std::string(static_cast<std::size_t>(width - filled), '.') + "]";
+}
+
+/// Progress of a sweep: on a terminal one bar redrawn in place with the time left; otherwise one plain line
+/// per finished variant, in variant order.
+std::function<void(const galena::sweep_progress&)> sweep_progress(bool quiet)
 {
     if (quiet) return {};
     const bool tty = isatty(fileno(stderr)) != 0;
-    return [tty](std::size_t done, std::size_t total, const std::string& name) {
+    return [tty](const galena::sweep_progress& p) {
+        const int w = p.total >= 1000 ? 4 : p.total >= 100 ? 3 : 2;
         if (tty) {
-            const int width = 30;
-            const int filled = static_cast<int>(static_cast<double>(done) / static_cast<double>(total) * width);
-            std::fprintf(stderr, "\r[%s%s] %zu/%zu %-40s", std::string(static_cast<std::size_t>(filled), '#').c_str(),
-                         std::string(static_cast<std::size_t>(width - filled), '.').c_str(), done, total, name.c_str());
-            if (done == total) std::fprintf(stderr, "\n");
-        } else {
-            std::fprintf(stderr, "galena: finished %zu of %zu: %s\n", done, total, name.c_str());
+            progress_text(fmt::format("\r{} {:>{}}/{} variants {:3}%  {:<24}", bar(p.fraction), p.reported, w, p.total,
+                                      static_cast<int>(p.fraction * 100.0), time_left(p.elapsed_s, p.fraction))
+                              .c_str());
+            if (p.reported == p.total && !p.finished.empty()) progress_text("\n");
+        } else if (!p.finished.empty()) {
+            progress_text(fmt::format("galena: [{:>{}}/{}] {} done; {}\n", p.reported, w, p.total, p.finished,
+                                      time_left(p.elapsed_s, p.fraction))
+                              .c_str());
         }
     };
+}
+
+/// Progress of one render, shown only once it has run for a second: a bar with the time left on a
+/// terminal, a plain line every 10 % otherwise.
+std::function<void(double)> render_progress(bool quiet, bool& drew)
+{
+    if (quiet) return {};
+    const bool tty = isatty(fileno(stderr)) != 0;
+    const auto t0 = std::chrono::steady_clock::now();
+    return [tty, t0, &drew, last = -1](double f) mutable {
+        const double elapsed = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
+        if (elapsed < 1.0) return;
+        const int pct = static_cast<int>(f * 100.0);
+        if (pct == last || (!tty && pct / 10 == last / 10)) return;
+        last = pct;
+        drew = true;
+        if (tty) progress_text(fmt::format("\rrendering {} {:3}%  {:<24}", bar(f), pct, time_left(elapsed, f)).c_str());
+        else progress_text(fmt::format("galena: rendering {}%; {}\n", pct, time_left(elapsed, f)).c_str());
+    };
+}
+
+/// Lets a numeric option take engineering values ("1k", "300ms"), read by the library's one parser.
+CLI::Validator engineering(galena::unit u)
+{
+    return CLI::Validator(
+        [u](std::string& text) -> std::string {
+            try {
+                text = fmt::format("{:.17g}", galena::parse_quantity(text, u));
+                return {};
+            } catch (const galena::config_error& e) {
+                return fmt::format("'{}': {}", text, e.what());
+            }
+        },
+        std::string(galena::unit_symbol(u)), "engineering value");
 }
 
 /// Variants from --vary axes and --variant specs (axes first).
@@ -82,6 +171,7 @@ void print_pack(const galena::pack_outcome& o, const std::string& out_dir, doubl
 int main(int argc, char** argv)
 {
     galena::install_signal_handlers();
+    std::atexit(print_staging_notices); // after the command's own last line
     CLI::App app{"galena: time-domain simulation of the crystal-set detector stage"};
     app.require_subcommand(1);
     // Command-line mistakes cost one line too.
@@ -108,12 +198,14 @@ int main(int argc, char** argv)
     render->add_flag("--overwrite", overwrite, "replace existing output files");
     render->add_flag("--quiet,-q", quiet, "no progress output");
     render->add_flag("--allow-long", allow_long, long_help);
+    bool verbose = false;
+    render->add_flag("--verbose", verbose, "print every figure of metrics.json and the solver's, not just the summary");
 
     std::string check_path;
     std::vector<std::string> check_sets;
-    auto* check = app.add_subcommand("check", "validate a scenario without running it; print it in full");
-    check->add_option("scenario", check_path, "scenario file (TOML)")->required();
-    check->add_option("--set,-s", check_sets, "override a value: section.key=value (repeatable)");
+    auto* check = app.add_subcommand("check", "validate a scenario (and print it in full) or a pack file (and every variant), rendering nothing");
+    check->add_option("file", check_path, "scenario file or pack file (TOML)")->required();
+    check->add_option("--set,-s", check_sets, "override a value: section.key=value (repeatable; for a pack, of its base scenario)");
 
     auto* presets = app.add_subcommand("presets", "list the built-in diode presets and their parameters");
 
@@ -128,7 +220,8 @@ int main(int argc, char** argv)
     sweep->add_option("--variant", sw_variants, "a named variant NAME:section.key=value,section.key=value (repeatable)");
     sweep->add_option("--set,-s", sw_sets, "override the base: section.key=value (repeatable)");
     sweep->add_option("--threads,-j", sw_threads, "worker threads (0 = all cores)");
-    sweep->add_option("--measure-tone", sw_tone_hz, "for audio clips, also render a tone of this frequency for THD, Hz");
+    sweep->add_option("--measure-tone", sw_tone_hz, "for audio clips, also render a tone of this frequency for THD, Hz")
+        ->transform(engineering(galena::unit::hertz));
     sweep->add_flag("--overwrite", overwrite, "replace existing output files");
     sweep->add_flag("--quiet,-q", quiet, "no progress output");
     sweep->add_flag("--allow-long", allow_long, long_help);
@@ -138,8 +231,8 @@ int main(int argc, char** argv)
     std::vector<std::string> cmp_sets, cmp_vary, cmp_variants;
     unsigned cmp_threads = 0;
     bool cmp_no_curves = false;
-    double cmp_tone_hz = 1000.0;
-    double cmp_tone_s = 0.3;
+    double cmp_tone_hz = galena::default_measure_tone_hz;
+    double cmp_tone_s = galena::default_measure_duration_s;
     std::string cmp_title;
     auto* compare = app.add_subcommand("compare", "make a comparison pack: WAVs, announced playlist, plots, offline HTML page");
     compare->add_option("input", cmp_input, "a pack file ([pack] + [[variant]]) or a base scenario with --vary/--variant")->required();
@@ -149,9 +242,14 @@ int main(int argc, char** argv)
     compare->add_option("--set,-s", cmp_sets, "override the base scenario: section.key=value (repeatable)");
     compare->add_option("--threads,-j", cmp_threads, "worker threads (0 = all cores)");
     compare->add_option("--title", cmp_title, "page title");
-    compare->add_option("--measure-tone", cmp_tone_hz, "for audio clips, also render a tone of this frequency for THD, Hz (0 = off)")
-        ->capture_default_str();
-    compare->add_option("--measure-duration", cmp_tone_s, "length of that tone render, s")->capture_default_str();
+    auto* cmp_tone_opt = compare->add_option("--measure-tone", cmp_tone_hz,
+                                             "for audio clips, also render a tone of this frequency for THD, Hz (0 = off; "
+                                             "a pack file's measure_tone_hz unless given)")
+                             ->capture_default_str()
+                             ->transform(engineering(galena::unit::hertz));
+    auto* cmp_tone_s_opt = compare->add_option("--measure-duration", cmp_tone_s, "length of that tone render, s")
+                               ->capture_default_str()
+                               ->transform(engineering(galena::unit::second));
     compare->add_flag("--no-curves", cmp_no_curves, "skip the simulated response and transfer curves");
     compare->add_flag("--overwrite", overwrite, "replace existing output files");
     compare->add_flag("--quiet,-q", quiet, "no progress output");
@@ -165,6 +263,33 @@ int main(int argc, char** argv)
     demo->add_option("--threads,-j", demo_threads, "worker threads (0 = all cores)");
     demo->add_flag("--overwrite", overwrite, "replace existing output files");
     demo->add_flag("--quiet,-q", quiet, "no progress output");
+
+    // Measured diodes (issue 15): fit-diode and rank-diodes.
+    std::string fd_points, fd_out;
+    std::optional<double> fd_temperature;
+    auto* fit_diode = app.add_subcommand("fit-diode", "fit a diode model (Is, n, Rs, leakage) to measured points: DIR/diode.toml, fit.json, plot");
+    fit_diode->add_option("points", fd_points, "measurement file (CSV: voltage_v,current_a or supply_v,series_ohm,diode_v)")->required();
+    fit_diode->add_option("--out,-o", fd_out, "output directory")->required();
+    fit_diode->add_option("--temperature-c", fd_temperature, "measurement temperature, degC (default: the file's, else 25)");
+    fit_diode->add_flag("--overwrite", overwrite, "replace existing output files");
+
+    std::string rk_scenario, rk_out;
+    std::vector<std::string> rk_diodes, rk_sets;
+    unsigned rk_threads = 0;
+    double rk_tone_hz = 1000.0;
+    double rk_tone_s = 0.3;
+    auto* rank = app.add_subcommand("rank-diodes", "render one scenario with each fitted diode; rank them by detected level, with uncertainty");
+    rank->add_option("scenario", rk_scenario, "scenario file (TOML): the set and the signal level")->required();
+    rank->add_option("diodes", rk_diodes, "diode.toml files written by fit-diode (fit.json beside each gives the uncertainty)")->required();
+    rank->add_option("--out,-o", rk_out, "output directory")->required();
+    rank->add_option("--set,-s", rk_sets, "override the scenario: section.key=value (repeatable)");
+    rank->add_option("--threads,-j", rk_threads, "worker threads (0 = all cores)");
+    rank->add_option("--measure-tone", rk_tone_hz, "for audio clips, rank on a tone of this frequency, Hz (0 = the clip's RMS level)")
+        ->capture_default_str();
+    rank->add_option("--measure-duration", rk_tone_s, "length of that tone render, s")->capture_default_str();
+    rank->add_flag("--overwrite", overwrite, "replace existing output files");
+    rank->add_flag("--quiet,-q", quiet, "no progress output");
+    rank->add_flag("--allow-long", allow_long, long_help);
 
     try {
         app.parse(argc, argv);
@@ -184,7 +309,42 @@ int main(int argc, char** argv)
             }
             return exit_ok;
         }
+        if (*fit_diode) {
+            galena::fit_diode_options fo;
+            fo.temperature_c = fd_temperature;
+            fo.overwrite = overwrite;
+            const auto o = galena::run_fit_diode(fd_points, fd_out, fo);
+            fmt::print("{}wrote {}, {}{}\n", galena::fit_summary_text(o.fit), o.diode_toml.string(), o.fit_json.string(),
+                       o.plot_svg.empty() ? std::string() : " and " + o.plot_svg.string());
+            for (const auto& w : o.warnings) std::fprintf(stderr, "galena: warning: %s\n", w.c_str());
+            return exit_ok;
+        }
+        if (*rank) {
+            galena::rank_options ro;
+            ro.pack.sweep.threads = rk_threads;
+            ro.pack.sweep.overwrite = overwrite;
+            ro.pack.sweep.progress = sweep_progress(quiet);
+            ro.pack.sweep.allow_long = allow_long;
+            ro.pack.sweep.measure_tone_hz = rk_tone_hz;
+            ro.pack.sweep.measure_duration_s = rk_tone_s;
+            std::vector<std::filesystem::path> files(rk_diodes.begin(), rk_diodes.end());
+            const auto o = galena::rank_diodes(rk_scenario, rk_sets, files, rk_out, ro);
+            fmt::print("{}\nwrote {}, {} and {}\n", galena::ranking_markdown(o), o.csv.string(), o.markdown.string(), o.pack.page.string());
+            return exit_ok;
+        }
         if (*check) {
+            if (galena::is_pack_file(check_path)) {
+                const auto pack = galena::load_pack(check_path);
+                const auto scenes = galena::load_pack_variants(pack, check_sets);
+                fmt::print("pack \"{}\": base scenario {}; measurement tone {}\n", pack.title, pack.scenario.string(),
+                           pack.measure_tone_hz > 0.0 ? galena::format_quantity(pack.measure_tone_hz, galena::unit::hertz, 4, true) + ", " +
+                                                            galena::format_quantity(pack.measure_duration_s, galena::unit::second, 4, true)
+                                                      : std::string("off"));
+                for (std::size_t i = 0; i < pack.variants.size(); ++i)
+                    fmt::print("  {:<22} {}\n", pack.variants[i].name, pack.variants[i].label);
+                std::fprintf(stderr, "galena: %s is a valid pack file (%zu variants)\n", check_path.c_str(), scenes.size());
+                return exit_ok;
+            }
             const auto s = galena::load_scenario(check_path, check_sets);
             fmt::print("{}", galena::to_toml(s));
             std::fprintf(stderr, "galena: %s is valid\n", check_path.c_str());
@@ -216,14 +376,21 @@ int main(int argc, char** argv)
             po.sweep.threads = *demo ? demo_threads : cmp_threads;
             po.curves = !cmp_no_curves;
             std::filesystem::path input = cmp_input;
-            if (*demo) input = galena::find_bundled_file("scenarios/demo-pack.toml", "/proc/self/exe");
+            if (*demo) input = galena::find_bundled_file("scenarios/demo-pack.toml", "/proc/self/exe", installed_data_dir());
             if (*demo || (cmp_vary.empty() && cmp_variants.empty())) {
+                if (!*demo && !galena::is_pack_file(input)) {
+                    (void)galena::load_scenario(input, sets); // a WAV, malformed TOML or a bad key says so first
+                    throw galena::config_error(fmt::format(
+                        "{}: is a scenario without variants: compare needs --vary section.key=a,b,c, --variant "
+                        "NAME:section.key=value or a pack file ([pack] + [[variant]], README \"Pack files\")",
+                        input.string()));
+                }
                 const auto pack = galena::load_pack(input);
                 base = pack.scenario;
                 variants = pack.variants;
                 po.title = pack.title;
-                po.sweep.measure_tone_hz = pack.measure_tone_hz;
-                po.sweep.measure_duration_s = pack.measure_duration_s;
+                po.sweep.measure_tone_hz = cmp_tone_opt->count() > 0 ? cmp_tone_hz : pack.measure_tone_hz;
+                po.sweep.measure_duration_s = cmp_tone_s_opt->count() > 0 ? cmp_tone_s : pack.measure_duration_s;
                 po.note = fmt::format("Made by galena from {}.", input.filename().string());
                 po.protect.push_back(input);
             } else {
@@ -254,26 +421,36 @@ int main(int argc, char** argv)
                 }
                 return w;
             };
-            const bool tty = isatty(fileno(stderr)) != 0;
-            int last = -1;
-            if (!quiet)
-                opt.progress = [&](double f) {
-                    const int pct = static_cast<int>(f * 100.0);
-                    if (pct == last) return;
-                    if (tty) std::fprintf(stderr, "\rrendering %3d%%", pct);
-                    else if (pct % 10 == 0) std::fprintf(stderr, "rendering %d%%\n", pct);
-                    last = pct;
-                };
+            bool drew = false;
+            opt.progress = render_progress(quiet, drew);
             const auto o = galena::run_render_job(s, out_dir, opt);
-            if (!quiet && tty) std::fprintf(stderr, "\n");
-            fmt::print("{}", galena::to_text(o.metrics));
-            fmt::print("wrote {} ({} samples at {} Hz, full scale {:.3g} V peak)\n", o.wav.string(), o.render.samples,
-                       o.render.audio_rate_hz, o.full_scale_v);
-            fmt::print("peak audio {:.4g} V; simulated {:.3f} s in {:.2f} s wall ({:.2f} s per simulated s)\n", o.peak_audio_v,
-                       o.render.simulated_s, o.render.wall_s, o.render.wall_s / o.render.simulated_s);
+            if (drew && isatty(fileno(stderr)) != 0) std::fprintf(stderr, "\n");
+            if (verbose) {
+                auto figures = o.metrics;
+                figures.erase("warnings"); // shown once, below
+                fmt::print("{}", galena::to_text(figures));
+                fmt::print("simulated {:.3f} s in {:.2f} s wall ({:.2f} s per simulated s), {} steps per carrier cycle\n",
+                           o.render.simulated_s, o.render.wall_s, o.render.wall_s / o.render.simulated_s, o.render.steps_per_cycle);
+            }
+            fmt::print("{}", galena::summary_text(o, s));
+            if (!verbose) fmt::print("all figures: {} (or pass --verbose)\n", o.metrics_file.string());
+            std::fflush(stdout);
             for (const auto& w : o.warnings) std::fprintf(stderr, "galena: warning: %s\n", w.c_str());
             return exit_ok;
         }
+    } catch (const galena::resource_error& e) {
+        return report(e, exit_resource);
+    } catch (const std::bad_alloc&) {
+        return report("out of memory: an allocation failed (std::bad_alloc); free memory, raise the memory limit, or render "
+                      "a shorter programme",
+                      exit_resource);
+    } catch (const std::system_error& e) {
+        // Printing the results to a closed pipe (`| head`) after everything was written: the outputs stand.
+        if (e.code() == std::errc::broken_pipe) return exit_ok;
+        if (e.code() == std::errc::too_many_files_open || e.code() == std::errc::too_many_files_open_in_system ||
+            e.code() == std::errc::not_enough_memory || e.code() == std::errc::resource_unavailable_try_again)
+            return report(std::string("resource exhausted: ") + e.what(), exit_resource);
+        return report(e, exit_internal);
     } catch (const galena::cancelled_error& e) {
         if (!quiet && isatty(fileno(stderr)) != 0) std::fprintf(stderr, "\n");
         return report(e, exit_signal_base + (e.signal_number() != 0 ? e.signal_number() : SIGINT));

@@ -15,9 +15,10 @@ void throw_if_cancelled();
 /// Clears the flag (for tests and for programs that run several jobs).
 void reset_cancel() noexcept;
 
-/// Installs the command-line tool's handlers: SIGINT and SIGTERM call request_cancel() once and then fall
-/// back to their default action (a second Ctrl-C ends the process at once); SIGXFSZ is ignored, so a
-/// write beyond the file-size limit fails with EFBIG and is reported instead of killing the process.
+/// Installs the command-line tool's handlers: SIGINT, SIGTERM and SIGHUP call request_cancel() once and
+/// then fall back to their default action (a second Ctrl-C ends the process at once); SIGXFSZ is ignored,
+/// so a write beyond the file-size limit fails with EFBIG and is reported instead of killing the process;
+/// SIGPIPE is ignored, so a closed pipe is an EPIPE write error that the caller handles.
 void install_signal_handlers();
 
 } // namespace galena

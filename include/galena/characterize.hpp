@@ -39,7 +39,7 @@ struct settling_window {
 /// The load seen by the detector is Y(jw) = G_node + jw C_node + Y_earpiece(jw). Following requires the
 /// load current never to reverse: V (G_dc + m |Y(jwm)| cos(.)) >= 0, so the detector follows only while
 /// m <= G_dc / |Y(jwm)| (combined limit). Its two classic special cases (standard communications texts,
-/// e.g. Haykin, Communication Systems; CHECKS.md items 4 and 5):
+/// e.g. Haykin, Communication Systems; Kennedy & Davis, Electronic Communication Systems):
 /// - diagonal clipping, R C load: m_max = 1 / sqrt(1 + (wm R C)^2), with R = R_dc and C = C_node;
 /// - negative-peak clipping, AC-coupled load: m_max = R_ac / R_dc, with R_ac = 1 / Re Y_load(jwm) (the
 ///   load without C_node; the BVD motional branch is the AC-coupled part here).

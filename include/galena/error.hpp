@@ -62,6 +62,13 @@ private:
     double m_time_s;
 };
 
+/// A resource ran out: memory, file descriptors, processes, or FFTW could not make a plan. The message
+/// names what ran out and where; it is not a bug in the input or in galena (README "Exit codes": 5).
+class resource_error : public error {
+public:
+    using error::error;
+};
+
 /// The work was stopped on request (Ctrl-C / SIGINT, SIGTERM, or a caller's cancel) before it finished.
 /// Every output it had started is removed before this reaches the caller.
 class cancelled_error : public error {

@@ -20,6 +20,10 @@ namespace galena {
 /// every render of the command (a sweep's variants and tone measurements). At the default 1 MHz carrier the
 /// solver runs about ten times slower than real time, so this is some twenty minutes of wall time.
 inline constexpr double long_render_limit_s = 120.0;
+/// Solver steps (carrier cycles x steps per cycle, preroll included) that one command may take without
+/// `--allow-long`: 120 s of programme at the default 1 MHz carrier and N = 32 (about 40 s of wall time at
+/// the measured 10 ns per step on one core). Catches a high carrier or a stiff diode whose programme is short.
+inline constexpr double long_render_limit_steps = 3.84e9;
 
 struct job_outcome;
 
@@ -43,7 +47,7 @@ struct job_outcome {
     std::filesystem::path normalised_wav;  ///< empty unless the calibrated WAV clipped
     std::filesystem::path sidecar;         ///< JSON with the calibration and solver figures
     double full_scale_v = 0.0;
-    double peak_audio_v = 0.0;             ///< largest |audio| (DC removed), V
+    double peak_audio_v = 0.0;             ///< largest |audio| written (DC removed, fades applied), V
     std::size_t clipped_samples = 0;       ///< in the calibrated WAV
     double normalised_gain_db = 0.0;       ///< gain applied in the normalised copy, dB
     render_result render;
@@ -85,6 +89,13 @@ job_outcome run_render_job(const scenario& s, const std::filesystem::path& out_d
 job_outcome render_job_into(const scenario& s, const std::filesystem::path& dir, const job_options& opt,
                             double analysis_limit_s = 60.0);
 
+/// A few lines for a person after a render (the library prints nothing; the CLI prints these): the file
+/// written with its length, rate, format and full scale; the level (RMS, A-weighted, peak, DC); THD, THD+N
+/// and SINAD when the programme is a tone; the clipping note when the calibrated WAV clipped. Values in
+/// engineering notation ("41.3 mV"). Warnings are not included: they are in o.warnings, for the caller to
+/// show once. The full figures are in o.metrics (metrics.json).
+[[nodiscard]] std::string summary_text(const job_outcome& o, const scenario& s);
+
 /// Output file names of one render job, relative to its directory.
 [[nodiscard]] const std::vector<std::string>& job_file_names();
 
@@ -98,10 +109,15 @@ void relocate(job_outcome& o, const staged_output& staged);
 /// machine, s: a short pilot render (30 ms of simulated time, tone programme) gives the wall seconds per
 /// simulated second, which is scaled by the programme plus each render's automatic preroll and divided
 /// among `threads` workers. An estimate: the solver's step count depends on the programme.
+/// Throws config_error naming `where` and signal.duration_s when the programme is shorter than the
+/// settling window plus 64 samples that the metrics need: refused before anything is rendered.
+void check_measurable(const scenario& s, const std::string& where);
+
 [[nodiscard]] double estimate_render_wall_s(const scenario& s, double programme_s, std::size_t renders = 1, unsigned threads = 1);
 
-/// Throws config_error naming `where`, the programme length, the limit and the estimated wall time when
-/// programme_s > long_render_limit_s and !allow_long; `flag` names the opt-in ("--allow-long").
+/// Throws config_error naming `where`, the work, the limits and the estimated wall time when !allow_long
+/// and either programme_s > long_render_limit_s or the solver steps (carrier cycles x steps per cycle,
+/// the latter from a pilot render when it matters) exceed long_render_limit_steps.
 void check_render_length(const scenario& s, const std::string& where, double programme_s, std::size_t renders,
                          unsigned threads, bool allow_long);
 

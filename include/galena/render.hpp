@@ -79,9 +79,15 @@ struct render_result {
     std::vector<std::string> warnings;
 };
 
-/// Automatic preroll: five output time constants, clamped to [5 ms, 0.25 s] (the DC high-pass absorbs
+/// Automatic preroll: five output time constants, clamped to [5 ms, 0.25 s] and at least the audio chain's
+/// start-up (audio_chain_warm_up_s; the DC high-pass absorbs
 /// slower drift), rounded up to a whole number of audio samples.
 [[nodiscard]] double automatic_preroll_s(const detector_network& net, double audio_rate_hz);
+
+/// Start-up of the audio chain's decimating FIR at `audio_rate_hz`, s: outputs before this time still hold
+/// its empty history, so any preroll must be at least this long ((L - 4) / (4 fs) for L taps: 1.47 ms at
+/// 48 kHz, 8.8 ms at 8 kHz). The automatic preroll never falls below it.
+[[nodiscard]] double audio_chain_warm_up_s(double audio_rate_hz);
 
 /// Runs the simulation of `programme` through the network, delivering programme-aligned audio to `sink`.
 /// @param am carrier and modulation settings; its preroll/ramp fields are set by this function

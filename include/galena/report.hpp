@@ -5,6 +5,7 @@
 #include "galena/sweep.hpp"
 
 #include <filesystem>
+#include <functional>
 #include <string>
 #include <vector>
 
@@ -66,8 +67,11 @@ std::vector<matched_gain> write_loudness_matched(const std::vector<std::filesyst
                                                  const std::vector<std::string>& names, const std::filesystem::path& dir,
                                                  wav_format format, double target_rms_dbfs = -26.0);
 
-/// Runs gnuplot on `script` (text) with `work_dir` as its current directory. Throws audio_error naming the
-/// script file when gnuplot is missing or fails (its stderr is kept in work_dir/gnuplot.log).
+/// Runs gnuplot on `script` (text) with `work_dir` as its current directory (posix_spawn, not system()).
+/// While it runs the cancel flag is polled; on a cancel gnuplot is sent SIGTERM and cancelled_error thrown.
+/// Throws audio_error naming the script file, gnuplot's exit code or signal and the last line of its
+/// stderr (kept in work_dir/STEM.log) when it fails or is missing; resource_error when it cannot be started
+/// for a process, memory or file limit, or was killed by a resource signal (SIGKILL, SIGXCPU, SIGSEGV, ...).
 void run_gnuplot(const std::string& script, const std::filesystem::path& work_dir, const std::string& stem);
 
 /// Draws the pack's plots into `dir` as NAME.svg and NAME.png: zoom (carrier band, envelope and earpiece
@@ -90,6 +94,7 @@ struct pack_page {
     std::vector<matched_gain> matched;
     std::vector<std::string> plot_stems;        ///< SVGs in dir/plots, inlined
     std::string note;                           ///< free text under the title
+    std::string extra_html;                     ///< HTML placed under the note (e.g. a ranking); trusted
 };
 
 /// The page as HTML: inline SVG plots, <audio> players with relative links, the metrics, gains and
@@ -104,6 +109,11 @@ struct pack_options {
     std::string title = "galena comparison";
     std::string note;
     std::vector<std::filesystem::path> protect; ///< more files never to be replaced (the pack file)
+    /// Optional: called after the variants are rendered with the sweep and the staging folder, before the
+    /// page is written; what it writes there is published with the pack, the HTML it returns goes on the
+    /// page under the note. `extra_outputs` (relative names) are checked for clashes before rendering.
+    std::function<std::string(sweep_result&, const std::filesystem::path& staged_dir)> extras;
+    std::vector<std::string> extra_outputs;
 };
 
 /// Everything a pack wrote.

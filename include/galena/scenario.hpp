@@ -8,11 +8,13 @@
 #include "galena/front_end.hpp"
 #include "galena/render.hpp"
 #include "galena/signal.hpp"
+#include "galena/units.hpp"
 #include "galena/stations.hpp"
 
 #include <filesystem>
 #include <memory>
 #include <string>
+#include <string_view>
 #include <vector>
 
 namespace galena {
@@ -34,7 +36,9 @@ struct programme_spec {
     double tone_ratio = 4.0;         ///< amplitude ratio tone : tone2 (two-tone)
     double sweep_start_hz = 50.0;    ///< Hz
     double sweep_stop_hz = 5000.0;   ///< Hz
-    double duration_s = 0.5;         ///< tone length, or clip length limit (0 = whole clip), s
+    /// Test-signal length, s (default 0.5); for a clip a limit on its length, 0 = the whole clip (the
+    /// default for a clip: parse_scenario sets 0 when a clip is given without signal.duration_s).
+    double duration_s = 0.5;
     double audio_cutoff_hz = 5000.0; ///< band limit of clip audio, Hz
 };
 
@@ -57,6 +61,7 @@ struct station_spec {
 /// A complete, validated scenario.
 struct scenario {
     std::filesystem::path file;      ///< where it came from (empty for built-in)
+    std::filesystem::path diode_file; ///< diode.file: the diode file the diode came from (absolute), or empty
     programme_spec programme;
     am_params am;
     circuit_params circuit;
@@ -70,12 +75,35 @@ struct scenario {
 };
 
 /// Parses and validates a scenario file, then applies `overrides` ("section.key=value", TOML value syntax;
-/// bare words are taken as strings). Throws config_error "FILE:LINE: section.key = value: rule" on any
-/// problem, with a suggestion for unknown keys.
+/// bare words are taken as strings). Numeric keys take numbers or engineering text with the key's unit
+/// (parse_quantity: "47k", "10nF"). Throws config_error "FILE:LINE: section.key = value: rule" on any
+/// problem, with a suggestion for unknown keys, for a key given without its section, and for a value that
+/// a missing SI prefix or a percentage made invalid ("did you mean 1000e3 or 1000k?"). An audio file given
+/// as the scenario is refused with the way to use it as the clip.
 [[nodiscard]] scenario load_scenario(const std::filesystem::path& file, const std::vector<std::string>& overrides = {});
 /// Parses scenario text (file is used only in messages and to resolve relative paths).
 [[nodiscard]] scenario parse_scenario(const std::string& text, const std::filesystem::path& file,
                                       const std::vector<std::string>& overrides = {});
+
+/// One key of the scenario contract, from the key table that reads and writes it.
+struct scenario_key {
+    std::string field;     ///< "section.key"
+    unit u = unit::none;   ///< the unit a value may carry (numeric keys)
+    bool numeric = false;  ///< takes a number (or engineering text); otherwise a string or true/false
+};
+/// Every key of the contract, sorted by field.
+[[nodiscard]] const std::vector<scenario_key>& scenario_keys();
+/// The unit of the numeric key `field` ("load.bleeder_ohm" -> unit::ohm). Throws config_error for an
+/// unknown key (naming the nearest) or a key that is not numeric.
+[[nodiscard]] unit key_unit(std::string_view field);
+/// The valid fields nearest to `text`, given with or without its section ("bleeder_ohm" ->
+/// {"load.bleeder_ohm"}; "resistance_ohm" -> both sections that have it); empty when none is close.
+[[nodiscard]] std::vector<std::string> suggest_fields(std::string_view text);
+
+/// Throws config_error when `text` (the contents of `file`) is not TOML but an audio file that libsndfile
+/// opens, saying so and how to use it as a scenario's clip; `expected` names the file kind ("scenario",
+/// "pack"). Returns quietly otherwise (the caller's parser reports any other problem).
+void refuse_audio_file(const std::filesystem::path& file, const std::string& text, std::string_view expected);
 
 /// Builds the modulation the scenario describes (opens the audio file for clips). Errors about the clip
 /// (audio_error, config_error) name the clip's file.

@@ -125,7 +125,8 @@ public:
     [[nodiscard]] double duration_s() const noexcept override { return m_duration_s; }
     void prepare(double t0_s, double t1_s) override;
     /// Gain applied to reach peak 1 (input full scale -> x), dimensionless.
-    [[nodiscard]] double normalisation_gain() const noexcept { return m_gain; }
+    /// The overall gain from the clip's raw samples to the normalised programme (peak 1).
+    [[nodiscard]] double normalisation_gain() const noexcept { return m_input_gain * m_gain; }
     [[nodiscard]] double internal_rate_hz() const noexcept { return m_rate_hz; }
     /// The band limit plus its FIR's transition band, Hz.
     [[nodiscard]] double max_frequency_hz() const noexcept override { return 1.1 * m_cutoff_hz; }
@@ -135,7 +136,8 @@ private:
     std::unique_ptr<pipeline> m_pipe;
     double m_duration_s = 0.0;
     double m_rate_hz = 0.0;
-    double m_gain = 1.0;
+    double m_input_gain = 1.0; ///< 1 / raw peak, applied before filtering
+    double m_gain = 1.0;       ///< 1 / conditioned peak (of the input-scaled signal)
     double m_cutoff_hz = 5000.0;
     std::vector<float> m_buf;   // samples [m_buf_first, m_buf_first + m_buf.size())
     std::size_t m_buf_first = 0;

@@ -12,6 +12,12 @@
 
 namespace galena {
 
+namespace detail {
+/// Tests only: publish() fails the move after this many successful ones (-1, the default: never), so that
+/// the roll-back can be exercised.
+extern int publish_fault_after_moves;
+} // namespace detail
+
 class staged_output {
 public:
     /// Creates the staging folder `.NAME.partial-XXXXXXXX` beside `target` (creating the target's missing
@@ -40,10 +46,20 @@ public:
     /// Early check for one output, relative to the target: throws audio_error when it names an input, or
     /// exists and overwrite is off. Lets a command refuse before it spends time rendering.
     void check(const std::filesystem::path& relative) const;
-    /// Moves every staged file into the target. All files are checked first (inputs, existing files
-    /// without overwrite); on a clash nothing is moved. A target that does not exist yet is created by one
-    /// rename of the staging folder. Throws audio_error.
+    /// Declares a file or folder (relative to the target) that belongs to this command's output set. With
+    /// overwrite, publish() moves an existing one out of the way even when this run did not make it (e.g.
+    /// `recovered-normalised.wav` of an earlier clipped render), so the target holds exactly the new set.
+    void owns(const std::filesystem::path& relative) { m_owned.push_back(relative); }
+    /// Moves every staged file into the target. Every path is checked first, parents included (inputs,
+    /// existing files without overwrite, a file where a folder must go, a folder where a file must go); on
+    /// a clash nothing is moved. A target that does not exist yet is created by one rename of the staging
+    /// folder. Into an existing target, replaced files and owned leftovers are first moved aside into the
+    /// stage, then the new files moved in; a move that fails midway is rolled back (new files out, old ones
+    /// back), so the target is either the old set or the new one. Throws audio_error.
     void publish();
+
+    /// Name prefix of staging folders beside `target` (".NAME.partial-").
+    [[nodiscard]] static std::string staging_prefix(const std::filesystem::path& target);
 
 private:
     std::filesystem::path m_target;
@@ -51,10 +67,16 @@ private:
     std::filesystem::path m_created_parent; ///< the highest parent folder this object created, if any
     bool m_overwrite;
     std::vector<std::filesystem::path> m_inputs;
+    std::vector<std::filesystem::path> m_owned;
     bool m_published = false;
 };
 
-/// Runs `work` and rethrows its audio_error or config_error with staged.describe() applied, so messages
+/// Notices about staging folders (one line each): a stale stage of a process that no longer runs that was
+/// removed, or one that could not be removed (with the system's reason). The library never prints;
+/// the caller (the CLI) shows these as warnings. Taking them empties the list. Thread-safe.
+[[nodiscard]] std::vector<std::string> take_staging_notices();
+
+/// Runs `work` and rethrows its audio_error, config_error or resource_error with staged.describe() applied, so messages
 /// name the target rather than the staging folder; other errors pass unchanged.
 template <class Work>
 void with_described_errors(const staged_output& staged, Work&& work)
@@ -65,6 +87,8 @@ void with_described_errors(const staged_output& staged, Work&& work)
         throw audio_error(staged.describe(e.what()));
     } catch (const config_error& e) {
         throw config_error(staged.describe(e.what()));
+    } catch (const resource_error& e) {
+        throw resource_error(staged.describe(e.what()));
     }
 }
 

@@ -10,6 +10,7 @@
 #include <functional>
 #include <nlohmann/json.hpp>
 #include <string>
+#include <string_view>
 #include <vector>
 
 namespace galena {
@@ -33,7 +34,15 @@ struct variant_spec {
     std::string name;                    ///< directory-safe: [A-Za-z0-9._-], unique in a sweep
     std::string label;                   ///< for humans (tables, page)
     std::vector<std::string> overrides;  ///< "section.key=value", applied after the base overrides
+    /// Where each override was written ("pack.toml:12"), for messages; empty for command-line variants.
+    std::vector<std::string> origins;
 };
+
+/// Names galena itself gives to files and folders in a sweep's or pack's output folder (tables, page,
+/// playlists, the loudness-matched folder, plots). A variant may not be named like one of these (compared
+/// without regard to case, for case-insensitive file systems), nor start with '.' (staging and temporary
+/// files), so no variant folder can collide with them.
+[[nodiscard]] const std::vector<std::string>& reserved_output_names();
 
 /// Parses "NAME:key=value,key=value" (NAME directory-safe). Throws config_error otherwise.
 [[nodiscard]] variant_spec parse_variant(const std::string& spec);
@@ -51,26 +60,42 @@ inline constexpr std::size_t sweep_hard_limit = 1000;
 /// Formats an SI value compactly for names and labels: 47000 -> "47k", inf -> "none", 1e-8 -> "10n".
 [[nodiscard]] std::string short_si(double v);
 
-/// A comparison pack described in a file (TOML):
+/// The tone a clip variant is also rendered with for its distortion figures, unless a pack or the
+/// command line says otherwise, Hz (1 kHz: the common-practice receiver test tone).
+inline constexpr double default_measure_tone_hz = 1000.0;
+/// Length of that tone render, s.
+inline constexpr double default_measure_duration_s = 0.3;
+
+/// A comparison pack described in a file (TOML; README "Pack files"):
 /// ```toml
 /// [pack]
 /// title = "..."                # page title
 /// scenario = "base.toml"       # base scenario, relative to this file
-/// measure_tone_hz = 1000       # optional: for clip programmes, also measure each variant with this tone
+/// measure_tone_hz = 1000       # optional (default 1 kHz; 0 = off): for clip programmes, also measure each
+///                              # variant with this tone
 /// measure_duration_s = 0.3     # length of that tone render, s
 /// [[variant]]
 /// name = "ge-weak-47k"
 /// label = "germanium, weak carrier, 47k bleeder"
-/// set = ["load.bleeder_ohm=47e3", "signal.carrier_peak_v=0.1"]
+/// set = ["load.bleeder_ohm=47k", "signal.carrier_peak_v=100m"]
 /// ```
 struct pack_spec {
     std::filesystem::path file;
     std::string title;
     std::filesystem::path scenario;  ///< resolved
-    double measure_tone_hz = 0.0;    ///< 0 = measure the programme itself
-    double measure_duration_s = 0.3; ///< s; (0, 10]
+    double measure_tone_hz = default_measure_tone_hz;       ///< Hz; 0 = measure the programme itself
+    double measure_duration_s = default_measure_duration_s; ///< s; (0, 10]
     std::vector<variant_spec> variants;
 };
+
+/// True when `file` is TOML holding a [pack] section or [[variant]] tables (a pack file rather than a
+/// scenario); false for anything else, unreadable or malformed files included (their loader reports).
+[[nodiscard]] bool is_pack_file(const std::filesystem::path& file);
+
+/// Loads the pack's base scenario with `base_overrides` and each variant's overrides, as a sweep would
+/// before rendering, and returns the scenarios in variant order (for `galena check`). Throws config_error
+/// naming the variant, the file and line or the override, the field and the rule.
+[[nodiscard]] std::vector<scenario> load_pack_variants(const pack_spec& pack, const std::vector<std::string>& base_overrides = {});
 
 /// Reads a pack file. Throws config_error "FILE:LINE: field: rule" (unknown sections and keys, wrong
 /// types and out-of-range values included).
@@ -84,14 +109,25 @@ struct pack_spec {
 [[nodiscard]] std::filesystem::path find_bundled_file(const std::filesystem::path& relative, const std::filesystem::path& executable,
                                                       const std::filesystem::path& installed_data_dir = {});
 
+/// One progress report of a sweep. Reports of finished variants come in variant order, each once (a
+/// variant finished early on another thread is reported when those before it are); ticks in between
+/// report the share of the work done. The library formats nothing: the caller draws a bar or lines.
+struct sweep_progress {
+    double fraction = 0.0;        ///< share of the sweep's programme time rendered (tone measurements included), 0..1
+    double elapsed_s = 0.0;       ///< wall time since the sweep started, s
+    std::size_t reported = 0;     ///< variants reported finished so far (in variant order)
+    std::size_t total = 0;        ///< variants in the sweep
+    std::string_view finished;    ///< name of the variant this report finishes; empty for a tick
+};
+
 /// Options of a sweep run.
 struct sweep_options {
     unsigned threads = 0;            ///< worker threads; 0 = std::thread::hardware_concurrency()
     bool overwrite = false;          ///< replace existing output files
     double measure_tone_hz = 0.0;    ///< > 0: clip variants are also rendered as this tone for metrics
-    double measure_duration_s = 0.3; ///< length of that tone render, s
-    /// Called (serialised) after each variant with (finished, total, variant name).
-    std::function<void(std::size_t, std::size_t, const std::string&)> progress;
+    double measure_duration_s = default_measure_duration_s; ///< length of that tone render, s
+    /// Optional: called (serialised, from worker threads) as the sweep advances. See sweep_progress.
+    std::function<void(const sweep_progress&)> progress;
     bool allow_large = false;        ///< render more than sweep_confirm_limit variants
     bool allow_long = false;         ///< render more than long_render_limit_s of programme in all
 };
@@ -133,7 +169,7 @@ struct sweep_result {
 [[nodiscard]] sweep_result prepare_sweep(const std::filesystem::path& base_file, const std::vector<std::string>& base_overrides,
                                          const std::vector<variant_spec>& variants, const sweep_options& opt);
 /// Refuses early when an output of the prepared sweep (a table, a variant's files) clashes in `staged`.
-void check_sweep_outputs(const sweep_result& res, const staged_output& staged);
+void check_sweep_outputs(const sweep_result& res, staged_output& staged);
 /// Step two: renders the prepared variants into `dir` (an existing folder the caller stages) and writes the
 /// tables there. Throws as run_sweep.
 void render_sweep(sweep_result& res, const std::filesystem::path& dir, const sweep_options& opt);

@@ -1,11 +1,18 @@
-# Installs galena into a scratch prefix and builds a consumer against it with find_package(galena).
+# Installs galena into a scratch prefix, builds a consumer against it with find_package(galena) and runs it
+# (it renders through the installed library), then runs the installed tool's `demo` from a folder outside
+# the source tree, so that it must find its bundled data under PREFIX/share/galena.
 file(REMOVE_RECURSE ${WORK_DIR})
 execute_process(COMMAND ${CMAKE_COMMAND} --install ${BINARY_DIR} --prefix ${WORK_DIR}/prefix RESULT_VARIABLE rc)
 if(NOT rc EQUAL 0)
   message(FATAL_ERROR "install failed")
 endif()
+foreach(internal validate.hpp)
+  if(EXISTS ${WORK_DIR}/prefix/include/galena/${internal})
+    message(FATAL_ERROR "internal header ${internal} was installed")
+  endif()
+endforeach()
 execute_process(COMMAND ${CMAKE_COMMAND} -S ${SOURCE_DIR}/tests/consumer -B ${WORK_DIR}/build
-  -DCMAKE_PREFIX_PATH=${WORK_DIR}/prefix RESULT_VARIABLE rc)
+  -DCMAKE_PREFIX_PATH=${WORK_DIR}/prefix -DCMAKE_BUILD_TYPE=Release RESULT_VARIABLE rc)
 if(NOT rc EQUAL 0)
   message(FATAL_ERROR "consumer configure failed")
 endif()
@@ -13,8 +20,17 @@ execute_process(COMMAND ${CMAKE_COMMAND} --build ${WORK_DIR}/build RESULT_VARIAB
 if(NOT rc EQUAL 0)
   message(FATAL_ERROR "consumer build failed")
 endif()
-execute_process(COMMAND ${WORK_DIR}/build/consumer RESULT_VARIABLE rc OUTPUT_VARIABLE out)
+execute_process(COMMAND ${WORK_DIR}/build/consumer ${WORK_DIR}/render RESULT_VARIABLE rc OUTPUT_VARIABLE out)
 message(STATUS "consumer says: ${out}")
 if(NOT rc EQUAL 0)
   message(FATAL_ERROR "consumer run failed")
+endif()
+if(EXISTS ${WORK_DIR}/prefix/bin/galena)
+  file(MAKE_DIRECTORY ${WORK_DIR}/elsewhere)
+  execute_process(COMMAND ${CMAKE_COMMAND} -E env --unset=GALENA_DATA_DIR ${WORK_DIR}/prefix/bin/galena demo --out ${WORK_DIR}/elsewhere/demo
+    WORKING_DIRECTORY ${WORK_DIR}/elsewhere RESULT_VARIABLE rc OUTPUT_VARIABLE out ERROR_VARIABLE err)
+  if(NOT rc EQUAL 0 OR NOT EXISTS ${WORK_DIR}/elsewhere/demo/index.html)
+    message(FATAL_ERROR "installed galena demo failed (${rc}): ${err}")
+  endif()
+  message(STATUS "installed galena demo wrote ${WORK_DIR}/elsewhere/demo/index.html")
 endif()

@@ -65,6 +65,9 @@ seeds = {
     "float-extensible-4ch.wav": wav(3, 4, 44100, 32, f32(sine(4 * 64, 1000, 44100)), extensible=True),
     "float-nan-middle.wav": wav(3, 1, 8000, 32, f32(s[:100] + [float("nan")] + s[101:])),
     "float-inf.wav": wav(3, 1, 8000, 32, f32([float("inf")] + s[1:])),
+    # Found by wav_fuzz: finite samples near FLT_MAX overflowed the conditioning's float stages to NaN.
+    "found-float-huge-finite.wav": wav(3, 1, 8000, 32, f32([x * 6.0e38 for x in s])),
+    "float-subnormal.wav": wav(3, 1, 8000, 32, f32([x * 1e-39 for x in s])),
     "pcm16-truncated.wav": wav(1, 1, 8000, 16, pcm16(s)[:200], data_size=2 * n),
     "pcm16-zero-frames.wav": wav(1, 1, 8000, 16, b""),
     "pcm16-rate-100hz.wav": wav(1, 1, 100, 16, pcm16(s)),
@@ -179,6 +182,34 @@ format = 24
 """,
     "malformed.toml": """[signal
 carrier_hz = = 3
+""",
+    "engineering-values.toml": """[signal]
+tone_hz = "1kHz"
+carrier_hz = "1 MHz"
+carrier_peak_v = "300mV"
+duration_s = "200ms"
+[source]
+resistance_ohm = "20k ohm"
+[diode]
+junction_capacitance_f = "0.5pF"
+saturation_current_a = "2uA"
+temperature_c = "25°C"
+[load]
+bleeder_ohm = "47kΩ"
+filter_capacitance_f = "1nF"
+[earpiece]
+capacitance_f = "10 nF"
+@set load.bleeder_ohm=2.2M
+@set signal.modulation_index=30
+@set bleeder_ohm=47k
+@set earpiece.leakage_ohm=10nF
+""",
+    "diode-file.toml": """[signal]
+tone_hz = 1000
+[diode]
+file = "no-such-diode.toml"
+emission_coefficient = 1.4
+@set diode.file=/dev/null
 """,
 }
 for name, text in scenarios.items():
