@@ -727,7 +727,7 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
                         throw config_error(fmt::format("{}: {}: unknown key{}", kw, field,
                                                        near.empty() ? "" : fmt::format(" (did you mean station.{}?)", near)));
                     }
-                    kt->second(s, node, field, kw);
+                    kt->second.set(s, node, field, kw);
                 }
                 auto& sp = s.stations.back();
                 try {
