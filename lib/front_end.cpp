@@ -269,7 +269,11 @@ receiver_network build_receiver_network(const circuit_params& circuit, const ant
         net.add_resistor(r.detector_node, anode, circuit.diode.series_resistance_ohm);
     }
     r.output_node = net.add_node("earpiece");
-    net.set_junction(anode, r.output_node, circuit.diode.junction_capacitance_f);
+    // The linear part of the junction charge: Cj at junction_linear_reverse_v of reverse bias, so that the
+    // nonlinear remainder q(v) - C_lin v has a positive slope over every bias a receiver reaches (a negative
+    // remainder made the integrator's backward-Euler treatment of it unstable).
+    const double c_lin = circuit.diode.junction_capacitance_f > 0.0 ? diode_model(circuit.diode).capacitance_f(-junction_linear_reverse_v) : 0.0;
+    net.set_junction(anode, r.output_node, c_lin);
     stamp_load(net, r.output_node, circuit.load, circuit.earpiece);
     return r;
 }

@@ -67,6 +67,7 @@ rf_integrator::rf_integrator(const state_space& ss, int input, const junction_la
                          -(t + 1.0) * t * (t - 2.0) / 2.0, (t + 1.0) * t * (t - 1.0) / 6.0});
     }
     m_env.assign(4 * stations.size(), 0.0);
+    for (int k = 1; k <= m_n; ++k) m_ref_phasor.push_back(std::polar(1.0, -two_pi * static_cast<double>(k) / m_n));
     m_v_prev.assign(static_cast<std::size_t>(m_n), 0.0);
     m_x = Eigen::VectorXd::Zero(n);
     m_tmp = Eigen::VectorXd::Zero(n);
@@ -170,6 +171,37 @@ double rf_integrator::solve_junction(double alpha, double beta, double v, double
 
 void rf_integrator::advance_cycle(std::span<double> out)
 {
+    // Fixed-size kernels for the usual state counts (a whole receiver has 4 to 14 states).
+    switch (m_x.size()) {
+    case 2: run_cycle<2>(out); break;
+    case 3: run_cycle<3>(out); break;
+    case 4: run_cycle<4>(out); break;
+    case 5: run_cycle<5>(out); break;
+    case 6: run_cycle<6>(out); break;
+    case 7: run_cycle<7>(out); break;
+    case 8: run_cycle<8>(out); break;
+    case 9: run_cycle<9>(out); break;
+    case 10: run_cycle<10>(out); break;
+    case 11: run_cycle<11>(out); break;
+    case 12: run_cycle<12>(out); break;
+    case 13: run_cycle<13>(out); break;
+    case 14: run_cycle<14>(out); break;
+    default: run_cycle<Eigen::Dynamic>(out); break;
+    }
+}
+
+template <int N>
+void rf_integrator::run_cycle(std::span<double> out)
+{
+    using vec = Eigen::Matrix<double, N, 1>;
+    using row = Eigen::Matrix<double, 1, N>;
+    using mat = Eigen::Matrix<double, N, N>;
+    const auto n = m_x.size();
+    const Eigen::Map<const mat> phi(m_phi.data(), n, n);
+    const Eigen::Map<const vec> g0(m_g0.data(), n), g1(m_g1.data(), n);
+    const Eigen::Map<const row> pc(m_pc.data(), n);
+    vec x = Eigen::Map<const vec>(m_x.data(), n);
+    vec t(n);
     const std::size_t c = m_cycle;
     load_envelopes(c);
     const std::size_t ns = m_src->size();
@@ -193,14 +225,13 @@ void rf_integrator::advance_cycle(std::span<double> out)
         p[s] = std::polar(1.0, two_pi * (cyc - std::floor(cyc)));
         e_prev[s] = m_env[4 * s + 1];
     }
-    const double beta = m_pc.dot(m_g1) + m_pdj;
+    const double beta = pc.dot(g1) + m_pdj;
     const std::size_t no = m_out_c.size();
-    std::fill(m_out_mean.begin(), m_out_mean.end(), 0.0);
     for (std::size_t o = 0; o < no; ++o) m_out_mean[o] = 0.5 * m_out_last[o];
     double v_before = m_v_prev[static_cast<std::size_t>(m_n - 1)];
     for (int k = 0; k < m_n; ++k) {
-        m_tmp.noalias() = m_phi * m_x;
-        m_tmp += m_g0 * m_j;
+        t.noalias() = phi * x;
+        t += g0 * m_j;
         double u1 = 0.0;
         const auto& w = m_lag[static_cast<std::size_t>(k + 1)];
         for (std::size_t s = 0; s < ns; ++s) {
@@ -209,39 +240,39 @@ void rf_integrator::advance_cycle(std::span<double> out)
             const double e1 = w[0] * e[0] + w[1] * e[1] + w[2] * e[2] + w[3] * e[3];
             const double de = (e1 - e0) / m_h;
             const double pr = p[s].real(), pi_ = p[s].imag();
-            m_tmp += (e0 * pr) * m_w0r[s] - (e0 * pi_) * m_w0i[s] + (de * pr) * m_w1r[s] - (de * pi_) * m_w1i[s];
+            t += (e0 * pr) * Eigen::Map<const vec>(m_w0r[s].data(), n) - (e0 * pi_) * Eigen::Map<const vec>(m_w0i[s].data(), n) +
+                 (de * pr) * Eigen::Map<const vec>(m_w1r[s].data(), n) - (de * pi_) * Eigen::Map<const vec>(m_w1i[s].data(), n);
             p[s] *= m_rot[s];
             u1 += e1 * p[s].real();
             e_prev[s] = e1;
         }
-        const double alpha = m_pc.dot(m_tmp) + m_pd * u1;
+        const double alpha = pc.dot(t) + m_pd * u1;
         const auto kk = static_cast<std::size_t>(k);
         const double old = m_v_prev[kk];
         const double guess = old + (m_v - v_before);
         v_before = old;
         double j1 = 0.0;
         const double v1 = solve_junction(alpha, beta, guess, j1);
-        m_tmp += m_g1 * j1;
-        m_x.swap(m_tmp);
+        x = t + g1 * j1;
         m_v = v1;
         m_j = j1;
         m_v_prev[kk] = v1;
-        ++m_stats.steps;
         for (std::size_t o = 0; o < no; ++o) {
-            const double y = m_out_c[o].dot(m_x) + m_out_du[o] * u1 + m_out_dj[o] * j1;
+            const double y = Eigen::Map<const row>(m_out_c[o].data(), n).dot(x) + m_out_du[o] * u1 + m_out_dj[o] * j1;
             m_out_mean[o] += k + 1 == m_n ? 0.5 * y : y;
             m_out_peak[o] = std::max(m_out_peak[o], std::fabs(y));
             if (!out.empty()) out[o * static_cast<std::size_t>(m_n) + kk] = y;
             if (k + 1 == m_n) m_out_last[o] = y;
         }
         if (m_phasors) {
-            const std::complex<double> q = std::polar(1.0, -two_pi * static_cast<double>(k + 1) / m_n);
-            m_v_phasor += v1 * q;
-            m_j_phasor += j1 * q;
+            m_v_phasor += v1 * m_ref_phasor[kk];
+            m_j_phasor += j1 * m_ref_phasor[kk];
         }
     }
+    m_stats.steps += static_cast<std::size_t>(m_n);
+    Eigen::Map<vec>(m_x.data(), n) = x;
     for (std::size_t o = 0; o < no; ++o) m_out_mean[o] /= m_n;
-    if (!std::isfinite(m_v) || !m_x.allFinite())
+    if (!std::isfinite(m_v) || !x.allFinite())
         throw integration_error(fmt::format("the receiver's state became non-finite near t = {:.9g} s", time_s()), time_s());
     ++m_cycle;
 }

@@ -46,6 +46,11 @@ inline constexpr double tap_section_coupling = 0.99;
 /// a node without any linear path of its own.
 inline constexpr double tap_stray_capacitance_f = 1e-12;
 
+/// Reverse bias, V, at which the junction's depletion capacitance is taken as its linear part (the network holds
+/// Cj(-10 V) as an ordinary capacitor; the integrator treats q(v) - Cj(-10 V) v, increasing for v > -10 V, as
+/// the nonlinear remainder).
+inline constexpr double junction_linear_reverse_v = 10.0;
+
 /// The tuned circuit.
 struct tuner_params {
     tuner_layout layout = tuner_layout::bench;
@@ -88,7 +93,8 @@ struct receiver_network {
 };
 
 /// Builds the network of a whole receiver. The diode's series resistance is a resistor, its depletion
-/// capacitance Cj0 a linear capacitor across the port (the rest of its charge stays nonlinear).
+/// capacitance at junction_linear_reverse_v a linear capacitor across the port (the rest of its charge stays
+/// nonlinear).
 /// Throws config_error for invalid parts or a coupling the coil sections cannot hold (not positive definite).
 [[nodiscard]] receiver_network build_receiver_network(const circuit_params& circuit, const antenna_params& antenna,
                                                       const tuner_params& tuner);

@@ -41,13 +41,14 @@ struct rf_stats {
 ///     that polynomial (the phi-function form of an exponential integrator, Hochbruck & Ostermann 2010).
 ///   - x1 = e^{Ah} x0 + stations + g0 j0 + g1 j1; the port voltage v1 = c_p x1 + d_p u1 + d_pj j1.
 /// The junction law closes the step: j1 = i(v1) + (q_r(v1) - q_r(v0)) / h, where q_r = q - C_lin v is the
-/// part of the junction's charge that the network does not hold as the linear capacitor C_lin = Cj0 (backward
+/// part of the junction's charge that the network does not hold as the linear capacitor C_lin (backward
 /// Euler on that small remainder only; the trapezoidal charge form j1 = 2 dq_r/h - j0 + ... was tried and
 /// rings without bound against the exact network: its (-1)^k mode is undamped and the exponential
 /// discretisation does not cancel it). One monotone scalar equation in v1: Newton with a bisection fallback
 /// on a bracket, stopped when the quadratic estimate of the remaining error is below the tolerance.
 /// The discretisation error is that of the junction current's piecewise-linear form (second order) and of
-/// the nonlinear remainder of the junction charge (first order, on a fraction of Cj0); the linear network,
+/// the nonlinear remainder of the junction charge (first order). The remainder must have a positive slope
+/// (C(v) >= C_lin, see front_end.hpp): backward Euler on a negative remainder was measured unstable. The linear network,
 /// the tuned circuit's resonance and every carrier are exact.
 /// Not for networks without a junction port, or sources other than AM stations.
 class rf_integrator {
@@ -92,6 +93,8 @@ private:
     [[nodiscard]] double envelope_at_cycle(std::size_t station, long long c) const noexcept;
     void load_envelopes(std::size_t c);
     double solve_junction(double alpha, double beta, double v_guess, double& j1);
+    template <int N>
+    void run_cycle(std::span<double> out);
 
     const station_source* m_src;
     junction_law m_law;
@@ -110,6 +113,7 @@ private:
     std::vector<double> m_env;                                // per station: envelope at cycles c-1 .. c+2
     std::vector<Eigen::RowVectorXd> m_out_c;
     std::vector<double> m_out_du, m_out_dj, m_out_mean, m_out_peak, m_out_last;
+    std::vector<std::complex<double>> m_ref_phasor;           // e^{-j 2 pi k / N}, k = 1..N
     std::vector<double> m_v_prev; // port voltage at each phase of the previous cycle (predictor)
     Eigen::VectorXd m_x, m_tmp;
     double m_v = 0.0, m_j = 0.0, m_i0 = 0.0, m_qr0 = 0.0;

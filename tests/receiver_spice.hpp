@@ -1,0 +1,130 @@
+// The whole-receiver circuits written as ngspice netlists from their element values, the way the front end
+// documents them (front_end.hpp): shared by tests/receiver_reference_test.cpp and benchmarks/bench_receiver.cpp.
+#pragma once
+
+#include "galena/front_end.hpp"
+
+#include <fmt/format.h>
+
+#include <algorithm>
+#include <cmath>
+#include <cstdlib>
+#include <filesystem>
+#include <fstream>
+#include <sstream>
+#include <string>
+#include <vector>
+
+namespace galena_test {
+using namespace galena;
+namespace fs = std::filesystem;
+// Independent constants: the test does not take them from galena/constants.hpp.
+constexpr double k_pi = 3.14159265358979323846;
+constexpr double k_tap = 0.99;       // section coupling the front end documents (front_end.hpp)
+constexpr double k_tap_stray = 1e-12; // tap stray capacitance it documents, F
+
+inline std::string num(double v) { return fmt::format("{:.17g}", v); }
+
+struct station_case {
+    double carrier_hz, emf_peak_v, m, tone_hz;
+};
+
+/// Antenna: EMF -- C -- R -- terminal (no series L); the detector as D with RS = 0 after an explicit Rs.
+struct receiver_case {
+    std::string name;
+    /// (steps per cycle, bound on the waveform relRMS) pairs to check; the bounds are the measured figures
+    /// rounded up, so a regression shows.
+    std::vector<std::pair<int, double>> checks;
+    circuit_params circuit;
+    antenna_params antenna;
+    tuner_params tuner;
+    std::vector<station_case> stations;
+};
+
+/// The netlist, written from the element values the way the front end documents them.
+inline std::string netlist(const receiver_case& rc, double t_end, double max_step, const fs::path& out)
+{
+    std::ostringstream s;
+    s << "* galena whole-receiver reference: " << rc.name << "\n";
+    s << "B1 e 0 V = 0";
+    for (const auto& st : rc.stations)
+        s << " + " << num(st.emf_peak_v) << "*(1+" << num(st.m) << "*sin(" << num(2 * k_pi * st.tone_hz) << "*time))*cos("
+          << num(2 * k_pi * st.carrier_hz) << "*time)";
+    s << "\n";
+    const auto& a = rc.antenna;
+    const auto& t = rc.tuner;
+    // Antenna: EMF -- C -- R -- terminal (no series L in these cases).
+    s << "Ca e am " << num(a.capacitance_f) << "\nRa am ant " << num(a.resistance_ohm) << "\n";
+    std::string det = "ant";
+    if (t.layout == tuner_layout::untuned) {
+        s << "Rdc ant 0 " << num(t.dc_return_ohm) << "\n";
+    } else {
+        const double c_tune = 1.0 / (std::pow(2.0 * k_pi * t.tuned_hz, 2) * t.coil_h);
+        const double loss = 2.0 * k_pi * t.tuned_hz * t.coil_h / t.coil_q;
+        std::vector<double> fr{0.0, t.detector_tap, 1.0};
+        if (t.layout == tuner_layout::single_coil) fr.push_back(t.antenna_tap);
+        std::sort(fr.begin(), fr.end());
+        fr.erase(std::unique(fr.begin(), fr.end()), fr.end());
+        auto node = [&](double f) {
+            if (f == 0.0) return std::string("0");
+            return f == 1.0 ? std::string("top") : fmt::format("tap{}", static_cast<int>(std::lround(f * 1000)));
+        };
+        const std::size_t ns = fr.size() - 1;
+        std::vector<double> n(ns);
+        double sq = 0.0, cross = 0.0;
+        for (std::size_t i = 0; i < ns; ++i) n[i] = fr[i + 1] - fr[i];
+        for (std::size_t i = 0; i < ns; ++i) {
+            sq += n[i] * n[i];
+            for (std::size_t j = i + 1; j < ns; ++j) cross += n[i] * n[j];
+        }
+        const double sc = t.coil_h / (sq + 2.0 * k_tap * cross);
+        for (std::size_t i = 0; i < ns; ++i) {
+            double link = n[i] * n[i];
+            for (std::size_t j = 0; j < ns; ++j)
+                if (j != i) link += k_tap * n[i] * n[j];
+            s << "L" << i << " " << node(fr[i + 1]) << " x" << i << " " << num(sc * n[i] * n[i]) << "\n";
+            s << "R" << i << " x" << i << " " << node(fr[i]) << " " << num(loss * sc * link / t.coil_h) << "\n";
+            if (fr[i] > 0.0) s << "Cs" << i << " " << node(fr[i]) << " 0 " << num(k_tap_stray) << "\n";
+        }
+        for (std::size_t i = 0; i < ns; ++i)
+            for (std::size_t j = i + 1; j < ns; ++j) s << "K" << i << "_" << j << " L" << i << " L" << j << " " << num(k_tap) << "\n";
+        s << "Ct top 0 " << num(c_tune) << "\n";
+        if (t.layout == tuner_layout::single_coil) {
+            s << "Rant_tap ant " << node(t.antenna_tap) << " 1e-6\n";
+        } else {
+            const double la_loss = 2.0 * k_pi * t.tuned_hz * t.antenna_coil_h / t.antenna_coil_q;
+            s << "La ant xa " << num(t.antenna_coil_h) << "\nRla xa 0 " << num(la_loss) << "\n";
+            for (std::size_t i = 0; i < ns; ++i) s << "Ka_" << i << " La L" << i << " " << num(t.coupling) << "\n";
+        }
+        det = node(t.detector_tap);
+    }
+    const diode_params& d = rc.circuit.diode;
+    s << "Rs " << det << " j " << num(d.series_resistance_ohm) << "\nD1 j b dmod\n";
+    s << "Cb b 0 " << num(rc.circuit.load.filter_capacitance_f + rc.circuit.load.stray_capacitance_f + rc.circuit.earpiece.capacitance_f) << "\n";
+    s << "Rb b 0 " << num(rc.circuit.load.bleeder_ohm) << "\n";
+    s << ".model dmod D(IS=" << num(d.saturation_current_a) << " N=" << num(d.emission_coefficient) << " RS=0 CJO="
+      << num(d.junction_capacitance_f) << " VJ=" << num(d.junction_potential_v) << " M=" << num(d.grading_coefficient) << " FC=0.5)\n";
+    s << ".options reltol=1e-6 abstol=1e-15 vntol=1e-9 gmin=1e-18 temp=25 tnom=25\n";
+    s << ".tran " << num(max_step) << " " << num(t_end) << " 0 " << num(max_step) << " uic\n";
+    s << ".control\nset wr_singlescale\nset numdgt=15\nrun\nwrdata " << out.string() << " v(b)\nquit 0\n.endc\n.end\n";
+    return s.str();
+}
+
+/// Runs ngspice in batch mode; returns an empty string on success, else what went wrong.
+inline std::string run_ngspice(const fs::path& dir, const std::string& net, std::vector<double>& t, std::vector<double>& v, double t_end)
+{
+    const fs::path cir = dir / "circuit.cir", log = dir / "ngspice.log", out = dir / "out.txt";
+    fs::remove(out);
+    std::ofstream(cir) << net;
+    if (std::system("command -v ngspice > /dev/null 2>&1") != 0)
+        return "ngspice not found on PATH: this needs the Debian package ngspice (CI installs it)";
+    const int rc = std::system(fmt::format("ngspice -b '{}' > '{}' 2>&1", cir.string(), log.string()).c_str());
+    std::ifstream in(out);
+    double a = 0.0, b = 0.0;
+    while (in >> a >> b) t.push_back(a), v.push_back(b);
+    if (rc != 0 || t.size() < 100 || t.back() < t_end * (1.0 - 1e-9))
+        return fmt::format("ngspice failed or did not finish (rc {}); see {}", rc, log.string());
+    return {};
+}
+
+} // namespace galena_test
