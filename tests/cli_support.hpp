@@ -28,6 +28,43 @@ inline std::string slurp(const fs::path& p)
     return ss.str();
 }
 
+/// A fresh, empty folder `root/name`.
+inline fs::path fresh_dir(const fs::path& root, const std::string& name)
+{
+    const fs::path d = root / name;
+    fs::remove_all(d);
+    fs::create_directories(d);
+    return d;
+}
+
+/// A path quoted for the shell command line galena_cli builds.
+inline std::string q(const fs::path& p) { return "'" + p.string() + "'"; }
+
+inline void write_file(const fs::path& p, const std::string& text)
+{
+    std::ofstream out(p, std::ios::binary | std::ios::trunc);
+    out << text;
+}
+
+/// A quick tone scenario: 50 ms of 1 kHz on a 200 kHz carrier, 16 kHz output, seven lines with [signal]
+/// last. `extra` is appended as is (bare keys land in [signal], on line 8).
+inline std::string quick_scenario(const std::string& extra = "")
+{
+    return "[output]\nsample_rate_hz = 16000\n[signal]\ntest_signal = \"tone\"\ntone_hz = 1000\nduration_s = 0.05\n"
+           "carrier_hz = 200e3\n" +
+           extra;
+}
+
+/// Any staging folder or temporary file (".NAME.partial-XXXXXXXX") under dir.
+inline std::vector<fs::path> leftovers(const fs::path& dir)
+{
+    std::vector<fs::path> found;
+    std::error_code ec;
+    for (auto it = fs::recursive_directory_iterator(dir, ec); !ec && it != fs::recursive_directory_iterator(); it.increment(ec))
+        if (it->path().filename().string().find(".partial-") != std::string::npos) found.push_back(it->path());
+    return found;
+}
+
 struct run_result {
     int rc = -1;
     std::string out, err;

@@ -30,45 +30,18 @@
 namespace fs = std::filesystem;
 using galena_test::galena_cli;
 using galena_test::run_result;
+using galena_test::leftovers;
+using galena_test::q;
+using galena_test::quick_scenario;
 using galena_test::slurp;
+using galena_test::write_file;
 
 namespace {
 
 const fs::path src_dir = GALENA_SOURCE_DIR;
 const fs::path tmp_root = fs::path(GALENA_TEST_TMP) / "hardening";
 
-fs::path fresh(const std::string& name)
-{
-    const fs::path d = tmp_root / name;
-    fs::remove_all(d);
-    fs::create_directories(d);
-    return d;
-}
-
-std::string q(const fs::path& p) { return "'" + p.string() + "'"; }
-
-void write_file(const fs::path& p, const std::string& text)
-{
-    std::ofstream out(p, std::ios::binary | std::ios::trunc);
-    out << text;
-}
-
-/// 50 ms of 1 kHz on a 200 kHz carrier at 16 kHz, [signal] last (extra keys land in [signal]).
-std::string quick_scenario(const std::string& extra = "")
-{
-    return "[output]\nsample_rate_hz = 16000\n[signal]\ntest_signal = \"tone\"\ntone_hz = 1000\nduration_s = 0.05\n"
-           "carrier_hz = 200e3\n" +
-           extra;
-}
-
-std::vector<fs::path> leftovers(const fs::path& dir)
-{
-    std::vector<fs::path> found;
-    std::error_code ec;
-    for (auto it = fs::recursive_directory_iterator(dir, ec); !ec && it != fs::recursive_directory_iterator(); it.increment(ec))
-        if (it->path().filename().string().find(".partial-") != std::string::npos) found.push_back(it->path());
-    return found;
-}
+fs::path fresh(const std::string& name) { return galena_test::fresh_dir(tmp_root, name); }
 
 /// Exit code, one line on stderr, every needle present, no staging folder under `work`.
 void expect_error(const run_result& r, int rc, std::initializer_list<std::string> needles, const fs::path& work)

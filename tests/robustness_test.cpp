@@ -32,47 +32,18 @@
 namespace fs = std::filesystem;
 using galena_test::galena_cli;
 using galena_test::run_result;
+using galena_test::leftovers;
+using galena_test::q;
+using galena_test::quick_scenario;
 using galena_test::slurp;
+using galena_test::write_file;
 
 namespace {
 
 const fs::path src_dir = GALENA_SOURCE_DIR;
 const fs::path tmp_root = fs::path(GALENA_TEST_TMP) / "robustness";
 
-fs::path fresh(const std::string& name)
-{
-    const fs::path d = tmp_root / name;
-    fs::remove_all(d);
-    fs::create_directories(d);
-    return d;
-}
-
-std::string q(const fs::path& p) { return "'" + p.string() + "'"; }
-
-void write_file(const fs::path& p, const std::string& text)
-{
-    std::ofstream out(p, std::ios::binary | std::ios::trunc);
-    out << text;
-}
-
-/// A quick tone scenario: 50 ms of 1 kHz on a 200 kHz carrier, 16 kHz output, seven lines with [signal]
-/// last. `extra` is appended as is (bare keys land in [signal], on line 8).
-std::string quick_scenario(const std::string& extra = "")
-{
-    return "[output]\nsample_rate_hz = 16000\n[signal]\ntest_signal = \"tone\"\ntone_hz = 1000\nduration_s = 0.05\n"
-           "carrier_hz = 200e3\n" +
-           extra;
-}
-
-/// Any staging folder (".NAME.partial-XXXXXXXX") or temporary file (".NAME.partial-XXXXXXXX") under dir.
-std::vector<fs::path> leftovers(const fs::path& dir)
-{
-    std::vector<fs::path> found;
-    std::error_code ec;
-    for (auto it = fs::recursive_directory_iterator(dir, ec); !ec && it != fs::recursive_directory_iterator(); it.increment(ec))
-        if (it->path().filename().string().find(".partial-") != std::string::npos) found.push_back(it->path());
-    return found;
-}
+fs::path fresh(const std::string& name) { return galena_test::fresh_dir(tmp_root, name); }
 
 /// The refusal contract: exit code, one line on stderr starting "galena: error: ", every needle present,
 /// the output folder absent and no staging folder or temporary file anywhere in `work`.
