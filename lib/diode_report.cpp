@@ -36,21 +36,6 @@ std::string gp_quote(const std::string& s)
     return o;
 }
 
-std::string html_text(const std::string& s)
-{
-    std::string o;
-    for (char c : s) {
-        switch (c) {
-        case '&': o += "&amp;"; break;
-        case '<': o += "&lt;"; break;
-        case '>': o += "&gt;"; break;
-        case '"': o += "&quot;"; break;
-        default: o += c;
-        }
-    }
-    return o;
-}
-
 std::string g4(double v) { return std::isfinite(v) ? fmt::format("{:.4g}", v) : std::string("-"); }
 
 } // namespace
@@ -430,18 +415,18 @@ rank_outcome rank_diodes(const fs::path& scenario_file, const std::vector<std::s
             if (ec) throw audio_error(fmt::format("{}: cannot copy into the pack: {}", svg.string(), ec.message()));
             fits_html += fmt::format("<figure><img src=\"fits/{0}.svg\" alt=\"fit of diode {0}\" style=\"max-width:100%\"><figcaption>diode "
                                      "{0}: {1}</figcaption></figure>\n",
-                                     rd.letter, html_text(rd.diode_file.string()));
+                                     rd.letter, html_escape(rd.diode_file.string()));
         }
-        std::string h = "<h2>Ranking</h2>\n<p><strong>" + html_text(out.advice) + "</strong></p>\n<table>\n<tr><th>rank</th><th>diode</th>"
+        std::string h = "<h2>Ranking</h2>\n<p><strong>" + html_escape(out.advice) + "</strong></p>\n<table>\n<tr><th>rank</th><th>diode</th>"
                         "<th>file</th><th>level, dBV</th><th>+- 1 sigma, dB</th><th>THD, %</th><th>note</th></tr>\n";
         for (std::size_t k = 0; k < out.ranking.size(); ++k) {
             const auto& rd = out.ranking[k];
             h += fmt::format("<tr><td>{}</td><td>{}</td><td>{}</td><td>{:.2f}</td><td>{}</td><td>{}</td><td>{}</td></tr>\n", k + 1, rd.letter,
-                             html_text(rd.diode_file.string()), rd.level_dbv, g4(rd.level_sigma_db), g4(rd.thd_percent),
-                             html_text(rd.note));
+                             html_escape(rd.diode_file.string()), rd.level_dbv, g4(rd.level_sigma_db), g4(rd.thd_percent),
+                             html_escape(rd.note));
         }
         h += "</table>\n<ul>\n";
-        for (const auto& v : out.verdicts) h += "<li>" + html_text(v) + "</li>\n";
+        for (const auto& v : out.verdicts) h += "<li>" + html_escape(v) + "</li>\n";
         h += "</ul>\n" + fits_html;
         return h;
     };

@@ -33,8 +33,6 @@ namespace galena {
 
 namespace fs = std::filesystem;
 
-namespace {
-
 std::string html_escape(const std::string& s)
 {
     std::string o;
@@ -49,6 +47,8 @@ std::string html_escape(const std::string& s)
     }
     return o;
 }
+
+namespace {
 
 std::string gp_escape(const std::string& s)
 {

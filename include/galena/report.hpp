@@ -67,6 +67,9 @@ std::vector<matched_gain> write_loudness_matched(const std::vector<std::filesyst
                                                  const std::vector<std::string>& names, const std::filesystem::path& dir,
                                                  wav_format format, double target_rms_dbfs = -26.0);
 
+/// Text escaped for HTML element content and attribute values (& < > ").
+[[nodiscard]] std::string html_escape(const std::string& s);
+
 /// Runs gnuplot on `script` (text) with `work_dir` as its current directory (posix_spawn, not system()).
 /// While it runs the cancel flag is polled; on a cancel gnuplot is sent SIGTERM and cancelled_error thrown.
 /// Throws audio_error naming the script file, gnuplot's exit code or signal and the last line of its
