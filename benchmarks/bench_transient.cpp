@@ -11,6 +11,7 @@
 // Usage: bench_transient [accuracy_ms = 2] [timing_ms = 200]
 #include "galena/circuit.hpp"
 #include "galena/cycle_integrator.hpp"
+#include "galena/step_count.hpp"
 #include "galena/integrator.hpp"
 #include "galena/reference_integrator.hpp"
 #include "galena/render.hpp"

@@ -47,6 +47,11 @@ void throw_if_cancelled()
     throw cancelled_error(fmt::format("interrupted by {}: stopped before finishing; no output was written", signal_name(c)), c);
 }
 
+void cancel_token::throw_if_requested() const
+{
+    if (requested()) throw cancelled_error("cancelled: stopped before finishing; no output was written", 0);
+}
+
 void install_signal_handlers()
 {
     struct sigaction sa{};

@@ -381,6 +381,7 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
         std::vector<double> faded;
         const audio_sink sink = [&](const audio_block& b) {
             throw_if_cancelled();
+            if (opt.cancel != nullptr) opt.cancel->throw_if_requested();
             if (opt.stop != nullptr && opt.stop->load())
                 throw cancelled_error("stopped: another render of this command failed first", 0);
             faded.assign(b.audio_v.begin(), b.audio_v.end());

@@ -682,7 +682,7 @@ void render_sweep(sweep_result& res, const fs::path& out_dir, const sweep_option
     auto work = [&] {
         for (;;) {
             const std::size_t i = next.fetch_add(1);
-            if (i >= count || failed.load() || cancel_requested()) return;
+            if (i >= count || failed.load() || cancel_requested() || (opt.cancel != nullptr && opt.cancel->requested())) return;
             try {
                 auto& r = res.variants[i];
                 std::error_code ec;
@@ -691,6 +691,7 @@ void render_sweep(sweep_result& res, const fs::path& out_dir, const sweep_option
                 job_options jo;
                 jo.overwrite = opt.overwrite;
                 jo.stop = &failed;
+                jo.cancel = opt.cancel;
                 if (opt.progress) jo.progress = [&, i](double f) { tick(i, f * main_s[i]); };
                 r.job = render_job_into(r.scene, r.dir, jo);
                 r.metrics = r.job.metrics;
@@ -760,6 +761,7 @@ void render_sweep(sweep_result& res, const fs::path& out_dir, const sweep_option
         }
     }
     throw_if_cancelled();
+    if (opt.cancel != nullptr) opt.cancel->throw_if_requested();
     write_text_atomic(res.csv, table_csv(res.variants));
     write_text_atomic(res.markdown, table_markdown(res.variants));
 }

@@ -5,6 +5,7 @@
 // at a tight tolerance, through galena's reference_integrator).
 #include "galena/circuit.hpp"
 #include "galena/cycle_integrator.hpp"
+#include "galena/step_count.hpp"
 #include "galena/integrator.hpp"
 #include "galena/reference_integrator.hpp"
 #include "galena/signal.hpp"

@@ -4,6 +4,7 @@
 // detector against Boost.Odeint's rosenbrock4.
 #include "galena/circuit.hpp"
 #include "galena/cycle_integrator.hpp"
+#include "galena/step_count.hpp"
 #include "galena/render.hpp"
 #include "galena/components.hpp"
 #include "galena/integrator.hpp"

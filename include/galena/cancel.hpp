@@ -1,9 +1,35 @@
-/// Cooperative cancellation: one process-wide flag that a signal handler may set (async-signal-safe) and
-/// that long-running work polls between blocks, so Ctrl-C stops a render or sweep cleanly: the work
-/// unwinds, its staged outputs are removed, and the caller sees a cancelled_error.
+/// Cooperative cancellation: per-work tokens (cancel_token: one render, job or sweep stops, the others run
+/// on) and one process-wide flag that a signal handler may set (async-signal-safe). Long-running work polls
+/// between blocks, so a cancel stops it cleanly: the work unwinds, its staged outputs are removed, and the
+/// caller sees a cancelled_error.
 #pragma once
 
+#include <atomic>
+
 namespace galena {
+
+/// A cancel request for one piece of work (a receiver, a job, a sweep). Any thread may call request();
+/// the work polls requested() between blocks and throws cancelled_error. Independent of the process-wide
+/// flag below: cancelling one token stops only the work that polls it. Not copyable (the work and the
+/// canceller share one object); it must outlive the work that polls it.
+class cancel_token {
+public:
+    cancel_token() = default;
+    cancel_token(const cancel_token&) = delete;
+    cancel_token& operator=(const cancel_token&) = delete;
+
+    /// Asks the work to stop. Thread-safe and lock-free (async-signal-safe as well).
+    void request() noexcept { m_requested.store(true); }
+    /// True once request() has been called (and until reset()).
+    [[nodiscard]] bool requested() const noexcept { return m_requested.load(std::memory_order_relaxed); }
+    /// Throws cancelled_error ("cancelled: ...", signal 0) when requested; otherwise nothing.
+    void throw_if_requested() const;
+    /// Clears the request (before the work is run again).
+    void reset() noexcept { m_requested.store(false); }
+
+private:
+    std::atomic<bool> m_requested{false};
+};
 
 /// Asks every running render, sweep and pack to stop. Async-signal-safe (a lock-free atomic store).
 /// @param signal_number the signal that asked (SIGINT, SIGTERM), or 0 for a programmatic cancel

@@ -2,6 +2,7 @@
 /// when the calibrated one would clip, a JSON sidecar and the metrics — every file written atomically.
 #pragma once
 
+#include "galena/cancel.hpp"
 #include "galena/render.hpp"
 #include "galena/scenario.hpp"
 #include "galena/staged_output.hpp"
@@ -39,6 +40,9 @@ struct job_options {
     std::function<std::vector<warning>(const job_outcome&, const std::filesystem::path& staged_dir)> extras;
     /// Optional: polled between solver blocks; once true the render stops with cancelled_error.
     const std::atomic<bool>* stop = nullptr;
+    /// Optional: this job's own cancel token (non-owning), polled with the process-wide flag between solver
+    /// blocks; a request stops this job alone with cancelled_error.
+    const cancel_token* cancel = nullptr;
 };
 
 /// What a job wrote and measured.
@@ -78,7 +82,7 @@ struct job_outcome {
 /// published together (staged_output), so on any failure or cancel no output file is left behind. Refuses
 /// to replace the scenario file or its audio input (even with overwrite), and existing outputs unless
 /// opt.overwrite; refuses a programme longer than long_render_limit_s unless opt.allow_long.
-/// Polls cancel_requested() between solver blocks. Throws config_error, audio_error, integration_error,
+/// Polls cancel_requested() and opt.cancel between solver blocks. Throws config_error, audio_error, integration_error,
 /// cancelled_error.
 /// @param analysis_limit_s at most this much of the earpiece voltage is kept in analysis_v, s
 job_outcome run_render_job(const scenario& s, const std::filesystem::path& out_dir, const job_options& opt,

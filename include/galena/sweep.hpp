@@ -128,6 +128,9 @@ struct sweep_options {
     double measure_duration_s = default_measure_duration_s; ///< length of that tone render, s
     /// Optional: called (serialised, from worker threads) as the sweep advances. See sweep_progress.
     std::function<void(const sweep_progress&)> progress;
+    /// Optional: this sweep's own cancel token (non-owning), polled with the process-wide flag between
+    /// variants and solver blocks; a request stops this sweep alone with cancelled_error.
+    const cancel_token* cancel = nullptr;
     bool allow_large = false;        ///< render more than sweep_confirm_limit variants
     bool allow_long = false;         ///< render more than long_render_limit_s of programme in all
 };
