@@ -2,6 +2,7 @@
 
 #include "galena/constants.hpp"
 #include "galena/error.hpp"
+#include "galena/junction_law_eval.hpp"
 #include "galena/monotone_root.hpp"
 #include "galena/validate.hpp"
 
@@ -60,7 +61,7 @@ template <bool Breakdown, bool Charge, bool SquareRoot>
 {
     for (int i = 1; i <= n; ++i) {
         const double v = vp[i];
-        const junction_values r = law.template evaluate_as<Breakdown, Charge, SquareRoot>(v);
+        const junction_values r = detail::evaluate_law<Breakdown, Charge, SquareRoot>(law, v);
         cap[i] = r.capacitance_f;
         g[i] = r.conductance_s;
         qa[i] = r.charge_c - r.capacitance_f * v;

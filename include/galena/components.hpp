@@ -5,8 +5,6 @@
 /// The models are stateless; the circuit module turns them into state equations.
 #pragma once
 
-#include "galena/vector_math.hpp"
-
 #include <algorithm>
 #include <cmath>
 #include <limits>
@@ -111,56 +109,9 @@ struct junction_law {
     double linear_b_f_per_v = 0.0;
     double charge_at_fc_c = 0.0;         ///< q(Fc Vj), C
 
-    /// Current, charge, capacitance and slopes at junction voltage v_v, V.
-    [[nodiscard]] junction_values evaluate(double v_v) const noexcept
-    {
-        if (cj0_f > 0.0) {
-            if (square_root_grading)
-                return breakdown ? evaluate_as<true, true, true>(v_v) : evaluate_as<false, true, true>(v_v);
-            return breakdown ? evaluate_as<true, true, false>(v_v) : evaluate_as<false, true, false>(v_v);
-        }
-        return breakdown ? evaluate_as<true, false, true>(v_v) : evaluate_as<false, false, true>(v_v);
-    }
-
-    /// evaluate() with the law's switches fixed at compile time (Breakdown == breakdown, Charge ==
-    /// (cj0_f > 0), SquareRoot == square_root_grading), for loops that must not branch.
-    template <bool Breakdown, bool Charge, bool SquareRoot>
-    [[nodiscard, gnu::always_inline]] junction_values evaluate_as(double v_v) const noexcept
-    {
-        constexpr double linear_above = 80.0; // n Vt units
-        junction_values r{};
-        const double x = v_v * inv_emission_voltage;
-        const double excess = std::max(x - linear_above, 0.0); // > 0 only on the linear continuation
-        const double e = vmath::exp(x - excess);
-        const double is_e = saturation_current_a * e;
-        r.current_a = is_e * (1.0 + excess) - saturation_current_a + leakage_s * v_v;
-        r.conductance_s = is_e * inv_emission_voltage + leakage_s;
-        r.conductance_slope_s_per_v = (excess > 0.0 ? 0.0 : 1.0) * is_e * inv_emission_voltage * inv_emission_voltage;
-        if constexpr (Breakdown) {
-            const double xb = -(v_v + breakdown_voltage_v) * inv_emission_voltage;
-            const double excess_b = std::max(xb - linear_above, 0.0);
-            const double ib_e = breakdown_current_a * vmath::exp(xb - excess_b);
-            r.current_a -= ib_e * (1.0 + excess_b);
-            r.conductance_s += ib_e * inv_emission_voltage;
-            r.conductance_slope_s_per_v -= (excess_b > 0.0 ? 0.0 : 1.0) * ib_e * inv_emission_voltage * inv_emission_voltage;
-        }
-        if constexpr (Charge) {
-            const double vc = v_v < fc_v ? v_v : fc_v;
-            const double base = 1.0 - vc / junction_potential_v; // >= 1 - Fc
-            // M = 1/2 (the abrupt junction) is a square root; otherwise base^-M = exp(-M ln base).
-            double pw;
-            if constexpr (SquareRoot) pw = 1.0 / std::sqrt(base);
-            else pw = vmath::exp(-grading * vmath::log(base));
-            const double c_dep = cj0_f * pw;
-            const double q_dep = cj0_f * junction_potential_v / (1.0 - grading) * (1.0 - base * pw);
-            const double dc_dep = c_dep * grading / (junction_potential_v - vc);
-            const bool above = v_v > fc_v;
-            r.capacitance_f = above ? linear_a_f + linear_b_f_per_v * v_v : c_dep;
-            r.charge_c = above ? charge_at_fc_c + (linear_a_f + 0.5 * linear_b_f_per_v * (v_v + fc_v)) * (v_v - fc_v) : q_dep;
-            r.capacitance_slope_f_per_v = above ? linear_b_f_per_v : dc_dep;
-        }
-        return r;
-    }
+    /// Current, charge, capacitance and slopes at junction voltage v_v, V. (The library's batch loops use
+    /// the same law inlined with its switches fixed at compile time; that form is internal.)
+    [[nodiscard]] junction_values evaluate(double v_v) const noexcept;
 };
 
 /// A diode ready for evaluation: derived constants precomputed from validated diode_params.
