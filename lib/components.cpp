@@ -12,13 +12,7 @@ namespace galena {
 
 junction_values junction_law::evaluate(double v_v) const noexcept
 {
-    using detail::evaluate_law;
-    if (cj0_f > 0.0) {
-        if (square_root_grading)
-            return breakdown ? evaluate_law<true, true, true>(*this, v_v) : evaluate_law<false, true, true>(*this, v_v);
-        return breakdown ? evaluate_law<true, true, false>(*this, v_v) : evaluate_law<false, true, false>(*this, v_v);
-    }
-    return breakdown ? evaluate_law<true, false, true>(*this, v_v) : evaluate_law<false, false, true>(*this, v_v);
+    return detail::evaluate_inline(*this, v_v);
 }
 
 using detail::require_above;

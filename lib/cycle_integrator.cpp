@@ -224,7 +224,7 @@ void cycle_integrator<Dim>::initialize(double v0_v, const vec& y0, double u0_v)
         // No junction charge: v is not a state; take the value the constraint (u0 - v - c.y0)/R = i(v) gives.
         const double drive = (u0_v - m_net.c.dot(y0)) * m_inv_r;
         auto f = [&](double v) {
-            const junction_values r = m_net.junction.evaluate(v);
+            const junction_values r = detail::evaluate_inline(m_net.junction, v);
             return std::pair{r.current_a + m_inv_r * v - drive, r.conductance_s + m_inv_r};
         };
         v0_v = detail::solve_increasing(f, v0_v, std::max(1e-3, 0.1 * m_s.voltage_scale_v), m_stats.scalar_newton_iterations);
@@ -233,7 +233,7 @@ void cycle_integrator<Dim>::initialize(double v0_v, const vec& y0, double u0_v)
                                     0.0);
     }
     m_v0 = v0_v;
-    const junction_values r = m_net.junction.evaluate(v0_v);
+    const junction_values r = detail::evaluate_inline(m_net.junction, v0_v);
     m_cap[0] = r.capacitance_f;
     m_g[0] = r.conductance_s;
     m_qa[0] = r.charge_c - r.capacitance_f * v0_v;
@@ -332,7 +332,7 @@ double cycle_integrator<Dim>::solve_scalar_step(int k, double guess)
     const double j0 = (u0 - v0 - m_net.c.dot(m_y)) * m_inv_r - (m_ia[i - 1] + m_g[i - 1] * v0);
     const double rhs = q0 + m_wb * j0 + m_wa * drive;
     auto f = [&](double v) {
-        const junction_values r = m_net.junction.evaluate(v);
+        const junction_values r = detail::evaluate_inline(m_net.junction, v);
         return std::pair{r.charge_c + m_wa * (r.current_a + lin * v) - rhs, r.capacitance_f + m_wa * (r.conductance_s + lin)};
     };
     const double v = detail::solve_increasing(f, std::isfinite(guess) ? guess : v0, std::max(1e-3, 0.1 * m_s.voltage_scale_v),
@@ -342,7 +342,7 @@ double cycle_integrator<Dim>::solve_scalar_step(int k, double guess)
                                             "the diode parameters are probably far out of range",
                                             time_s() + k * m_h, k),
                                 time_s() + k * m_h);
-    const junction_values r = m_net.junction.evaluate(v);
+    const junction_values r = detail::evaluate_inline(m_net.junction, v);
     m_cap[i] = r.capacitance_f;
     m_g[i] = r.conductance_s;
     m_qa[i] = r.charge_c - r.capacitance_f * v;

@@ -3,6 +3,7 @@
 #include "galena/constants.hpp"
 #include "galena/cycle_integrator.hpp"
 #include "galena/error.hpp"
+#include "galena/junction_law_eval.hpp"
 #include "galena/monotone_root.hpp"
 #include "galena/validate.hpp"
 
@@ -53,7 +54,7 @@ public:
         // number of steps does not see. A slow one that has not settled is found by shooting on the cycle map.
         const double drive0 = (m_u[0] - vout) * m_inv_r;
         auto f0 = [&](double v) {
-            const junction_values r = m_law.evaluate(v);
+            const junction_values r = detail::evaluate_inline(m_law, v);
             return std::pair{r.current_a + m_inv_r * v - drive0, r.conductance_s + m_inv_r};
         };
         double v0 = detail::solve_increasing(f0, 0.0, 1e-3 + 0.1 * m_e, iterations);
@@ -91,18 +92,18 @@ private:
     double march(double v0, double vout)
     {
         m_v[0] = v0;
-        junction_values r0 = m_law.evaluate(v0);
+        junction_values r0 = detail::evaluate_inline(m_law, v0);
         for (int k = 1; k <= m_n; ++k) {
             const auto i = static_cast<std::size_t>(k);
             const double j0 = (m_u[i - 1] - m_v[i - 1] - vout) * m_inv_r - r0.current_a;
             const double rhs = r0.charge_c + m_wb * j0 + m_wa * (m_u[i] - vout) * m_inv_r;
             auto f = [&](double v) {
-                const junction_values r = m_law.evaluate(v);
+                const junction_values r = detail::evaluate_inline(m_law, v);
                 return std::pair{r.charge_c + m_wa * (r.current_a + m_inv_r * v) - rhs,
                                  r.capacitance_f + m_wa * (r.conductance_s + m_inv_r)};
             };
             m_v[i] = detail::solve_increasing(f, m_v[i - 1], 1e-3 + 0.1 * m_e, iterations);
-            r0 = m_law.evaluate(m_v[i]);
+            r0 = detail::evaluate_inline(m_law, m_v[i]);
         }
         return m_v[static_cast<std::size_t>(m_n)];
     }

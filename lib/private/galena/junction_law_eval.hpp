@@ -51,4 +51,16 @@ template <bool Breakdown, bool Charge, bool SquareRoot>
     return r;
 }
 
+/// junction_law::evaluate() inlined (the run-time dispatch on the law's switches, then evaluate_law): for
+/// the library's scalar loops (step-count choice, per-step Newton), where a call per evaluation shows.
+[[nodiscard]] inline junction_values evaluate_inline(const junction_law& law, double v_v) noexcept
+{
+    if (law.cj0_f > 0.0) {
+        if (law.square_root_grading)
+            return law.breakdown ? evaluate_law<true, true, true>(law, v_v) : evaluate_law<false, true, true>(law, v_v);
+        return law.breakdown ? evaluate_law<true, true, false>(law, v_v) : evaluate_law<false, true, false>(law, v_v);
+    }
+    return law.breakdown ? evaluate_law<true, false, true>(law, v_v) : evaluate_law<false, false, true>(law, v_v);
+}
+
 } // namespace galena::detail
