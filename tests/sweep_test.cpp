@@ -1,4 +1,5 @@
 // Sweep axes, variants and pack files: parsing, limits and the messages of bad input.
+#include "galena/cancel.hpp"
 #include "galena/error.hpp"
 #include "galena/sweep.hpp"
 
@@ -168,4 +169,26 @@ TEST_CASE("a clip variant measured on a tone: its warnings are chosen by code, n
         CHECK(r.metrics["warnings"][i].get<std::string>() == r.warnings[i].message);
         CHECK(r.metrics["warning_codes"][i].get<std::string>() != "no-distortion-figures");
     }
+}
+
+TEST_CASE("a sweep's own cancel token stops that sweep before it finishes, leaves no output and no process-wide cancel")
+{
+    const fs::path out = fs::path(GALENA_TEST_TMP) / "sweep-token";
+    fs::remove_all(out);
+    std::vector<variant_spec> variants;
+    for (const char* d : {"0.3", "0.3"}) variants.push_back({fmt::format("v{}", variants.size()), "", {std::string("signal.duration_s=") + d}});
+    cancel_token token;
+    sweep_options opt;
+    opt.threads = 1;
+    opt.cancel = &token;
+    int ticks = 0;
+    opt.progress = [&](const sweep_progress& p) {
+        ++ticks;
+        if (p.fraction > 0.0) token.request(); // during or right after the first variant's render
+    };
+    CHECK_THROWS_AS((void)run_sweep(fs::path(GALENA_SOURCE_DIR) / "scenarios/example.toml", {"signal.carrier_hz=200k"}, variants, out, opt),
+                    cancelled_error);
+    CHECK(ticks >= 1);
+    CHECK_FALSE(fs::exists(out));
+    CHECK_FALSE(cancel_requested());
 }
