@@ -1,5 +1,6 @@
 // Sweep axes, variants and pack files: parsing, limits and the messages of bad input.
 #include "galena/error.hpp"
+#include "galena/pack_file.hpp"
 #include "galena/sweep.hpp"
 
 #include <doctest/doctest.h>
