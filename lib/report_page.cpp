@@ -90,17 +90,12 @@ std::string render_page(const pack_page& p)
                 const double v = detail::number_or_nan(r.metrics, k) / unit;
                 return std::isfinite(v) ? fmt::format("{:.5g}", v) : std::string("-");
             };
-            std::string wanted = "-", neighbour = "-";
-            if (r.metrics.contains("stations") && r.metrics["stations"].is_array() && !r.metrics["stations"].empty()) {
-                const auto& st = r.metrics["stations"];
-                wanted = cell(st[0], "tone_v");
-                const double worst = detail::loudest_neighbour_db(r.metrics);
-                if (std::isfinite(worst)) neighbour = fmt::format("{:.1f}", worst);
-            }
+            const double loudest = detail::number_or_nan(r.metrics, "loudest_neighbour_db");
+            const std::string neighbour = std::isfinite(loudest) ? fmt::format("{:+.1f}", loudest) : std::string("-");
             h += fmt::format("<td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>\n",
                              scaled("tuned_hz", 1e3), cell(r.metrics, "loaded_q"), scaled("rf_bandwidth_hz", 1e3),
-                             cell(r.metrics, "detector_rf_peak_v"), cell(r.metrics, "dc_v"), cell(r.metrics, "audio_rms_v"), wanted,
-                             neighbour, cell(r.metrics, "thd_percent"));
+                             cell(r.metrics, "detector_rf_peak_v"), cell(r.metrics, "dc_v"), cell(r.metrics, "audio_rms_v"),
+                             cell(r.metrics, "wanted_tone_v"), neighbour, cell(r.metrics, "thd_percent"));
             continue;
         }
         h += fmt::format("<td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td>"

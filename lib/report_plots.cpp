@@ -286,30 +286,24 @@ void draw_bars(const std::string& stem, const std::string& title, const std::str
 }
 
 
-/// The wanted station's tone amplitude at the earpiece, dBV (metrics `stations`), or NaN.
-double wanted_tone_dbv(const nlohmann::json& m)
-{
-    if (!m.contains("stations") || !m["stations"].is_array() || m["stations"].empty()) return std::numeric_limits<double>::quiet_NaN();
-    const double v = detail::number_or_nan(m["stations"][0], "tone_v");
-    return v > 0.0 ? 20.0 * std::log10(v) : std::numeric_limits<double>::quiet_NaN();
-}
-
 /// Selectivity curves and the sensitivity-versus-selectivity chart of the pack's whole-receiver variants.
 void draw_receiver_plots(const sweep_result& sweep, const fs::path& dir, std::vector<std::string>& stems)
 {
     std::vector<const variant_result*> rx;
     for (const auto& r : sweep.variants)
         if (r.scene.tuner.layout != tuner_layout::bench) rx.push_back(&r);
-    // A common window: +-2.5 bandwidths of the broadest tuned variant, at least +-30 kHz, and every
-    // station's carrier inside it.
-    double half = 30e3;
-    double centre = 0.0;
+    // A common window: twice the farthest station's offset from the wanted carrier and 2.5 bandwidths of
+    // the most selective variant, at least +-30 kHz (a very broad variant runs off the sides: its flat top
+    // is what matters).
+    double centre = 0.0, farthest = 0.0, narrowest = std::numeric_limits<double>::infinity();
     for (const auto* r : rx) {
         const double bw = r->job.receiver.rf_bandwidth_hz;
-        if (std::isfinite(bw)) half = std::max(half, 2.5 * bw);
+        if (std::isfinite(bw)) narrowest = std::min(narrowest, bw);
         if (centre == 0.0) centre = r->scene.stations.front().params.carrier_hz;
-        for (const auto& st : r->scene.stations) half = std::max(half, 1.2 * std::fabs(st.params.carrier_hz - centre));
+        for (const auto& st : r->scene.stations) farthest = std::max(farthest, std::fabs(st.params.carrier_hz - centre));
     }
+    double half = std::max(30e3, 2.0 * farthest);
+    if (std::isfinite(narrowest)) half = std::max(half, 2.5 * narrowest);
     half = std::min(half, 0.5 * centre);
     std::string data, plot;
     int block = 0;
@@ -337,8 +331,8 @@ void draw_receiver_plots(const sweep_result& sweep, const fs::path& dir, std::ve
                 ++n;
         write_text_atomic(dir / "selectivity.dat", data);
         run_gnuplot(terminal_pair_script("selectivity",
-                                         fmt::format("set title 'Selectivity: RF response at the detector with its measured loading "
-                                                     "(re each variant''s tuned frequency; stations dashed)'\nset grid\n"
+                                         fmt::format("set title 'Selectivity at the detector, measured loading included (re each variant''s peak)'\n"
+                                                     "set grid\n"
                                                      "set key outside right top font ',8'\nset xlabel 'frequency, kHz'\n"
                                                      "set ylabel 'relative response, dB'\nset yrange [-40:3]\n{}plot {}",
                                                      marks, plot)),
@@ -348,9 +342,10 @@ void draw_receiver_plots(const sweep_result& sweep, const fs::path& dir, std::ve
     // Sensitivity versus selectivity: one point per receiver variant, labelled.
     std::string pts;
     for (const auto* r : rx) {
-        const double y = wanted_tone_dbv(r->metrics);
+        const double tone = detail::number_or_nan(r->metrics, "wanted_tone_v");
+        const double y = tone > 0.0 ? 20.0 * std::log10(tone) : std::numeric_limits<double>::quiet_NaN();
         const double bw = r->job.receiver.rf_bandwidth_hz;
-        const double nb = detail::loudest_neighbour_db(r->metrics);
+        const double nb = detail::number_or_nan(r->metrics, "loudest_neighbour_db");
         if (!std::isfinite(y)) continue;
         pts += fmt::format("{} {} {:.6g} \"{}\"\n", std::isfinite(bw) ? fmt::format("{:.6g}", bw / 1e3) : "NaN",
                            std::isfinite(nb) ? fmt::format("{:.6g}", nb) : "NaN", y, gp_escape(r->spec.name));

@@ -282,13 +282,18 @@ const std::map<std::string, std::map<std::string, key_entry>>& key_table()
              {"name", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
                   s.stations.back().params.name = as_string(n, f, w);
               }},
-             {"carrier_hz", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) { s.stations.back().params.carrier_hz = as_number(n, f, w, unit::hertz); }},
+             // Numeric keys with their unit (sweeps and hints read it from here), filling the station being read.
+             {"carrier_hz", quantity(unit::hertz, [](scenario& s) -> double& { return s.stations.back().params.carrier_hz; })},
+             // V/m is no unit of units.hpp: read as a plain number (and listed as a text key, so that the name's
+             // "_m" is not taken for metres).
              {"field_v_per_m", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) { s.stations.back().params.field_v_per_m = as_number(n, f, w, unit::none); }},
-             {"modulation_index", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) { s.stations.back().params.modulation_index = as_number(n, f, w, unit::none); }},
-             {"tone_hz", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
-                  s.stations.back().tone_hz = as_number(n, f, w, unit::hertz);
-                  s.stations.back().kind = programme_kind::tone;
-              }},
+             {"modulation_index", quantity(unit::none, [](scenario& s) -> double& { return s.stations.back().params.modulation_index; })},
+             {"tone_hz", key_entry(
+                             [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
+                                 s.stations.back().tone_hz = as_number(n, f, w, unit::hertz);
+                                 s.stations.back().kind = programme_kind::tone;
+                             },
+                             unit::hertz, [](scenario& s) -> double& { return s.stations.back().tone_hz; })},
              {"audio", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
                   s.stations.back().audio = as_string(n, f, w);
                   if (s.stations.back().audio.empty()) throw config_error(fmt::format("{}: {} = \"\": must name an audio file", w, f));
@@ -587,6 +592,8 @@ std::string slip_hint(const scenario& s, const std::string& field)
 {
     const auto dot = field.find('.');
     if (dot == std::string::npos) return {};
+    // A station's keys fill the station being read (stations.back()): not a probe of the whole scenario.
+    if (field.rfind("station.", 0) == 0) return {};
     const auto& table = key_table();
     const auto sec = table.find(field.substr(0, dot));
     if (sec == table.end()) return {};

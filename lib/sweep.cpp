@@ -251,15 +251,33 @@ const std::vector<std::string>& table_columns()
     return c;
 }
 
+const std::vector<std::string>& receiver_table_columns()
+{
+    static const std::vector<std::string> c = {"tuned_hz",      "loaded_q",           "rf_bandwidth_hz",      "detector_rf_peak_v",
+                                               "dc_v",          "audio_rms_v",        "a_weighted_dbv",       "wanted_tone_v",
+                                               "loudest_neighbour_db", "thd_percent", "peak_audio_v",         "clipped_samples"};
+    return c;
+}
+
+namespace {
+/// Whole-receiver columns when any row is a whole receiver (its metrics carry tuned_hz).
+const std::vector<std::string>& columns_for(const std::vector<variant_result>& rows)
+{
+    const bool receiver = std::any_of(rows.begin(), rows.end(), [](const variant_result& r) { return r.metrics.contains("tuned_hz"); });
+    return receiver ? receiver_table_columns() : table_columns();
+}
+} // namespace
+
 std::string table_csv(const std::vector<variant_result>& rows)
 {
+    const auto& columns = columns_for(rows);
     std::vector<std::string> head = {"variant", "label"};
-    head.insert(head.end(), table_columns().begin(), table_columns().end());
+    head.insert(head.end(), columns.begin(), columns.end());
     head.emplace_back("warnings");
     std::string o = csv_row(head);
     for (const auto& r : rows) {
         std::vector<std::string> f = {r.spec.name, r.spec.label};
-        for (const auto& c : table_columns()) f.push_back(r.metrics.contains(c) ? json_cell(r.metrics[c], 10, true) : std::string());
+        for (const auto& c : columns) f.push_back(r.metrics.contains(c) ? json_cell(r.metrics[c], 10, true) : std::string());
         f.push_back(std::to_string(r.metrics.contains("warnings") ? r.metrics["warnings"].size() : 0));
         o += csv_row(f);
     }
@@ -279,16 +297,23 @@ std::string table_markdown(const std::vector<variant_result>& rows)
         {"a_weighted_dbv", "dBV(A)", false},   {"fundamental_v", "tone V", true}, {"h2_ratio", "H2/H1", false},
         {"h3_ratio", "H3/H1", false},          {"thd_percent", "THD %", false}, {"thd_n_percent", "THD+N %", false},
         {"sinad_db", "SINAD dB", false},       {"peak_audio_v", "peak V", true}, {"clipped_samples", "clipped", false}};
+    static const std::vector<head> receiver_heads = {
+        {"tuned_hz", "tuned Hz", false},        {"loaded_q", "loaded Q", false},     {"rf_bandwidth_hz", "RF BW Hz", false},
+        {"detector_rf_peak_v", "RF peak V", true}, {"dc_v", "DC V", true},           {"audio_rms_v", "audio rms V", true},
+        {"a_weighted_dbv", "dBV(A)", false},    {"wanted_tone_v", "wanted tone V", true},
+        {"loudest_neighbour_db", "neighbour dB", false}, {"thd_percent", "THD %", false}, {"peak_audio_v", "peak V", true},
+        {"clipped_samples", "clipped", false}};
+    const auto& chosen = &columns_for(rows) == &receiver_table_columns() ? receiver_heads : heads;
     std::string o = "| variant | label |";
     std::string rule = "|---|---|";
-    for (const auto& h : heads) {
+    for (const auto& h : chosen) {
         o += " " + h.text + " |";
         rule += "---:|";
     }
     o += "\n" + rule + "\n";
     for (const auto& r : rows) {
         o += "| " + markdown_cell(r.spec.name) + " | " + markdown_cell(r.spec.label) + " |";
-        for (const auto& h : heads) {
+        for (const auto& h : chosen) {
             const std::string& k = h.key;
             const bool volts = h.volts && r.metrics.contains(k) && r.metrics[k].is_number_float() &&
                                std::isfinite(r.metrics[k].get<double>());

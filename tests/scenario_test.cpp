@@ -128,3 +128,61 @@ TEST_CASE("diode.file: a fitted diode file, relative to the scenario; keys besid
     write(dir / "s6.toml", "[diode]\nfile = \"fits/missing.toml\"\n");
     CHECK_THROWS_WITH_AS(load_scenario(dir / "s6.toml"), doctest::Contains("s6.toml:2: diode.file = "), config_error);
 }
+
+TEST_CASE("one station of a [[station]] list is addressed as station.N.key; mistakes name the override and the rule")
+{
+    const std::string text = R"([signal]
+duration_s = 0.3
+[tuner]
+layout = "coupled"
+[[station]]
+name = "near"
+carrier_hz = 1.0e6
+tone_hz = 400
+[[station]]
+name = "next"
+carrier_hz = 1.01e6
+field_v_per_m = 5e-3
+)";
+    const auto s = parse_scenario(text, "rx.toml", {"station.2.carrier_hz=1.02MHz", "station.1.tone_hz=500", "station.2.name=other"});
+    REQUIRE(s.stations.size() == 2);
+    CHECK(s.stations[0].params.carrier_hz == 1.0e6); // untouched
+    CHECK(s.stations[0].tone_hz == 500.0);
+    CHECK(s.stations[1].params.carrier_hz == 1.02e6);
+    CHECK(s.stations[1].params.field_v_per_m == 5e-3); // the other keys of station 2 stay
+    CHECK(s.stations[1].params.name == "other");
+    CHECK(to_toml(parse_scenario(to_toml(s), "again.toml")) == to_toml(s));
+    CHECK(contract_field("station.2.carrier_hz") == "station.carrier_hz");
+    CHECK(contract_field("tuner.coupling") == "tuner.coupling");
+    CHECK(key_unit("station.12.carrier_hz") == unit::hertz);
+    // Without a number, with a number out of range, and for a file without stations.
+    CHECK_THROWS_WITH_AS((void)parse_scenario(text, "rx.toml", {"station.carrier_hz=1.02e6"}),
+                         doctest::Contains("--set station.carrier_hz=1.02e6: the scenario has 2 [[station]] tables: address one as "
+                                           "station.N.carrier_hz with N from 1 (the wanted station) to 2"),
+                         config_error);
+    for (const char* n : {"0", "3", "99999999999999999999"})
+        CHECK_THROWS_WITH_AS((void)parse_scenario(text, "rx.toml", {std::string("station.") + n + ".carrier_hz=1e6"}),
+                             doctest::Contains((std::string("station ") + n + ": must be a station number from 1 to 2").c_str()), config_error);
+    CHECK_THROWS_WITH_AS((void)parse_scenario("[signal]\ntone_hz = 400\n", "bench.toml", {"station.1.carrier_hz=1e6"}),
+                         doctest::Contains("--set station.1.carrier_hz=1e6: station 1: the scenario has no [[station]] tables to address"),
+                         config_error);
+    // The value's unit, its range and an unknown key: named with the --set that gave them.
+    CHECK_THROWS_WITH_AS((void)parse_scenario(text, "rx.toml", {"station.2.carrier_hz=1.02MV"}),
+                         doctest::Contains("rx.toml (--set station.2.carrier_hz=1.02MV): station.carrier_hz = '1.02MV': unit V does not "
+                                           "match the key's unit, Hz"),
+                         config_error);
+    CHECK_THROWS_WITH_AS((void)parse_scenario(text, "rx.toml", {"station.2.modulation_index=1.5"}),
+                         doctest::Contains("rx.toml (--set station.2.modulation_index=1.5): station 2 \"next\": station.modulation_index = "
+                                           "1.5: must be in [0, 1]"),
+                         config_error);
+    CHECK_THROWS_WITH_AS((void)parse_scenario(text, "rx.toml", {"station.1.carrier=1e6"}),
+                         doctest::Contains("rx.toml (--set station.1.carrier=1e6): station.carrier: unknown key (did you mean "
+                                           "station.carrier_hz?)"),
+                         config_error);
+    // A value written in the file is named by its line.
+    std::string bad = text;
+    bad.replace(bad.find("5e-3"), 4, "-1");
+    CHECK_THROWS_WITH_AS((void)parse_scenario(bad, "rx.toml"),
+                         doctest::Contains("rx.toml:12: station 2 \"next\": station.field_v_per_m = -1: must be > 0 and <= 100 V/m"),
+                         config_error);
+}

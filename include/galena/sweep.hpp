@@ -138,8 +138,12 @@ void relocate(sweep_result& res, const staged_output& staged);
 
 /// Table columns: key names of the metrics (in this order) shown in the CSV and Markdown tables.
 [[nodiscard]] const std::vector<std::string>& table_columns();
+/// The columns instead when any variant is a whole receiver (tuner.layout other than bench): the front
+/// end's figures, the wanted station's tone and the loudest neighbour relative to it.
+[[nodiscard]] const std::vector<std::string>& receiver_table_columns();
 
-/// The table as CSV (header line; variant, label, then table_columns(); empty cell for null).
+/// The table as CSV (header line; variant, label, then table_columns() or receiver_table_columns(); empty
+/// cell for null).
 [[nodiscard]] std::string table_csv(const std::vector<variant_result>& rows);
 /// The table as a Markdown pipe table with units in the header, numbers to 4 significant digits.
 [[nodiscard]] std::string table_markdown(const std::vector<variant_result>& rows);

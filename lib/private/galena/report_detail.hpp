@@ -31,17 +31,4 @@ inline double number_or_nan(const nlohmann::json& j, const char* key)
     return j[key].get<double>();
 }
 
-/// The loudest neighbour's tone level relative to the wanted station's, dB (metrics `stations`), or NaN.
-inline double loudest_neighbour_db(const nlohmann::json& m)
-{
-    double worst = std::numeric_limits<double>::quiet_NaN();
-    if (!m.contains("stations") || !m["stations"].is_array()) return worst;
-    const auto& st = m["stations"];
-    for (std::size_t k = 1; k < st.size(); ++k) {
-        const double d = number_or_nan(st[k], "level_db");
-        if (std::isfinite(d) && !(d <= worst)) worst = d;
-    }
-    return worst;
-}
-
 } // namespace galena::detail
