@@ -205,3 +205,23 @@ TEST_CASE("sweep progress: finished variants reported once each, in variant orde
     for (std::size_t i = 1; i < fractions.size(); ++i) CHECK(fractions[i] >= fractions[i - 1]);
     CHECK(fractions.back() == 1.0);
 }
+
+TEST_CASE("tables: whole-receiver rows get the front end's columns, bench rows keep theirs")
+{
+    variant_result bench;
+    bench.spec.name = "b";
+    bench.metrics = {{"carrier_peak_v", 0.15}, {"dc_v", 0.02}, {"warnings", nlohmann::json::array()}};
+    variant_result rx;
+    rx.spec.name = "r";
+    rx.metrics = {{"tuned_hz", 1.0e6}, {"loaded_q", 26.5}, {"rf_bandwidth_hz", 37.7e3}, {"wanted_tone_v", 0.105},
+                  {"loudest_neighbour_db", 1.9}, {"warnings", nlohmann::json::array()}};
+    const std::string b = table_csv({bench});
+    CHECK(b.rfind("variant,label,carrier_peak_v,dc_v,", 0) == 0);
+    const std::string r = table_csv({rx});
+    CHECK(r.rfind("variant,label,tuned_hz,loaded_q,rf_bandwidth_hz,detector_rf_peak_v,", 0) == 0);
+    CHECK(r.find("wanted_tone_v,loudest_neighbour_db") != std::string::npos);
+    CHECK(r.find("\nr,,1000000,26.5,37700,,") != std::string::npos); // no label: an empty cell
+    const std::string m = table_markdown({rx});
+    CHECK(m.find("| tuned Hz | loaded Q | RF BW Hz |") != std::string::npos);
+    CHECK(m.find("| 105m | 1.9 |") != std::string::npos);
+}
