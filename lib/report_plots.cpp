@@ -318,15 +318,17 @@ void draw_receiver_plots(const sweep_result& sweep, const fs::path& dir, std::ve
             if (std::fabs(c.frequency_hz[k] - centre) <= half)
                 data += fmt::format("{:.8g} {:.6g}\n", c.frequency_hz[k] / 1e3, c.relative_db[k]);
         data += "\n\n";
-        plot += fmt::format("{}'selectivity.dat' index {} using 1:2 with lines lw 1.5 title '{} (Q_L {:.0f})'", plot.empty() ? "" : ", ",
-                            block++, gp_escape(r->spec.name), r->job.receiver.loaded_q);
+        // Eight colours, then dashed lines, so that no two variants look alike.
+        plot += fmt::format("{}'selectivity.dat' index {} using 1:2 with lines lw 1.5 dt {} title '{} (Q_L {:.0f})'",
+                            plot.empty() ? "" : ", ", block, 1 + block / 8, gp_escape(r->spec.name), r->job.receiver.loaded_q);
+        ++block;
     }
     if (!plot.empty()) {
         std::string marks;
         int n = 1;
         for (const auto& st : rx.front()->scene.stations)
             marks += fmt::format("set arrow {0} from {1:.8g}, graph 0 to {1:.8g}, graph 1 nohead dt 2 lc rgb '#777777'\n"
-                                 "set label {0} '{2}' at {1:.8g}, graph 0.97 rotate by 90 right font ',8' tc rgb '#555555'\n",
+                                 "set label {0} '{2}' at {1:.8g}, graph 0.03 rotate by 90 left offset -0.6,0 font ',8' tc rgb '#555555'\n",
                                  n, st.params.carrier_hz / 1e3, gp_escape(st.params.name)),
                 ++n;
         write_text_atomic(dir / "selectivity.dat", data);
@@ -334,7 +336,7 @@ void draw_receiver_plots(const sweep_result& sweep, const fs::path& dir, std::ve
                                          fmt::format("set title 'Selectivity at the detector, measured loading included (re each variant''s peak)'\n"
                                                      "set grid\n"
                                                      "set key outside right top font ',8'\nset xlabel 'frequency, kHz'\n"
-                                                     "set ylabel 'relative response, dB'\nset yrange [-40:3]\n{}plot {}",
+                                                     "set ylabel 'relative response, dB'\nset yrange [-30:2]\n{}plot {}",
                                                      marks, plot)),
                     dir, "selectivity");
         stems.push_back("selectivity");

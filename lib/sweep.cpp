@@ -286,11 +286,12 @@ std::string table_csv(const std::vector<variant_result>& rows)
 
 std::string table_markdown(const std::vector<variant_result>& rows)
 {
-    // Volt columns are written in engineering notation ("21.86m" under "DC V"), as builders write values;
-    // ratios, % and dB stay plain.
+    // Volt and hertz columns are written in engineering notation ("21.86m" under "DC V", "1.002M" under
+    // "tuned Hz"), as builders write values; ratios, % and dB stay plain.
     struct head {
         std::string key, text;
-        bool volts;
+        bool engineering; ///< written with format_quantity in `u`
+        unit u = unit::volt;
     };
     static const std::vector<head> heads = {
         {"carrier_peak_v", "carrier V", true}, {"dc_v", "DC V", true},        {"audio_rms_v", "audio rms V", true},
@@ -298,7 +299,7 @@ std::string table_markdown(const std::vector<variant_result>& rows)
         {"h3_ratio", "H3/H1", false},          {"thd_percent", "THD %", false}, {"thd_n_percent", "THD+N %", false},
         {"sinad_db", "SINAD dB", false},       {"peak_audio_v", "peak V", true}, {"clipped_samples", "clipped", false}};
     static const std::vector<head> receiver_heads = {
-        {"tuned_hz", "tuned Hz", false},        {"loaded_q", "loaded Q", false},     {"rf_bandwidth_hz", "RF BW Hz", false},
+        {"tuned_hz", "tuned Hz", true, unit::hertz},        {"loaded_q", "loaded Q", false},     {"rf_bandwidth_hz", "RF BW Hz", true, unit::hertz},
         {"detector_rf_peak_v", "RF peak V", true}, {"dc_v", "DC V", true},           {"audio_rms_v", "audio rms V", true},
         {"a_weighted_dbv", "dBV(A)", false},    {"wanted_tone_v", "wanted tone V", true},
         {"loudest_neighbour_db", "neighbour dB", false}, {"thd_percent", "THD %", false}, {"peak_audio_v", "peak V", true},
@@ -315,10 +316,10 @@ std::string table_markdown(const std::vector<variant_result>& rows)
         o += "| " + markdown_cell(r.spec.name) + " | " + markdown_cell(r.spec.label) + " |";
         for (const auto& h : chosen) {
             const std::string& k = h.key;
-            const bool volts = h.volts && r.metrics.contains(k) && r.metrics[k].is_number_float() &&
+            const bool engineering = h.engineering && r.metrics.contains(k) && r.metrics[k].is_number_float() &&
                                std::isfinite(r.metrics[k].get<double>());
             const std::string cell = !r.metrics.contains(k) ? std::string()
-                                     : volts                ? format_quantity(r.metrics[k].get<double>(), unit::volt, 4)
+                                     : engineering          ? format_quantity(r.metrics[k].get<double>(), h.u, 4)
                                                             : json_cell(r.metrics[k], 4, false);
             // Appended piece by piece: `" " + std::string(...)` trips GCC 12's -Wrestrict false positive.
             o += ' ';

@@ -223,5 +223,6 @@ TEST_CASE("tables: whole-receiver rows get the front end's columns, bench rows k
     CHECK(r.find("\nr,,1000000,26.5,37700,,") != std::string::npos); // no label: an empty cell
     const std::string m = table_markdown({rx});
     CHECK(m.find("| tuned Hz | loaded Q | RF BW Hz |") != std::string::npos);
+    CHECK(m.find("| 1M | 26.5 | 37.7k |") != std::string::npos);
     CHECK(m.find("| 105m | 1.9 |") != std::string::npos);
 }

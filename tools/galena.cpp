@@ -260,7 +260,7 @@ int main(int argc, char** argv)
 
     std::string demo_out = "demo-out";
     unsigned demo_threads = 0;
-    auto* demo = app.add_subcommand("demo", "render the bundled demo pack (bleeder values; germanium vs Schottky; weak and strong carrier)");
+    auto* demo = app.add_subcommand("demo", "render the bundled demo: a crystal set on an invented band (coupling, detector tap, bleeder, diode)");
     demo->add_option("--out,-o", demo_out, "output directory")->capture_default_str();
     demo->add_option("--threads,-j", demo_threads, "worker threads (0 = all cores)");
     demo->add_flag("--overwrite", overwrite, "replace existing output files");
