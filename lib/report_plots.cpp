@@ -228,8 +228,9 @@ void draw_traces(const std::vector<std::string>& names, const std::vector<trace>
             for (std::size_t k = k0; k < std::min(traces[i].v.size(), k0 + n); ++k)
                 data += fmt::format("{:.7g} {:.7g}\n", (static_cast<double>(k) / fs_hz - t0) * 1e3, traces[i].v[k]);
             data += "\n\n";
-            ear_plot += fmt::format("{}'zoom.dat' index {} using 1:2 with lines lw 1.5 title '{}'", ear_plot.empty() ? "" : ", ",
-                                    block, gp_escape(names[i]));
+            // Eight colours, then dashed lines, so that no two variants look alike.
+            ear_plot += fmt::format("{}'zoom.dat' index {} using 1:2 with lines lw 1.5 dt {} title '{}'", ear_plot.empty() ? "" : ", ",
+                                    block, 1 + i / 8, gp_escape(names[i]));
             ++block;
         }
         write_text_atomic(dir / "zoom.dat", data);
@@ -255,8 +256,8 @@ void draw_traces(const std::vector<std::string>& names, const std::vector<trace>
                 data += fmt::format("{:.6g} {:.6g}\n", sp.frequency_hz[k], 20.0 * std::log10(std::max(sp.amplitude_v[k], 1e-12)));
             }
             data += "\n\n";
-            plot += fmt::format("{}'spectrum.dat' index {} using 1:2 with lines title '{}'", plot.empty() ? "" : ", ", i,
-                                gp_escape(names[i]));
+            plot += fmt::format("{}'spectrum.dat' index {} using 1:2 with lines dt {} title '{}'", plot.empty() ? "" : ", ", i,
+                                1 + i / 8, gp_escape(names[i]));
         }
         write_text_atomic(dir / "spectrum.dat", data);
         const std::string body = fmt::format("set title 'Earpiece spectrum (4-term Blackman-Harris window)'\nset grid\n"

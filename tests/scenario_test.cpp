@@ -3,6 +3,7 @@
 #include "galena/scenario.hpp"
 
 #include <doctest/doctest.h>
+#include <fmt/format.h>
 #include <cmath>
 #include <filesystem>
 #include <fstream>
@@ -152,6 +153,23 @@ field_v_per_m = 5e-3
     CHECK(s.stations[1].params.field_v_per_m == 5e-3); // the other keys of station 2 stay
     CHECK(s.stations[1].params.name == "other");
     CHECK(to_toml(parse_scenario(to_toml(s), "again.toml")) == to_toml(s));
+    // Every numeric station key, written back in engineering notation with its unit, sets station 2 to the
+    // same scenario (the keys' units come from the one key table).
+    std::size_t station_keys = 0;
+    for (const auto& k : scenario_keys()) {
+        if (!k.numeric || k.field.rfind("station.", 0) != 0) continue;
+        ++station_keys;
+        const std::string key = k.field.substr(8);
+        const std::string field = "station.2." + key;
+        const double v = key == "carrier_hz" ? 1.02e6 : key == "tone_hz" ? 700.0 : 0.45;
+        const scenario plain = parse_scenario(text, "rx.toml", {field + "=" + fmt::format("{}", v)});
+        CHECK_MESSAGE(to_toml(plain) != to_toml(parse_scenario(text, "rx.toml")), field, " was not applied");
+        for (const bool symbol : {false, true}) {
+            const scenario eng = parse_scenario(text, "rx.toml", {field + "=" + format_quantity(v, k.u, 0, symbol)});
+            CHECK_MESSAGE(to_toml(eng) == to_toml(plain), field, " = ", format_quantity(v, k.u, 0, symbol));
+        }
+    }
+    CHECK(station_keys == 3); // carrier_hz, modulation_index, tone_hz
     CHECK(contract_field("station.2.carrier_hz") == "station.carrier_hz");
     CHECK(contract_field("tuner.coupling") == "tuner.coupling");
     CHECK(key_unit("station.12.carrier_hz") == unit::hertz);
