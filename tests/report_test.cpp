@@ -2,6 +2,7 @@
 #include "galena/error.hpp"
 #include "galena/front_end.hpp"
 #include "galena/network.hpp"
+#include "galena/report.hpp"
 #include "galena/report_plots.hpp"
 
 #include <doctest/doctest.h>
@@ -9,8 +10,14 @@
 #include <algorithm>
 #include <cmath>
 #include <complex>
+#include <filesystem>
+#include <fstream>
+#include <iterator>
+#include <string>
+#include <vector>
 
 using namespace galena;
+namespace fs = std::filesystem;
 
 namespace {
 
@@ -114,4 +121,49 @@ TEST_CASE("selectivity refuses a span that does not fit and an even point count"
     const receiver_network rn = series_circuit(240e-6, 1e6, 30.0);
     CHECK_THROWS_WITH_AS((void)compute_selectivity(rn, 0.0, 1e6, 2e6, 41), doctest::Contains("needs 0 < span < centre"), config_error);
     CHECK_THROWS_WITH_AS((void)compute_selectivity(rn, 0.0, 1e6, 10e3, 40), doctest::Contains("points = 40: must be odd"), config_error);
+}
+
+TEST_CASE("a whole-receiver pack draws the selectivity and tradeoff plots and shows the front end's columns")
+{
+    // Two short renders of the demo's crystal set: loose and near-critical coupling.
+    const fs::path out = fs::path(GALENA_TEST_TMP) / "receiver-pack";
+    fs::remove_all(out);
+    const fs::path base = fs::path(GALENA_SOURCE_DIR) / "scenarios/crystal-set.toml";
+    std::vector<variant_spec> variants = {{"loose", "k = 0.01", {"tuner.coupling=0.01"}, {}},
+                                          {"critical", "k = 0.028", {"tuner.coupling=0.028"}, {}}};
+    pack_options po;
+    po.sweep.threads = 2;
+    const pack_outcome o = make_pack(base, {"signal.duration_s=0.1"}, variants, out, po);
+    CHECK(o.warnings.empty());
+    for (const char* stem : {"selectivity", "tradeoff"}) {
+        CHECK(fs::file_size(out / "plots" / (std::string(stem) + ".svg")) > 0);
+        CHECK(fs::file_size(out / "plots" / (std::string(stem) + ".png")) > 0);
+    }
+    // The bench detector's response and transfer curves do not describe a tuned set: left out.
+    CHECK_FALSE(fs::exists(out / "plots" / "response.svg"));
+    CHECK_FALSE(fs::exists(out / "plots" / "transfer.svg"));
+    const std::string page = [&] {
+        std::ifstream in(out / "index.html");
+        return std::string(std::istreambuf_iterator<char>(in), {});
+    }();
+    CHECK(page.find("<th>loaded Q</th>") != std::string::npos);
+    CHECK(page.find("id=\"plot-selectivity\"") != std::string::npos);
+    CHECK(page.find("id=\"plot-tradeoff\"") != std::string::npos);
+    // Coupled-resonator theory: coupling the antenna circuit tighter loads the tuning circuit more, so the
+    // loaded Q falls and the neighbours come up relative to the wanted station.
+    const auto& loose = o.sweep.variants[0].metrics;
+    const auto& critical = o.sweep.variants[1].metrics;
+    CHECK(loose["loaded_q"].get<double>() > 1.5 * critical["loaded_q"].get<double>());
+    CHECK(loose["loudest_neighbour_db"].get<double>() < critical["loudest_neighbour_db"].get<double>() - 5.0);
+    // loudest_neighbour_db is the larger of the two neighbours' levels (the definition in job.hpp), and
+    // wanted_tone_v the first station's tone.
+    for (const auto* m : {&loose, &critical}) {
+        const auto& st = (*m)["stations"];
+        REQUIRE(st.size() == 3);
+        CHECK((*m)["loudest_neighbour_db"].get<double>() ==
+              std::max(st[1]["level_db"].get<double>(), st[2]["level_db"].get<double>()));
+        CHECK((*m)["wanted_tone_v"].get<double>() == st[0]["tone_v"].get<double>());
+    }
+    // Up to critical coupling the wanted station gets louder.
+    CHECK(loose["wanted_tone_v"].get<double>() < critical["wanted_tone_v"].get<double>());
 }
