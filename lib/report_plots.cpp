@@ -342,27 +342,34 @@ void draw_receiver_plots(const sweep_result& sweep, const fs::path& dir, std::ve
                     dir, "selectivity");
         stems.push_back("selectivity");
     }
-    // Sensitivity versus selectivity: one point per receiver variant, labelled.
+    // Sensitivity versus selectivity: one point per receiver variant, labelled; a panel only where some
+    // variant has the figure (an untuned set has no bandwidth; gnuplot refuses a plot with no point).
     std::string pts;
+    int with_bw = 0, with_nb = 0;
     for (const auto* r : rx) {
         const double tone = detail::number_or_nan(r->metrics, "wanted_tone_v");
         const double y = tone > 0.0 ? 20.0 * std::log10(tone) : std::numeric_limits<double>::quiet_NaN();
         const double bw = r->job.receiver.rf_bandwidth_hz;
         const double nb = detail::number_or_nan(r->metrics, "loudest_neighbour_db");
         if (!std::isfinite(y)) continue;
+        with_bw += std::isfinite(bw) ? 1 : 0;
+        with_nb += std::isfinite(nb) ? 1 : 0;
         pts += fmt::format("{} {} {:.6g} \"{}\"\n", std::isfinite(bw) ? fmt::format("{:.6g}", bw / 1e3) : "NaN",
                            std::isfinite(nb) ? fmt::format("{:.6g}", nb) : "NaN", y, gp_escape(r->spec.name));
     }
-    if (pts.empty()) return;
+    if (with_bw == 0 && with_nb == 0) return;
     write_text_atomic(dir / "tradeoff.dat", pts);
-    const std::string body =
-        "set multiplot layout 1,2 title 'Sensitivity versus selectivity: the wanted station''s tone level at the earpiece'\n"
-        "set grid\nunset key\nset ylabel 'wanted tone amplitude, dBV'\nset offsets graph 0.1, graph 0.25, graph 0.1, graph 0.1\n"
-        "set xlabel 'RF -3 dB bandwidth at the detector, kHz'\n"
-        "plot 'tradeoff.dat' using 1:3 with points pt 7 ps 1.2 lc rgb '#3366aa', '' using 1:3:4 with labels offset 0.8,0.6 left font ',8'\n"
-        "set xlabel 'loudest neighbour re wanted, dB (lower: more selective)'\n"
-        "plot 'tradeoff.dat' using 2:3 with points pt 7 ps 1.2 lc rgb '#aa5533', '' using 2:3:4 with labels offset 0.8,0.6 left font ',8'\n"
-        "unset multiplot";
+    std::string body = fmt::format(
+        "set multiplot layout 1,{} title 'Sensitivity versus selectivity: the wanted station''s tone level at the earpiece'\n"
+        "set grid\nunset key\nset ylabel 'wanted tone amplitude, dBV'\nset offsets graph 0.1, graph 0.25, graph 0.1, graph 0.1\n",
+        (with_bw > 0 ? 1 : 0) + (with_nb > 0 ? 1 : 0));
+    if (with_bw > 0)
+        body += "set xlabel 'RF -3 dB bandwidth at the detector, kHz'\n"
+                "plot 'tradeoff.dat' using 1:3 with points pt 7 ps 1.2 lc rgb '#3366aa', '' using 1:3:4 with labels offset 0.8,0.6 left font ',8'\n";
+    if (with_nb > 0)
+        body += "set xlabel 'loudest neighbour re wanted, dB (lower: more selective)'\n"
+                "plot 'tradeoff.dat' using 2:3 with points pt 7 ps 1.2 lc rgb '#aa5533', '' using 2:3:4 with labels offset 0.8,0.6 left font ',8'\n";
+    body += "unset multiplot";
     run_gnuplot(terminal_pair_script("tradeoff", body, 1100, 480), dir, "tradeoff");
     stems.push_back("tradeoff");
 }
