@@ -167,3 +167,22 @@ TEST_CASE("a whole-receiver pack draws the selectivity and tradeoff plots and sh
     // Up to critical coupling the wanted station gets louder.
     CHECK(loose["wanted_tone_v"].get<double>() < critical["wanted_tone_v"].get<double>());
 }
+
+TEST_CASE("an untuned set has no resonance: no selectivity curve, and the tradeoff keeps only the neighbour panel")
+{
+    const fs::path out = fs::path(GALENA_TEST_TMP) / "untuned-pack";
+    fs::remove_all(out);
+    const fs::path base = fs::path(GALENA_SOURCE_DIR) / "scenarios/crystal-set.toml";
+    pack_options po;
+    po.sweep.threads = 1;
+    const pack_outcome o =
+        make_pack(base, {"signal.duration_s=0.1", "tuner.layout=untuned"}, {{"untuned", "", {"load.bleeder_ohm=47k"}, {}}}, out, po);
+    CHECK(o.sweep.variants[0].metrics["rf_bandwidth_hz"].is_null());
+    CHECK_FALSE(fs::exists(out / "plots" / "selectivity.svg"));
+    REQUIRE(fs::exists(out / "plots" / "tradeoff.gp"));
+    std::ifstream in(out / "plots" / "tradeoff.gp");
+    const std::string gp(std::istreambuf_iterator<char>(in), {});
+    CHECK(gp.find("layout 1,1") != std::string::npos);
+    CHECK(gp.find("loudest neighbour") != std::string::npos);
+    CHECK(gp.find("bandwidth") == std::string::npos);
+}
