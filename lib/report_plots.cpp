@@ -474,7 +474,7 @@ pack_plots draw_pack_plots(const sweep_result& sweep, const fs::path& dir, bool 
     if (err) std::rethrow_exception(err);
     if (!curve_error.empty()) {
         // The renders are done and worth keeping: report the curve failure and go on without the curves.
-        out.warnings.push_back(fmt::format("response and transfer curves left out: {}", curve_error));
+        out.warnings.push_back({warning_code::plots_left_out, fmt::format("response and transfer curves left out: {}", curve_error)});
         return out;
     }
     std::string tdata, tplot, rdata, rplot;

@@ -37,8 +37,8 @@ struct pack_outcome {
     std::filesystem::path playlist_csv;
     std::vector<playlist_segment> playlist;
     std::vector<matched_gain> matched;
-    /// Sentences for the user about parts left out (plots that could not be drawn); the caller shows them.
-    std::vector<std::string> warnings;
+    /// Parts left out (plots that could not be drawn: plots_left_out); the caller shows them.
+    std::vector<warning> warnings;
 };
 
 /// The comparison pack: the sweep, the playlist, the matched set, the plots and the page, in `out_dir`,

@@ -3,6 +3,7 @@
 
 #include "galena/front_end.hpp"
 #include "galena/sweep.hpp"
+#include "galena/warning.hpp"
 
 #include <complex>
 #include <filesystem>
@@ -37,9 +38,9 @@ struct selectivity_curve {
 /// What draw_pack_plots drew, and what it had to leave out.
 struct pack_plots {
     std::vector<std::string> stems;     ///< plot names drawn (NAME.svg and NAME.png in the folder)
-    /// One sentence per part left out that the caller should show (e.g. the response and transfer curves
-    /// when simulating one variant's curve failed); the library prints nothing.
-    std::vector<std::string> warnings;
+    /// One per part left out that the caller should show (code plots_left_out: e.g. the response and
+    /// transfer curves when simulating one variant's curve failed); the library prints nothing.
+    std::vector<warning> warnings;
 };
 
 /// Draws the pack's plots into `dir` as NAME.svg and NAME.png: zoom (carrier band, envelope and earpiece
