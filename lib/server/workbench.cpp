@@ -614,7 +614,7 @@ struct workbench::impl {
     {
         server.Get("/", [](const httplib::Request&, httplib::Response& res) {
             res.set_header("Cache-Control", "no-store");
-            res.set_header("Content-Security-Policy", "default-src 'self'; style-src 'self' 'unsafe-inline'; script-src 'self' 'unsafe-inline'; media-src 'self' blob:");
+            res.set_header("Content-Security-Policy", "default-src 'self'; style-src 'self' 'unsafe-inline'; script-src 'self' 'unsafe-inline'; media-src 'self' blob:; img-src 'self' data:");
             res.set_content(page_html.data(), page_html.size(), "text/html; charset=utf-8");
         });
         server.Get("/api/presets", [](const httplib::Request&, httplib::Response& res) { send_json(res, 200, presets_json()); });
