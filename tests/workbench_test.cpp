@@ -4,6 +4,7 @@
 #include "cli_support.hpp"
 
 #include "galena/cancel.hpp"
+#include "galena/characterize.hpp"
 #include "galena/job.hpp"
 #include "galena/scenario.hpp"
 #include "galena/workbench.hpp"
@@ -146,6 +147,19 @@ TEST_CASE("a render through the HTTP API has the metrics of the library's render
     const auto page = get(bench.port(), "/");
     CHECK(page.status == 200);
     CHECK(page.raw.find("galena workbench") != std::string::npos);
+
+    // The transfer curve is the library's, for the same circuit and carrier, with this setup's level marked.
+    const auto tc = post(bench.port(), "/api/transfer", body.dump());
+    REQUIRE_MESSAGE(tc.status == 200, tc.raw);
+    galena::characterize_settings cs;
+    cs.carrier_hz = s.am.carrier_hz;
+    cs.render.audio_rate_hz = s.render.audio_rate_hz;
+    cs.band_high_hz = std::min(10000.0, 0.5 * s.render.audio_rate_hz);
+    cs.tone_hz = s.programme.tone_hz;
+    cs.modulation_index = s.am.modulation_index;
+    json direct = galena::to_json(galena::measure_transfer_curve(s.circuit, galena::log_spaced(0.01, 3.0, 9), cs));
+    direct["operating_carrier_peak_v"] = s.am.carrier_peak_v;
+    CHECK(tc.body == direct);
 
     // The setup as a scenario file: it loads back to the same circuit.
     const auto toml = post(bench.port(), "/api/scenario", body.dump());

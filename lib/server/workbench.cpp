@@ -3,6 +3,7 @@
 
 #include "galena/audio_io.hpp"
 #include "galena/cancel.hpp"
+#include "galena/characterize.hpp"
 #include "galena/components.hpp"
 #include "galena/error.hpp"
 #include "galena/job.hpp"
@@ -458,6 +459,36 @@ struct workbench::impl {
         send_json(res, 200, out);
     }
 
+    /// The detector's transfer curve for the request's circuit: DC and recovered tone against carrier level
+    /// (measure_transfer_curve, nine levels from 10 mV to 3 V at the scenario's carrier, tone and
+    /// modulation), plus the operating point, the scenario's carrier level. Runs on a render slot.
+    void transfer_handler(const httplib::Request& req, httplib::Response& res)
+    {
+        const scenario s = scenario_of(overrides_of(req.body, nullptr));
+        if (s.tuner.layout != tuner_layout::bench) throw http_refusal(400, "transfer curve: only for tuner.layout = bench");
+        characterize_settings cs;
+        cs.carrier_hz = s.am.carrier_hz;
+        cs.render.audio_rate_hz = s.render.audio_rate_hz;
+        cs.band_high_hz = std::min(10000.0, 0.5 * s.render.audio_rate_hz);
+        cs.tone_hz = s.programme.kind == programme_kind::tone ? s.programme.tone_hz : 1000.0;
+        cs.modulation_index = s.am.modulation_index > 0.0 ? std::min(s.am.modulation_index, 1.0) : 0.3;
+        render_control control;
+        if (slots.acquire(control) != render_slots::outcome::acquired) throw http_refusal(503, "busy: try again shortly");
+        struct slot_guard {
+            render_slots& r;
+            ~slot_guard() { r.release(); }
+        } slot{slots};
+        try {
+            nlohmann::json out = to_json(measure_transfer_curve(s.circuit, log_spaced(0.01, 3.0, 9), cs));
+            out["operating_carrier_peak_v"] = s.am.carrier_peak_v;
+            send_json(res, 200, out);
+        } catch (const config_error& e) {
+            throw http_refusal(400, e.what());
+        } catch (const integration_error& e) {
+            throw http_refusal(422, e.what());
+        }
+    }
+
     void upload_handler(const httplib::Request& req, httplib::Response& res)
     {
         if (req.body.size() > opt.max_upload_bytes)
@@ -622,6 +653,7 @@ struct workbench::impl {
         server.Get("/api/defaults", guarded(&impl::defaults_handler));
         server.Post("/api/render", guarded(&impl::render_handler));
         server.Post("/api/scenario", guarded(&impl::scenario_handler));
+        server.Post("/api/transfer", guarded(&impl::transfer_handler));
         server.Post("/api/upload", guarded(&impl::upload_handler));
         server.Get(R"(/audio/([A-Za-z0-9_-]{1,64})/([0-9]{1,9})\.wav)", guarded(&impl::audio_handler));
         server.set_error_handler([](const httplib::Request& req, httplib::Response& res) {

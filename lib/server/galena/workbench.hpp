@@ -56,6 +56,8 @@ struct workbench_stats {
 ///    400: a bad value, with the same one-line message `galena render BASE --set ...` prints; 409: stopped
 ///    by a newer change of the same session; 413: body too large; 422: the solver failed; 503: busy.
 ///  - POST /api/scenario          same body; 200: the setup as a scenario file (TOML, attachment)
+///  - POST /api/transfer          same body; 200: the detector's transfer curve (to_json(transfer_curve) keys)
+///    and operating_carrier_peak_v, the scenario's carrier level
 ///  - POST /api/upload?session=ID body: a WAV file; 200: {"clip": "upload:N"} for signal.audio
 ///  - GET  /audio/ID/N.wav        a render of that session (the session's last few only)
 /// signal.audio takes a bundled clip name or an upload id, never a path; diode.file is refused.
