@@ -98,6 +98,14 @@ std::size_t resident_bytes()
     return resident * static_cast<std::size_t>(sysconf(_SC_PAGESIZE));
 }
 
+/// Bytes the allocator has handed out and not had back, over every arena (glibc's mallinfo2: uordblks plus
+/// mmapped blocks): what a leak grows. The resident size also holds freed memory the allocator keeps.
+std::size_t heap_in_use_bytes()
+{
+    const struct mallinfo2 mi = mallinfo2();
+    return mi.uordblks + mi.hblkhd;
+}
+
 /// Waits (bounded) until `done()` holds.
 template <class F>
 bool eventually(F done, double seconds = 60.0)
@@ -124,7 +132,8 @@ TEST_CASE("a render through the HTTP API has the metrics of the library's render
     const fs::path dir = fresh_dir(test_tmp, "render-direct");
     const auto o = galena::render_job_into(s, dir, {});
     CHECK(a.body["metrics"] == o.metrics); // every key and every number identical
-    CHECK(a.body["warnings"] == json(o.warnings));
+    CHECK(a.body["warnings"] == json(galena::warning_messages(o.warnings)));
+    CHECK(a.body["warning_codes"] == json(galena::warning_code_names(o.warnings)));
     CHECK(a.body["metrics"]["dc_v"].get<double>() > 0.0);
 
     // The audio is the render's WAV, byte for byte.
@@ -381,50 +390,69 @@ TEST_CASE("load: 200 requests from 16 loopback clients, good and bad mixed")
     const fs::path temp = bench->temp_dir();
     constexpr int clients = 16;
     constexpr int per_client = 200 / clients + 1; // 13 x 16 = 208 >= 200; the loop below stops at 200
-    const auto good_body = [](int k) { return json{{"load.bleeder_ohm", fmt::format("{}k", 10 + k % 50)}, {"signal.duration_s", 0.2}}.dump(); };
+    // Good requests cycle through four bleeders, all met in the warm-up: FFTW keeps what it learns about each
+    // new transform length (its planner's tables), and a new circuit brings new analysis lengths; that is the
+    // library's bounded cache, not the server's growth.
+    const auto good_body = [](int k) {
+        static const char* values[] = {"10k", "22k", "47k", "100k"};
+        return json{{"load.bleeder_ohm", values[k % 4]}, {"signal.duration_s", 0.2}}.dump();
+    };
     const std::vector<std::string> bad = {"{\"load.bleeder_ohm\": -1}", "{oops", "{\"signal.audio\": \"../../etc/passwd\"}", "[]",
                                           "{\"load.bleeder_ohm\": [1]}", "{\"nosuch.key\": 1}"};
 
-    // Warm-up: one good render per client, so that the baseline holds the threads and caches a render makes.
-    {
-        std::vector<std::future<int>> warm;
-        for (int c = 0; c < clients; ++c)
-            warm.push_back(std::async(std::launch::async, [&, c] { return post(port, fmt::format("/api/render?session=c{}", c), good_body(c)).status; }));
-        for (auto& w : warm) REQUIRE(w.get() == 200);
-    }
+    // Each client sends its share of `total` requests in turn on one keep-alive connection, a third of them bad.
+    struct tally {
+        std::atomic<int> issued{0}, good_sent{0}, good_ok{0}, bad_sent{0}, bad_4xx{0}, other{0};
+        std::mutex m;
+        std::vector<std::string> surprises;
+    };
+    const auto run_clients = [&](int total, tally& t) {
+        std::vector<std::thread> threads;
+        for (int c = 0; c < clients; ++c) {
+            threads.emplace_back([&, c] {
+                httplib::Client client("127.0.0.1", port);
+                client.set_read_timeout(120, 0);
+                for (int k = 0; k < per_client; ++k) {
+                    if (t.issued.fetch_add(1) >= total) return; // bounded: `total` requests in all
+                    const bool is_good = (c + k) % 3 != 0;
+                    const std::string body = is_good ? good_body(c * per_client + k) : bad[static_cast<std::size_t>(c + k) % bad.size()];
+                    const auto r = client.Post(fmt::format("/api/render?session=c{}", c).c_str(), body, "application/json");
+                    const int status = r ? r->status : -1;
+                    if (is_good) {
+                        ++t.good_sent;
+                        if (status == 200 && json::parse(r->body).contains("metrics")) ++t.good_ok;
+                        else {
+                            std::lock_guard lock(t.m);
+                            t.surprises.push_back(fmt::format("good request answered {}: {}", status, r ? r->body : httplib::to_string(r.error())));
+                        }
+                    } else {
+                        ++t.bad_sent;
+                        if (status >= 400 && status < 500 && json::parse(r->body).contains("error")) ++t.bad_4xx;
+                        else ++t.other;
+                    }
+                }
+            });
+        }
+        for (auto& th : threads) th.join();
+    };
+
+    // Warm-up: the same traffic, 48 requests, so that the baseline holds the threads, connections, malloc
+    // arenas and caches that serving makes; then the load proper.
+    tally warm;
+    run_clients(48, warm);
+    REQUIRE(warm.good_ok == warm.good_sent);
     malloc_trim(0);
     const std::size_t baseline = resident_bytes();
+    const std::size_t heap_baseline = heap_in_use_bytes();
 
-    std::atomic<int> issued{0}, good_sent{0}, good_ok{0}, bad_sent{0}, bad_4xx{0}, other{0};
-    std::mutex m;
-    std::vector<std::string> surprises;
-    std::vector<std::thread> threads;
-    for (int c = 0; c < clients; ++c) {
-        threads.emplace_back([&, c] {
-            httplib::Client client("127.0.0.1", port);
-            client.set_read_timeout(120, 0);
-            for (int k = 0; k < per_client; ++k) {
-                if (issued.fetch_add(1) >= 200) return; // bounded: 200 requests in all
-                const bool is_good = (c + k) % 3 != 0;
-                const std::string body = is_good ? good_body(c * per_client + k) : bad[static_cast<std::size_t>(c + k) % bad.size()];
-                const auto r = client.Post(fmt::format("/api/render?session=c{}", c).c_str(), body, "application/json");
-                const int status = r ? r->status : -1;
-                if (is_good) {
-                    ++good_sent;
-                    if (status == 200 && json::parse(r->body).contains("metrics")) ++good_ok;
-                    else {
-                        std::lock_guard lock(m);
-                        surprises.push_back(fmt::format("good request answered {}: {}", status, r ? r->body : std::string()));
-                    }
-                } else {
-                    ++bad_sent;
-                    if (status >= 400 && status < 500 && json::parse(r->body).contains("error")) ++bad_4xx;
-                    else ++other;
-                }
-            }
-        });
-    }
-    for (auto& t : threads) t.join();
+    tally t;
+    run_clients(200, t);
+    auto& surprises = t.surprises;
+    auto& good_sent = t.good_sent;
+    auto& good_ok = t.good_ok;
+    auto& bad_sent = t.bad_sent;
+    auto& bad_4xx = t.bad_4xx;
+    auto& other = t.other;
     for (const auto& s : surprises) MESSAGE(s);
     CHECK(good_sent + bad_sent == 200);
     CHECK(good_ok == good_sent);
@@ -433,9 +461,17 @@ TEST_CASE("load: 200 requests from 16 loopback clients, good and bad mixed")
     CHECK(get(port, "/api/presets").status == 200); // still serving
     malloc_trim(0);
     const std::size_t after = resident_bytes();
-    MESSAGE("resident memory: " << baseline / 1024 << " KiB after warm-up, " << after / 1024 << " KiB after 200 requests; "
-                                << good_sent.load() << " good, " << bad_sent.load() << " bad");
+    const std::size_t heap_after = heap_in_use_bytes();
+    MESSAGE("heap in use: " << heap_baseline / 1024 << " KiB after warm-up, " << heap_after / 1024 << " KiB after 200 requests; resident: "
+                            << baseline / 1024 << " KiB, " << after / 1024 << " KiB; " << good_sent.load() << " good, "
+                            << bad_sent.load() << " bad");
+    // Memory back to its baseline within 10 %: the resident size (measured: +1 %).
     CHECK(static_cast<double>(after) <= 1.10 * static_cast<double>(baseline));
+    // And no leak hides in it: the allocator's bytes in use grow by less than 1 MiB over the 200 requests
+    // (measured: about 0.4 MiB, the per-thread caches of HTTP threads met for the first time). Keeping one
+    // render's metrics or samples per request would add 2.5 MiB or more (0.2 s of float samples at 24 kHz
+    // is 19 KiB, times the 130-odd good requests).
+    CHECK(heap_after < heap_baseline + (1u << 20));
     bench.reset(); // stop and clean up
     CHECK(!fs::exists(temp));
     CHECK(fs::is_empty(temp_parent));

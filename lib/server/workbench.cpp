@@ -9,6 +9,7 @@
 #include "galena/job.hpp"
 #include "galena/scenario.hpp"
 #include "galena/units.hpp"
+#include "galena/warning.hpp"
 
 #include <httplib.h>
 
@@ -19,6 +20,7 @@
 #include <deque>
 #include <fmt/format.h>
 #include <fstream>
+#include <future>
 #include <map>
 #include <mutex>
 #include <nlohmann/json.hpp>
@@ -84,53 +86,108 @@ private:
     std::atomic<int> m_reason{0};
 };
 
-/// Render threads: at most `threads` renders at once, at most `queue_limit` waiting.
-class render_slots {
+/// The render threads: `threads` workers (renders of different sessions in parallel up to the core count)
+/// and a queue of at most `queue_limit` waiting jobs. Renders run only here, never on the HTTP threads, so
+/// whatever a render leaves per thread (allocator caches) stays on these few threads.
+class render_pool {
 public:
-    render_slots(unsigned threads, std::size_t queue_limit) : m_threads(threads), m_free(threads), m_queue_limit(queue_limit) {}
+    render_pool(unsigned threads, std::size_t queue_limit) : m_queue_limit(queue_limit)
+    {
+        for (unsigned t = 0; t < threads; ++t) m_threads.emplace_back([this] { work(); });
+    }
+    ~render_pool() { shutdown(); }
+    render_pool(const render_pool&) = delete;
+    render_pool& operator=(const render_pool&) = delete;
+
+    /// Queues `job` for a render thread. Jobs whose control was cancelled while they waited leave the queue
+    /// first (run here: a job's first act is to see its cancel and finish). False when the queue is full.
+    bool submit(std::shared_ptr<render_control> control, std::function<void()> job)
+    {
+        std::vector<std::function<void()>> dropped;
+        bool accepted = false;
+        {
+            std::lock_guard lock(m_mutex);
+            for (auto it = m_queue.begin(); it != m_queue.end();) {
+                if (it->first->cancelled()) {
+                    dropped.push_back(std::move(it->second));
+                    it = m_queue.erase(it);
+                } else {
+                    ++it;
+                }
+            }
+            if (!m_stopping && m_queue.size() < m_queue_limit) {
+                m_queue.emplace_back(std::move(control), std::move(job));
+                accepted = true;
+            }
+        }
+        for (auto& d : dropped) d();
+        if (accepted) m_cv.notify_one();
+        return accepted;
+    }
     /// Renders running and waiting now.
     std::pair<std::size_t, std::size_t> load()
     {
         std::lock_guard lock(m_mutex);
-        return {m_threads - m_free, m_waiting};
+        return {m_running, m_queue.size()};
     }
-    enum class outcome { acquired, queue_full, cancelled };
-    outcome acquire(const render_control& c)
-    {
-        std::unique_lock lock(m_mutex);
-        if (m_free > 0 && m_waiting == 0) {
-            --m_free;
-            return outcome::acquired;
-        }
-        if (m_waiting >= m_queue_limit) return outcome::queue_full;
-        ++m_waiting;
-        // Polled, so that a cancel (a newer change, shutdown) also ends the wait.
-        while (m_free == 0 && !c.cancelled()) m_cv.wait_for(lock, std::chrono::milliseconds(20));
-        --m_waiting;
-        if (c.cancelled()) {
-            m_cv.notify_one();
-            return outcome::cancelled;
-        }
-        --m_free;
-        return outcome::acquired;
-    }
-    void release()
+    /// Runs what is queued (each job sees its cancel) and joins the threads.
+    void shutdown()
     {
         {
             std::lock_guard lock(m_mutex);
-            ++m_free;
+            m_stopping = true;
         }
-        m_cv.notify_one();
+        m_cv.notify_all();
+        for (auto& t : m_threads)
+            if (t.joinable()) t.join();
     }
 
 private:
+    void work()
+    {
+        for (;;) {
+            std::function<void()> job;
+            {
+                std::unique_lock lock(m_mutex);
+                m_cv.wait(lock, [this] { return m_stopping || !m_queue.empty(); });
+                if (m_queue.empty()) return; // stopping, nothing left
+                job = std::move(m_queue.front().second);
+                m_queue.pop_front();
+                ++m_running;
+            }
+            job();
+            std::lock_guard lock(m_mutex);
+            --m_running;
+        }
+    }
+
     std::mutex m_mutex;
     std::condition_variable m_cv;
-    unsigned m_threads;
-    unsigned m_free;
-    std::size_t m_waiting = 0;
+    std::deque<std::pair<std::shared_ptr<render_control>, std::function<void()>>> m_queue;
     std::size_t m_queue_limit;
+    std::size_t m_running = 0;
+    bool m_stopping = false;
+    std::vector<std::thread> m_threads;
 };
+
+/// Runs `work` on the pool and waits for it; rethrows what it threw. False when the queue was full.
+template <class R, class F>
+bool run_on(render_pool& pool, const std::shared_ptr<render_control>& control, F work, R& result)
+{
+    std::promise<R> done;
+    auto answer = done.get_future();
+    const bool queued = pool.submit(control, [&done, &work, control] {
+        try {
+            if (control->cancelled()) throw cancelled_error("stopped before it started", 0);
+            done.set_value(work());
+        } catch (...) {
+            done.set_exception(std::current_exception());
+        }
+    });
+    if (!queued) return false;
+    result = answer.get();
+    return true;
+}
 
 struct session {
     std::string id;
@@ -195,7 +252,7 @@ struct workbench::impl {
     httplib::Server server;
     std::thread listener;
     int bound_port = 0;
-    render_slots slots;
+    render_pool pool;
     std::mutex mutex; ///< guards sessions and the counters
     std::map<std::string, std::shared_ptr<session>> sessions;
     std::atomic<unsigned> anonymous{0};
@@ -206,7 +263,7 @@ struct workbench::impl {
 
     explicit impl(workbench_options o)
         : opt(std::move(o)),
-          slots(opt.render_threads != 0 ? opt.render_threads : std::max(1u, std::thread::hardware_concurrency()), opt.queue_limit)
+          pool(opt.render_threads != 0 ? opt.render_threads : std::max(1u, std::thread::hardware_concurrency()), opt.queue_limit)
     {
     }
 
@@ -400,26 +457,24 @@ struct workbench::impl {
             default: return {503, "stopped: the workbench is shutting down"};
             }
         };
-        switch (slots.acquire(*control)) {
-        case render_slots::outcome::queue_full:
-            finish();
-            throw http_refusal(503, fmt::format("busy: {} renders are waiting, the limit; try again shortly", opt.queue_limit));
-        case render_slots::outcome::cancelled: throw stopped();
-        case render_slots::outcome::acquired: break;
-        }
-        struct slot_guard {
-            render_slots& r;
-            ~slot_guard() { r.release(); }
-        } slot{slots};
-        if (stopping) control->cancel(render_control::reason::shutting_down);
         const fs::path dir = sess.dir / fmt::format("r{}", n);
-        std::error_code ec;
-        fs::create_directory(dir, ec);
-        if (ec) throw http_refusal(500, fmt::format("cannot make the render folder: {}", ec.message()));
         job_outcome o;
         try {
-            o = control->render(s, dir, opt.render_timeout_s);
+            const bool queued = run_on(pool, control, [&] {
+                if (stopping) control->cancel(render_control::reason::shutting_down);
+                std::error_code e;
+                fs::create_directory(dir, e);
+                if (e) throw resource_error(fmt::format("cannot make the render folder: {}", e.message()));
+                return control->render(s, dir, opt.render_timeout_s);
+            }, o);
+            if (!queued) {
+                finish();
+                throw http_refusal(503, fmt::format("busy: {} renders are waiting, the limit; try again shortly", opt.queue_limit));
+            }
+        } catch (const http_refusal&) {
+            throw;
         } catch (...) {
+            std::error_code ec;
             fs::remove_all(dir, ec);
             try {
                 throw;
@@ -441,6 +496,7 @@ struct workbench::impl {
         }
         finish();
         {
+            std::error_code ec;
             std::lock_guard lock(mutex);
             sess.renders.push_back(n);
             while (sess.renders.size() > std::max<std::size_t>(opt.kept_renders, 1)) {
@@ -451,7 +507,8 @@ struct workbench::impl {
         }
         nlohmann::json out;
         out["metrics"] = o.metrics;
-        out["warnings"] = o.warnings;
+        out["warnings"] = warning_messages(o.warnings);
+        out["warning_codes"] = warning_code_names(o.warnings);
         out["session"] = sess.id;
         out["render_id"] = n;
         out["audio_url"] = fmt::format("/audio/{}/{}.wav", sess.id, n);
@@ -461,7 +518,7 @@ struct workbench::impl {
 
     /// The detector's transfer curve for the request's circuit: DC and recovered tone against carrier level
     /// (measure_transfer_curve, nine levels from 10 mV to 3 V at the scenario's carrier, tone and
-    /// modulation), plus the operating point, the scenario's carrier level. Runs on a render slot.
+    /// modulation), plus the operating point, the scenario's carrier level. Runs on the render threads.
     void transfer_handler(const httplib::Request& req, httplib::Response& res)
     {
         const scenario s = scenario_of(overrides_of(req.body, nullptr));
@@ -472,14 +529,12 @@ struct workbench::impl {
         cs.band_high_hz = std::min(10000.0, 0.5 * s.render.audio_rate_hz);
         cs.tone_hz = s.programme.kind == programme_kind::tone ? s.programme.tone_hz : 1000.0;
         cs.modulation_index = s.am.modulation_index > 0.0 ? std::min(s.am.modulation_index, 1.0) : 0.3;
-        render_control control;
-        if (slots.acquire(control) != render_slots::outcome::acquired) throw http_refusal(503, "busy: try again shortly");
-        struct slot_guard {
-            render_slots& r;
-            ~slot_guard() { r.release(); }
-        } slot{slots};
+        auto control = std::make_shared<render_control>();
         try {
-            nlohmann::json out = to_json(measure_transfer_curve(s.circuit, log_spaced(0.01, 3.0, 9), cs));
+            transfer_curve tc;
+            if (!run_on(pool, control, [&] { return measure_transfer_curve(s.circuit, log_spaced(0.01, 3.0, 9), cs); }, tc))
+                throw http_refusal(503, "busy: try again shortly");
+            nlohmann::json out = to_json(tc);
             out["operating_carrier_peak_v"] = s.am.carrier_peak_v;
             send_json(res, 200, out);
         } catch (const config_error& e) {
@@ -691,10 +746,10 @@ workbench::workbench(workbench_options options) : m_impl(std::make_unique<impl>(
     if (::mkdtemp(pattern.data()) == nullptr)
         throw resource_error(fmt::format("workbench: cannot make a private temporary folder in {}: {}", parent.string(), std::strerror(errno)));
     m.temp = pattern;
-    const std::size_t handler_threads = std::max<std::size_t>(8, m.opt.queue_limit + 2 * std::max(1u, std::thread::hardware_concurrency()) + 4);
+    const std::size_t handler_threads = std::max<std::size_t>(8, m.opt.queue_limit + 2 * std::max(1u, std::thread::hardware_concurrency()) + 4); // waiting renders hold one each
     m.server.new_task_queue = [handler_threads] { return new httplib::ThreadPool(handler_threads); };
     m.server.set_payload_max_length(std::max(m.opt.max_body_bytes, m.opt.max_upload_bytes));
-    m.server.set_keep_alive_timeout(2);
+    m.server.set_keep_alive_timeout(5);
     m.server.set_read_timeout(10);
     m.server.set_write_timeout(10);
     m.routes();
@@ -724,7 +779,7 @@ workbench_stats workbench::stats() const
     std::lock_guard lock(m_impl->mutex);
     auto s = m_impl->counters;
     s.sessions = m_impl->sessions.size();
-    std::tie(s.renders_running, s.renders_waiting) = m_impl->slots.load();
+    std::tie(s.renders_running, s.renders_waiting) = m_impl->pool.load();
     return s;
 }
 
@@ -746,7 +801,8 @@ void workbench::stop()
             if (s->current) s->current->cancel(render_control::reason::shutting_down);
     }
     m.server.stop();
-    if (m.listener.joinable()) m.listener.join();
+    if (m.listener.joinable()) m.listener.join(); // every handler has had its answer
+    m.pool.shutdown();
     std::error_code ec;
     fs::remove_all(m.temp, ec);
     m.stopped = true;

@@ -52,7 +52,8 @@ struct workbench_stats {
 ///  - GET  /api/clips             the bundled clips: [{name, seconds}]
 ///  - GET  /api/defaults          the base scenario's values: {section.key: value} and "scenario" (TOML)
 ///  - POST /api/render?session=ID body {section.key: value, ...} (numbers, strings such as "47k", true/false:
-///    the value syntax of --set). 200: {metrics (metrics.json's keys), warnings, audio_url, render_id, wall_s}.
+///    the value syntax of --set). 200: {metrics (metrics.json's keys), warnings (sentences),
+///    warning_codes (their codes), audio_url, render_id, wall_s}.
 ///    400: a bad value, with the same one-line message `galena render BASE --set ...` prints; 409: stopped
 ///    by a newer change of the same session; 413: body too large; 422: the solver failed; 503: busy.
 ///  - POST /api/scenario          same body; 200: the setup as a scenario file (TOML, attachment)
