@@ -292,6 +292,25 @@ TEST_CASE("paths in requests are refused: traversal, absolute paths, links, othe
     CHECK(mine.body["metrics"]["dc_v"].get<double>() > 0.0);
     const auto theirs = post(port, "/api/render?session=u", json{{"signal.audio", clip}, {"signal.duration_s", 0.3}}.dump());
     CHECK(theirs.status == 400);
+    // A fitted diode file: uploaded, it renders as the library renders the same file; a bad one is refused
+    // with the library's message; a path or another session's file is refused.
+    const std::string diode_text = "[diode]\nsaturation_current_a = 2e-7\nemission_coefficient = 1.2\nseries_resistance_ohm = 30\n";
+    const auto d = post(port, "/api/upload-diode?session=t", diode_text, "application/toml");
+    REQUIRE_MESSAGE(d.status == 200, d.raw);
+    CHECK(d.body["diode"] == "upload:d1");
+    const auto with_file = post(port, "/api/render?session=t", json{{"diode.file", "upload:d1"}, {"signal.duration_s", 0.3}}.dump());
+    REQUIRE_MESSAGE(with_file.status == 200, with_file.raw);
+    const fs::path diode_copy = fresh_dir(test_tmp, "paths-diode") / "diode.toml";
+    write_file(diode_copy, diode_text);
+    const auto direct = galena::render_job_into(
+        galena::load_scenario(base_scenario, {"diode.file=" + diode_copy.string(), "signal.duration_s=0.3"}), diode_copy.parent_path(), {});
+    CHECK(with_file.body["metrics"] == direct.metrics);
+    const auto bad_diode = post(port, "/api/upload-diode?session=t", "[diode]\nemission_coefficient = 50\n", "application/toml");
+    CHECK(bad_diode.status == 400);
+    CHECK(bad_diode.body["error"].get<std::string>().find("diode.emission_coefficient") != std::string::npos);
+    CHECK(post(port, "/api/render?session=u", json{{"diode.file", "upload:d1"}}.dump()).status == 400);
+    CHECK(post(port, "/api/render?session=t", json{{"diode.file", "upload:d1/../../x"}}.dump()).status == 400);
+
     const auto junk = post(port, "/api/upload?session=t", "this is not audio", "audio/wav");
     CHECK(junk.status == 400);
     CHECK(junk.body["error"].get<std::string>().find("not an audio file") != std::string::npos);

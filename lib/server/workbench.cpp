@@ -196,7 +196,9 @@ struct session {
     unsigned next_render = 1;
     std::deque<unsigned> renders;            ///< kept renders, oldest first
     unsigned next_upload = 1;
-    std::deque<unsigned> uploads;            ///< kept uploads, oldest first
+    unsigned next_diode = 1;
+    std::deque<unsigned> uploads;            ///< kept clip uploads, oldest first
+    std::deque<unsigned> diode_uploads;      ///< kept diode-file uploads, oldest first
     clock_type::time_point last_used = clock_type::now();
     int busy = 0;                            ///< requests of this session in progress
 };
@@ -375,6 +377,8 @@ struct workbench::impl {
             if (key == "signal.audio") {
                 if (!v.is_string()) throw http_refusal(400, "signal.audio: must be a clip name (GET /api/clips) or an upload (upload:N)");
                 text = toml_string(clip_path(text, sess).string());
+            } else if (key == "diode.file" && v.is_string() && text.starts_with("upload:d") && sess != nullptr) {
+                text = toml_string(diode_path(text, *sess).string());
             } else if (key == "diode.file" || key.starts_with("station.") || key.ends_with(".audio") || key.ends_with(".file")) {
                 throw http_refusal(400, fmt::format("{}: the workbench takes no file paths; give diode.preset or the diode.* values", key));
             }
@@ -405,6 +409,19 @@ struct workbench::impl {
         std::error_code ec;
         if (fs::symlink_status(it->second, ec).type() != fs::file_type::regular) throw refuse(); // replaced since start-up
         return it->second;
+    }
+
+    /// The file a diode.file value "upload:dN" names: a diode file this session uploaded.
+    fs::path diode_path(const std::string& value, session& sess)
+    {
+        const std::string n = value.substr(8);
+        std::lock_guard lock(mutex);
+        if (n.empty() || n.size() > 9 || !std::all_of(n.begin(), n.end(), [](char c) { return c >= '0' && c <= '9'; }) ||
+            std::find(sess.diode_uploads.begin(), sess.diode_uploads.end(), static_cast<unsigned>(std::stoul(n))) == sess.diode_uploads.end())
+            throw http_refusal(400, fmt::format("diode.file = \"{}\": not a diode file uploaded in this session (upload:dN); the "
+                                                "workbench takes no file paths",
+                                                value));
+        return sess.dir / "uploads" / fmt::format("d{}.toml", n);
     }
 
     scenario scenario_of(const std::vector<std::string>& sets)
@@ -521,7 +538,8 @@ struct workbench::impl {
     /// modulation), plus the operating point, the scenario's carrier level. Runs on the render threads.
     void transfer_handler(const httplib::Request& req, httplib::Response& res)
     {
-        const scenario s = scenario_of(overrides_of(req.body, nullptr));
+        const auto held = req.has_param("session") ? lease(req) : nullptr; // for its uploads
+        const scenario s = scenario_of(overrides_of(req.body, held ? held->s.get() : nullptr));
         if (s.tuner.layout != tuner_layout::bench) throw http_refusal(400, "transfer curve: only for tuner.layout = bench");
         characterize_settings cs;
         cs.carrier_hz = s.am.carrier_hz;
@@ -587,6 +605,44 @@ struct workbench::impl {
         send_json(res, 200, {{"clip", fmt::format("upload:{}", n)}, {"seconds", seconds}, {"session", sess.id}});
     }
 
+    /// A diode file (diode.toml, as `galena fit-diode` writes it): kept in the session's folder once it loads.
+    void diode_upload_handler(const httplib::Request& req, httplib::Response& res)
+    {
+        if (req.body.size() > opt.max_body_bytes)
+            throw http_refusal(413, fmt::format("diode file: {} bytes, more than the {}-byte limit", req.body.size(), opt.max_body_bytes));
+        const auto held = lease(req);
+        session& sess = *held->s;
+        unsigned n = 0;
+        {
+            std::lock_guard lock(mutex);
+            n = sess.next_diode++;
+        }
+        const fs::path folder = sess.dir / "uploads";
+        std::error_code ec;
+        fs::create_directories(folder, ec);
+        const fs::path file = folder / fmt::format("d{}.toml", n);
+        {
+            std::ofstream out(file, std::ios::binary | std::ios::trunc);
+            out.write(req.body.data(), static_cast<std::streamsize>(req.body.size()));
+        }
+        std::string name;
+        try {
+            name = load_scenario(opt.base_scenario, {"diode.file=" + toml_string(file.string())}).circuit.diode.name;
+        } catch (const config_error& e) {
+            fs::remove(file, ec);
+            throw http_refusal(400, fmt::format("diode file: {}", e.what()));
+        }
+        {
+            std::lock_guard lock(mutex);
+            sess.diode_uploads.push_back(n);
+            while (sess.diode_uploads.size() > std::max<std::size_t>(opt.max_uploads, 1)) {
+                fs::remove(folder / fmt::format("d{}.toml", sess.diode_uploads.front()), ec);
+                sess.diode_uploads.pop_front();
+            }
+        }
+        send_json(res, 200, {{"diode", fmt::format("upload:d{}", n)}, {"name", name}, {"session", sess.id}});
+    }
+
     void audio_handler(const httplib::Request& req, httplib::Response& res)
     {
         const std::string id = req.matches[1];
@@ -608,7 +664,8 @@ struct workbench::impl {
 
     void scenario_handler(const httplib::Request& req, httplib::Response& res)
     {
-        const scenario s = scenario_of(overrides_of(req.body, nullptr));
+        const auto held = req.has_param("session") ? lease(req) : nullptr; // for its uploads
+        const scenario s = scenario_of(overrides_of(req.body, held ? held->s.get() : nullptr));
         res.status = 200;
         res.set_header("Content-Disposition", "attachment; filename=\"workbench-setup.toml\"");
         res.set_content("# Made by the galena workbench: its base scenario with the page's values.\n" + to_toml(s), "application/toml");
@@ -710,6 +767,7 @@ struct workbench::impl {
         server.Post("/api/scenario", guarded(&impl::scenario_handler));
         server.Post("/api/transfer", guarded(&impl::transfer_handler));
         server.Post("/api/upload", guarded(&impl::upload_handler));
+        server.Post("/api/upload-diode", guarded(&impl::diode_upload_handler));
         server.Get(R"(/audio/([A-Za-z0-9_-]{1,64})/([0-9]{1,9})\.wav)", guarded(&impl::audio_handler));
         server.set_error_handler([](const httplib::Request& req, httplib::Response& res) {
             if (!res.body.empty()) return;

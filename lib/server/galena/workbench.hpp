@@ -56,12 +56,13 @@ struct workbench_stats {
 ///    warning_codes (their codes), audio_url, render_id, wall_s}.
 ///    400: a bad value, with the same one-line message `galena render BASE --set ...` prints; 409: stopped
 ///    by a newer change of the same session; 413: body too large; 422: the solver failed; 503: busy.
-///  - POST /api/scenario          same body; 200: the setup as a scenario file (TOML, attachment)
+///  - POST /api/scenario[?session=ID] same body (the session's uploads may be named); 200: the setup as a scenario file (TOML, attachment)
 ///  - POST /api/transfer          same body; 200: the detector's transfer curve (to_json(transfer_curve) keys)
 ///    and operating_carrier_peak_v, the scenario's carrier level
 ///  - POST /api/upload?session=ID body: a WAV file; 200: {"clip": "upload:N"} for signal.audio
+///  - POST /api/upload-diode?session=ID body: a diode file (diode.toml of fit-diode); 200: {"diode": "upload:dN"}
 ///  - GET  /audio/ID/N.wav        a render of that session (the session's last few only)
-/// signal.audio takes a bundled clip name or an upload id, never a path; diode.file is refused.
+/// signal.audio takes a bundled clip name or an upload id, diode.file only a diode upload id; never a path.
 class workbench {
 public:
     /// Throws config_error for bad options or a base scenario that does not load, resource_error when the
