@@ -484,6 +484,11 @@ TEST_CASE("load: 200 requests from 16 loopback clients, good and bad mixed")
     MESSAGE("heap in use: " << heap_baseline / 1024 << " KiB after warm-up, " << heap_after / 1024 << " KiB after 200 requests; resident: "
                             << baseline / 1024 << " KiB, " << after / 1024 << " KiB; " << good_sent.load() << " good, "
                             << bad_sent.load() << " bad");
+#if defined(__SANITIZE_ADDRESS__)
+    // AddressSanitizer keeps freed memory in quarantine and replaces the allocator: neither figure means
+    // anything here; its leak checker reports leaks at exit instead.
+    MESSAGE("memory checks skipped under AddressSanitizer");
+#else
     // Memory back to its baseline within 10 %: the resident size (measured: +1 %).
     CHECK(static_cast<double>(after) <= 1.10 * static_cast<double>(baseline));
     // And no leak hides in it: the allocator's bytes in use grow by less than 1 MiB over the 200 requests
@@ -491,6 +496,7 @@ TEST_CASE("load: 200 requests from 16 loopback clients, good and bad mixed")
     // render's metrics or samples per request would add 2.5 MiB or more (0.2 s of float samples at 24 kHz
     // is 19 KiB, times the 130-odd good requests).
     CHECK(heap_after < heap_baseline + (1u << 20));
+#endif
     bench.reset(); // stop and clean up
     CHECK(!fs::exists(temp));
     CHECK(fs::is_empty(temp_parent));
