@@ -165,6 +165,8 @@ void print_pack(const galena::pack_outcome& o, const std::string& out_dir, doubl
     fmt::print("{}", galena::table_markdown(o.sweep.variants));
     fmt::print("\nwrote {} ({} variants, playlist {}); {:.1f} s wall\n", (std::filesystem::path(out_dir) / "index.html").string(),
                o.sweep.variants.size(), o.playlist_wav.string(), wall_s);
+    std::fflush(stdout);
+    for (const auto& w : o.warnings) std::fprintf(stderr, "galena: warning: %s\n", w.message.c_str());
 }
 
 } // namespace
@@ -259,7 +261,7 @@ int main(int argc, char** argv)
 
     std::string demo_out = "demo-out";
     unsigned demo_threads = 0;
-    auto* demo = app.add_subcommand("demo", "render the bundled demo pack (bleeder values; germanium vs Schottky; weak and strong carrier)");
+    auto* demo = app.add_subcommand("demo", "render the bundled demo: a crystal set on an invented band (coupling, detector tap, bleeder, diode)");
     demo->add_option("--out,-o", demo_out, "output directory")->capture_default_str();
     demo->add_option("--threads,-j", demo_threads, "worker threads (0 = all cores)");
     demo->add_flag("--overwrite", overwrite, "replace existing output files");
@@ -362,6 +364,8 @@ int main(int argc, char** argv)
             std::vector<std::filesystem::path> files(rk_diodes.begin(), rk_diodes.end());
             const auto o = galena::rank_diodes(rk_scenario, rk_sets, files, rk_out, ro);
             fmt::print("{}\nwrote {}, {} and {}\n", galena::ranking_markdown(o), o.csv.string(), o.markdown.string(), o.pack.page.string());
+            std::fflush(stdout);
+            for (const auto& w : o.pack.warnings) std::fprintf(stderr, "galena: warning: %s\n", w.message.c_str());
             return exit_ok;
         }
         if (*check) {
