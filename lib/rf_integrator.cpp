@@ -71,7 +71,7 @@ rf_integrator::rf_integrator(const state_space& ss, int input, const junction_la
     m_end_last = last == m_block ? m_end : tabulate(eye, zero, zero, last, true);
     m_env.assign(4 * stations.size(), 0.0);
     for (int k = 1; k <= m_n; ++k) m_ref_phasor.push_back(std::polar(1.0, -two_pi * static_cast<double>(k) / m_n));
-    m_v_prev.assign(static_cast<std::size_t>(m_n), 0.0);
+    m_prev.assign(static_cast<std::size_t>(m_n), phase_point{});
     m_x = Eigen::VectorXd::Zero(n);
     m_z = Eigen::VectorXd::Zero(n + 8 * static_cast<Eigen::Index>(stations.size()));
     m_jb = Eigen::VectorXd::Zero(m_block + 1);
@@ -168,8 +168,13 @@ void rf_integrator::initialize()
     m_j = 0.0;
     const junction_values jv = m_law.evaluate(0.0);
     m_i0 = jv.current_a;
-    m_qr0 = jv.charge_c;
-    std::fill(m_v_prev.begin(), m_v_prev.end(), 0.0);
+    m_qr0 = m_charge ? jv.charge_c : 0.0;
+    m_g0_s = jv.conductance_s;
+    m_cr0_f = m_charge ? jv.capacitance_f - m_c_lin : 0.0;
+    // The predictor's first cycle linearises the law at v = 0 (beta as in run_cycle).
+    const double beta = m_port.j(0, 1);
+    const double g = m_g0_s + m_cr0_f / m_h;
+    std::fill(m_prev.begin(), m_prev.end(), phase_point{0.0, m_i0 + m_qr0 / m_h, 1.0 / (1.0 - beta * g)});
     std::fill(m_out_last.begin(), m_out_last.end(), 0.0);
     m_stats = {};
 }
@@ -215,13 +220,16 @@ double rf_integrator::solve_junction(double alpha, double beta, double v, double
             }
         }
         const double dv = vn - v;
-        // Newton's remaining error after this update is about |F''| dv^2 / (2 F'), F'' = -beta dI'/dv (the
-        // charge's curvature is left out: it is bounded by the conductance's in forward conduction).
-        if (std::fabs(dv) <= m_tol || 0.5 * std::fabs(beta * jv.conductance_slope_s_per_v) * dv * dv <= m_tol * df) {
+        // Newton's remaining error after this update is about |F''| dv^2 / (2 F'), F'' = -beta (I'' + C_r' / h).
+        double curvature = jv.conductance_slope_s_per_v;
+        if constexpr (Charge) curvature += inv_h * jv.capacitance_slope_f_per_v;
+        if (std::fabs(dv) <= m_tol || 0.5 * std::fabs(beta * curvature) * dv * dv <= m_tol * df) {
             // Converged: the update is below the tolerance; carry the law to vn linearly.
             j1 = jj + dj * dv;
             m_i0 = jv.current_a + jv.conductance_s * dv;
             m_qr0 = qr + cr * dv;
+            m_g0_s = jv.conductance_s;
+            m_cr0_f = cr;
             return vn;
         }
         v = vn;
@@ -271,7 +279,7 @@ void rf_integrator::run_cycle(std::span<double> out)
     }
     const std::size_t no = m_outs.size();
     for (std::size_t o = 0; o < no; ++o) m_out_mean[o] = 0.5 * m_out_last[o];
-    double v_before = m_v_prev[static_cast<std::size_t>(m_n - 1)];
+    const double inv_h = 1.0 / m_h;
     for (int k0 = 0; k0 < m_n; k0 += m_block) {
         const int len = std::min(m_block, m_n - k0);
         const double tau0 = static_cast<double>(k0) / m_n;
@@ -298,15 +306,19 @@ void rf_integrator::run_cycle(std::span<double> out)
             const auto kk = static_cast<std::size_t>(k0 + k - 1);
             const double alpha = m_free[k - 1] + m_port.j.row(k - 1).head(k).dot(m_jb.head(k));
             const double beta = m_port.j(k - 1, k);
-            const double old = m_v_prev[kk];
-            const double guess = old + (m_v - v_before);
-            v_before = old;
+            // Predictor: the junction law linearised at this phase's solution one cycle earlier, solved with
+            // this step's v = alpha + beta J(v) (a Newton step from there that costs no law evaluation).
+            // (The division is made when the point is stored, off this step's chain of dependent operations.)
+            phase_point& pp = m_prev[kk];
+            double guess = (alpha + beta * (pp.offset_a - m_qr0 * inv_h)) * pp.inv_den;
+            if (!std::isfinite(guess)) guess = pp.v;
             double j1 = 0.0;
             const double v1 = solve_junction<Breakdown, Charge, SquareRoot>(alpha, beta, guess, j1);
+            const double g = m_g0_s + m_cr0_f * inv_h;
+            pp = {v1, m_i0 + m_qr0 * inv_h - g * v1, 1.0 / (1.0 - beta * g)};
             m_jb[k] = j1;
             m_v = v1;
             m_j = j1;
-            m_v_prev[kk] = v1;
             if (m_phasors) {
                 m_v_phasor += v1 * m_ref_phasor[kk];
                 m_j_phasor += j1 * m_ref_phasor[kk];

@@ -142,13 +142,19 @@ private:
     std::vector<double> m_env;                                // per station: envelope at cycles c-1 .. c+2
     std::vector<double> m_out_mean, m_out_peak, m_out_last;
     std::vector<std::complex<double>> m_ref_phasor;           // e^{-j 2 pi k / N}, k = 1..N
-    std::vector<double> m_v_prev; // port voltage at each phase of the previous cycle (predictor)
+    /// The junction's solution at one phase of the previous cycle: the predictor linearises the law there.
+    struct phase_point {
+        double v = 0.0;       ///< the port voltage, V
+        double offset_a = 0.0; ///< i + qr / h - (g + cr / h) v: the linearised law's value at v = 0 before the step's start charge, A
+        double inv_den = 1.0; ///< 1 / (1 - beta (g + cr / h)), the linearised step's gain (beta is the same every step)
+    };
+    std::vector<phase_point> m_prev;
     Eigen::VectorXd m_x;
     Eigen::VectorXd m_z;           // block input [x_b; Re(p P); Im(p P)]
     Eigen::VectorXd m_jb;          // junction currents j_0 .. j_K of the block, A
     Eigen::VectorXd m_free;        // free port voltage of the block's steps, V
     Eigen::VectorXd m_y;           // an output over the block's steps
-    double m_v = 0.0, m_j = 0.0, m_i0 = 0.0, m_qr0 = 0.0;
+    double m_v = 0.0, m_j = 0.0, m_i0 = 0.0, m_qr0 = 0.0, m_g0_s = 0.0, m_cr0_f = 0.0; // the law at the last solution
     std::size_t m_cycle = 0;
     bool m_phasors = false;
     std::complex<double> m_v_phasor{}, m_j_phasor{};
