@@ -204,7 +204,7 @@ transfer_curve measure_transfer_curve(const circuit_params& circuit, const std::
         p.thd_percent = tm.thd_percent;
         p.efficiency = tm.fundamental_v / (s.modulation_index * v);
         c.points.push_back(p);
-        for (const auto& w : out.result.warnings) c.warnings.push_back(fmt::format("carrier {} V: {}", v, w));
+        for (const auto& w : out.result.warnings) c.warnings.push_back(with_context(fmt::format("carrier {} V: ", v), w));
     }
     auto region = [&](bool low, bool dc) {
         std::vector<double> x, y;
@@ -226,9 +226,10 @@ transfer_curve measure_transfer_curve(const circuit_params& circuit, const std::
         c.transition_v = std::pow(10.0, (ah - al) / (bl - bh) / 20.0);
     } else {
         c.transition_v = nan_v;
-        c.warnings.push_back(fmt::format("transfer curve: slopes {:.3f} and {:.3f} dB/dB do not show two regions; "
-                                         "widen the level range",
-                                         bl, bh));
+        c.warnings.push_back({warning_code::transfer_one_region,
+                              fmt::format("transfer curve: slopes {:.3f} and {:.3f} dB/dB do not show two regions; "
+                                          "widen the level range",
+                                          bl, bh)});
     }
     return c;
 }
@@ -382,7 +383,7 @@ render_metrics measure_render(std::span<const double> ev, double fs, const circu
         no_tone_reason = fmt::format("signal.modulation_index = {}: the carrier is unmodulated, so there is no tone to "
                                      "measure; tone and distortion figures are null",
                                      am.modulation_index);
-        rm.warnings.push_back(no_tone_reason);
+        rm.warnings.push_back({warning_code::unmodulated_tone, no_tone_reason});
     } else if (q.tone_hz > 0.0 && q.tone2_hz > 0.0) {
         rm.has_imd = true;
         rm.imd = analyze_two_tone(win, fs, q.tone_hz, q.tone2_hz, q.tone_ratio, 3);
@@ -499,20 +500,22 @@ nlohmann::json to_json(const carrier_ripple& r)
     return j;
 }
 
-std::vector<std::string> clipping_warnings(const clipping_diagnosis& d)
+std::vector<warning> clipping_warnings(const clipping_diagnosis& d)
 {
-    std::vector<std::string> w;
+    std::vector<warning> w;
     if (d.exceeds_diagonal)
-        w.push_back(fmt::format("modulation index {:.3g} exceeds the diagonal-clipping limit {:.3g} for a full-depth tone at {:.0f} Hz "
+        w.push_back({warning_code::diagonal_clipping, fmt::format("modulation index {:.3g} exceeds the diagonal-clipping limit {:.3g} for a full-depth tone at {:.0f} Hz "
                                 "(1/sqrt(1+(wm R C)^2), R = {:.4g} ohm, C = {:.4g} F)",
-                                d.modulation_index, d.diagonal_m_max, d.tone_hz, d.dc_load_ohm, d.node_capacitance_f));
+                                d.modulation_index, d.diagonal_m_max, d.tone_hz, d.dc_load_ohm, d.node_capacitance_f)});
     if (d.exceeds_negative_peak)
-        w.push_back(fmt::format("modulation index {:.3g} exceeds the negative-peak clipping limit R_ac/R_dc = {:.3g}",
-                                d.modulation_index, d.negative_peak_m_max));
+        w.push_back({warning_code::negative_peak_clipping,
+                     fmt::format("modulation index {:.3g} exceeds the negative-peak clipping limit R_ac/R_dc = {:.3g}",
+                                 d.modulation_index, d.negative_peak_m_max)});
     if (d.observed_failure_to_follow)
-        w.push_back(fmt::format("the detector fails to follow the envelope: the output falls at the free-discharge rate in "
-                                "{:.1f} % of samples",
-                                100.0 * d.free_discharge_fraction));
+        w.push_back({warning_code::failure_to_follow,
+                     fmt::format("the detector fails to follow the envelope: the output falls at the free-discharge rate in "
+                                 "{:.1f} % of samples",
+                                 100.0 * d.free_discharge_fraction)});
     return w;
 }
 

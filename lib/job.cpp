@@ -47,7 +47,14 @@ void transcode(const fs::path& src, const fs::path& target, double fs, wav_forma
 }
 } // namespace
 
-nlohmann::json job_metrics(const scenario& s, std::span<const float> earpiece_v, const std::vector<std::string>& warnings)
+namespace {
+/// Flat metrics and the typed warnings they carry.
+struct measured {
+    nlohmann::json json;
+    std::vector<warning> warnings;
+};
+
+measured measure_job(const scenario& s, std::span<const float> earpiece_v, const std::vector<warning>& warnings)
 {
     const double fs_hz = s.render.audio_rate_hz;
     metrics_request rq;
@@ -69,16 +76,16 @@ nlohmann::json job_metrics(const scenario& s, std::span<const float> earpiece_v,
     // The contract's keys are always present; null when the programme has no single tone.
     for (const char* k : {"tone_hz", "fundamental_v", "h2_ratio", "h3_ratio", "thd_percent", "thd_n_percent", "sinad_db"})
         if (!j.contains(k)) j[k] = nullptr;
-    std::vector<std::string> w = warnings;
-    for (const auto& x : j["warnings"]) w.push_back(x.get<std::string>());
+    std::vector<warning> w = warnings;
+    w.insert(w.end(), m.warnings.begin(), m.warnings.end());
     if (!m.has_tone && p.kind != programme_kind::tone && p.kind != programme_kind::two_tone)
-        w.push_back("no distortion figures: the programme is not a single test tone");
-    j["warnings"] = w;
-    return j;
+        w.push_back({warning_code::no_distortion_figures, "no distortion figures: the programme is not a single test tone"});
+    set_warnings(j, w);
+    return {std::move(j), std::move(w)};
 }
 
-nlohmann::json receiver_job_metrics(const scenario& s, std::span<const float> earpiece_v, const receiver_figures& fig,
-                                    const std::vector<std::string>& warnings)
+measured measure_receiver_job(const scenario& s, std::span<const float> earpiece_v, const receiver_figures& fig,
+                              const std::vector<warning>& warnings)
 {
     const double fs_hz = s.render.audio_rate_hz;
     // Skip the output network's settling, as measure_render does.
@@ -86,7 +93,7 @@ nlohmann::json receiver_job_metrics(const scenario& s, std::span<const float> ea
     const auto skip = std::min(earpiece_v.size(), static_cast<std::size_t>(std::ceil(sw.settle_s * fs_hz)));
     const std::vector<double> v(earpiece_v.begin() + static_cast<std::ptrdiff_t>(skip), earpiece_v.end());
     nlohmann::json j = to_json(measure_levels(v, fs_hz, 20.0, std::min(10000.0, 0.45 * fs_hz)));
-    std::vector<std::string> w = warnings;
+    std::vector<warning> w = warnings;
     const auto& wanted = s.stations.front();
     for (const char* k : {"tone_hz", "fundamental_v", "h2_ratio", "h3_ratio", "thd_percent", "thd_n_percent", "sinad_db"}) j[k] = nullptr;
     if (wanted.kind == programme_kind::tone) {
@@ -94,7 +101,7 @@ nlohmann::json receiver_job_metrics(const scenario& s, std::span<const float> ea
         const nlohmann::json tj = to_json(tm);
         for (auto it = tj.begin(); it != tj.end(); ++it) j[it.key()] = it.value();
     } else {
-        w.push_back("no distortion figures: the wanted station's programme is not a test tone");
+        w.push_back({warning_code::no_distortion_figures, "no distortion figures: the wanted station's programme is not a test tone"});
     }
     auto number_or_null = [](double x) { return std::isfinite(x) ? nlohmann::json(x) : nlohmann::json(nullptr); };
     j["layout"] = std::string(to_string(s.tuner.layout));
@@ -141,8 +148,10 @@ nlohmann::json receiver_job_metrics(const scenario& s, std::span<const float> ea
         e["tone_v"] = number_or_null(tv);
         e["level_db"] = number_or_null(20.0 * std::log10(tv / wanted_v));
         if (st.kind == programme_kind::tone && !std::isfinite(tv))
-            w.push_back(fmt::format("station \"{}\": its tone ({} Hz) shares a frequency with another tone or whistle, or lies outside "
-                                    "the audio band: no level", st.params.name, detail::format_value(st.tone_hz)));
+            w.push_back({warning_code::station_tone_unmeasured,
+                         fmt::format("station \"{}\": its tone ({} Hz) shares a frequency with another tone or whistle, or lies "
+                                     "outside the audio band: no level",
+                                     st.params.name, detail::format_value(st.tone_hz))});
         stations.push_back(e);
     }
     j["stations"] = stations;
@@ -156,8 +165,20 @@ nlohmann::json receiver_job_metrics(const scenario& s, std::span<const float> ea
     }
     j["whistles"] = whistles;
     j["settle_s"] = sw.settle_s;
-    j["warnings"] = w;
-    return j;
+    set_warnings(j, w);
+    return {std::move(j), std::move(w)};
+}
+} // namespace
+
+nlohmann::json job_metrics(const scenario& s, std::span<const float> earpiece_v, const std::vector<warning>& warnings)
+{
+    return measure_job(s, earpiece_v, warnings).json;
+}
+
+nlohmann::json receiver_job_metrics(const scenario& s, std::span<const float> earpiece_v, const receiver_figures& fig,
+                                    const std::vector<warning>& warnings)
+{
+    return measure_receiver_job(s, earpiece_v, fig, warnings).json;
 }
 
 const std::vector<std::string>& job_file_names()
@@ -303,7 +324,7 @@ job_outcome run_render_job(const scenario& s, const fs::path& out_dir, const job
         staged.publish();
     });
     relocate(o, staged);
-    for (auto& w : o.warnings) w = staged.describe(w);
+    for (auto& w : o.warnings) w.message = staged.describe(w.message);
     return o;
 }
 
@@ -326,14 +347,15 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
     if (s.programme.kind == programme_kind::clip) {
         const wav_reader header(s.programme.audio);
         if (header.info().channels > 1)
-            o.warnings.push_back(fmt::format("{}: {} channels mixed to mono (their average) before modulation",
-                                             s.programme.audio.string(), header.info().channels));
+            o.warnings.push_back({warning_code::channels_mixed, fmt::format("{}: {} channels mixed to mono (their average) before modulation",
+                                                                            s.programme.audio.string(), header.info().channels)});
         const double whole_s = static_cast<double>(header.frames()) / header.sample_rate_hz();
         if (s.programme.duration_s > 0.0 && s.programme.duration_s < whole_s)
-            o.warnings.push_back(fmt::format("signal.duration_s = {} s: only the first {} s of {} ({:.3g} s long) is rendered; "
-                                             "set signal.duration_s = 0 for the whole clip",
-                                             detail::format_value(s.programme.duration_s), detail::format_value(s.programme.duration_s),
-                                             s.programme.audio.filename().string(), whole_s));
+            o.warnings.push_back({warning_code::clip_shortened,
+                                  fmt::format("signal.duration_s = {} s: only the first {} s of {} ({:.3g} s long) is rendered; "
+                                              "set signal.duration_s = 0 for the whole clip",
+                                              detail::format_value(s.programme.duration_s), detail::format_value(s.programme.duration_s),
+                                              s.programme.audio.filename().string(), whole_s)});
     }
     const bool receiver = s.tuner.layout != tuner_layout::bench;
     std::vector<std::unique_ptr<modulation>> programmes;
@@ -388,9 +410,11 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
         throw integration_error(fmt::format("{}: {}; {}", s.file.string(), e.what(), likely_cause(s)), e.time_s());
     }
     // Measured before any output file exists, so a span too short to measure leaves nothing behind.
+    measured analysis;
     try {
-        o.metrics = receiver ? receiver_job_metrics(s, o.analysis_v, o.receiver, o.render.warnings)
-                             : job_metrics(s, o.analysis_v, o.render.warnings);
+        analysis = receiver ? measure_receiver_job(s, o.analysis_v, o.receiver, o.render.warnings)
+                            : measure_job(s, o.analysis_v, o.render.warnings);
+        o.metrics = std::move(analysis.json);
     } catch (const config_error& e) {
         throw config_error(fmt::format("{}: {}", s.file.string(), e.what()));
     }
@@ -406,13 +430,14 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
         o.normalised_gain_db = 20.0 * std::log10(gain);
         o.normalised_wav = norm_path;
         transcode(raw_path, norm_path, fs_hz, s.output.format, s.output.full_scale_v, 1e3 * gain, opt.overwrite);
-        o.warnings.push_back(fmt::format("the earpiece audio peaks at {:.3g} V, above the {:.3g} V full scale: {} clips; "
-                                         "{} is a copy with {:.1f} dB gain",
-                                         o.peak_audio_v, s.output.full_scale_v, o.wav.filename().string(),
-                                         norm_path.filename().string(), o.normalised_gain_db));
+        o.warnings.push_back({warning_code::output_clipped,
+                              fmt::format("the earpiece audio peaks at {:.3g} V, above the {:.3g} V full scale: {} clips; "
+                                          "{} is a copy with {:.1f} dB gain",
+                                          o.peak_audio_v, s.output.full_scale_v, o.wav.filename().string(),
+                                          norm_path.filename().string(), o.normalised_gain_db)});
     }
-    for (const auto& w : o.metrics["warnings"]) o.warnings.push_back(w.get<std::string>());
-    o.metrics["warnings"] = o.warnings;
+    o.warnings.insert(o.warnings.end(), analysis.warnings.begin(), analysis.warnings.end());
+    set_warnings(o.metrics, o.warnings);
     nlohmann::ordered_json j;
     j["wav"] = o.wav.filename().string();
     j["full_scale_v"] = o.full_scale_v;
@@ -434,7 +459,8 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
     j["estimated_dc_error"] = o.render.estimated_dc_error;
     j["linearised_passes"] = o.render.cycles.batched_passes;
     j["step_by_step_cycles"] = o.render.cycles.scalar_cycles;
-    j["warnings"] = o.warnings;
+    j["warnings"] = warning_messages(o.warnings);
+    j["warning_codes"] = warning_code_names(o.warnings);
     write_text_atomic(o.sidecar, j.dump(2) + "\n");
     write_text_atomic(o.metrics_file, o.metrics.dump(2) + "\n");
     return o;

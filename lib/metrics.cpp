@@ -514,20 +514,26 @@ nlohmann::json to_json(const fidelity_metrics& m)
     return j;
 }
 
-nlohmann::json merge_metrics(const std::vector<nlohmann::json>& parts, const std::vector<std::string>& warnings)
+nlohmann::json merge_metrics(const std::vector<nlohmann::json>& parts, const std::vector<warning>& warnings)
 {
     nlohmann::json j = nlohmann::json::object();
     for (const auto& p : parts)
         for (const auto& [k, v] : p.items()) j[k] = v;
-    j["warnings"] = warnings;
+    set_warnings(j, warnings);
     return j;
+}
+
+void set_warnings(nlohmann::json& flat, const std::vector<warning>& warnings)
+{
+    flat["warnings"] = warning_messages(warnings);
+    flat["warning_codes"] = warning_code_names(warnings);
 }
 
 std::string to_text(const nlohmann::json& flat)
 {
     std::string out;
     for (const auto& [k, v] : flat.items()) {
-        if (k == "warnings") continue;
+        if (k == "warnings" || k == "warning_codes") continue;
         if (v.is_number_float()) out += fmt::format("{:<28} {:.6g}\n", k, v.get<double>());
         else out += fmt::format("{:<28} {}\n", k, v.dump());
     }

@@ -237,25 +237,27 @@ state_space network::assemble() const
     const Eigen::MatrixXd b1 = td.transpose() * bsrc, b2 = ta.transpose() * bsrc;
     const Eigen::VectorXd p1 = td.transpose() * p, p2 = ta.transpose() * p;
 
-    Eigen::MatrixXd k21(na, nd), kb(na, m_sources);
-    Eigen::VectorXd kp(na);
+    // Zero-size blocks (no algebraic unknowns, no sources, no states) are skipped rather than handed to the
+    // LU: Eigen's solve on an empty right-hand side binds a reference to a null data pointer.
+    Eigen::MatrixXd k21 = Eigen::MatrixXd::Zero(na, nd), kb = Eigen::MatrixXd::Zero(na, m_sources);
+    Eigen::VectorXd kp = Eigen::VectorXd::Zero(na);
     if (na > 0) {
         const Eigen::FullPivLU<Eigen::MatrixXd> lu(g22);
         if (!lu.isInvertible())
             throw config_error("network: the resistive part is singular: a node without any path (add a resistance), a loop of "
                                "capacitors and voltage sources, or a cut set of inductors");
-        k21 = lu.solve(g21);
-        kb = lu.solve(b2);
+        if (nd > 0) k21 = lu.solve(g21);
+        if (m_sources > 0) kb = lu.solve(b2);
         kp = lu.solve(p2);
     }
-    const Eigen::FullPivLU<Eigen::MatrixXd> lu1(e11);
-    if (nd > 0 && !lu1.isInvertible())
-        throw config_error("network: the capacitance and inductance matrix is singular (coupling |k| too close to 1?)");
     state_space ss;
     ss.port_linear_capacitance_f = m_port_c;
     if (nd > 0) {
+        const Eigen::FullPivLU<Eigen::MatrixXd> lu1(e11);
+        if (!lu1.isInvertible())
+            throw config_error("network: the capacitance and inductance matrix is singular (coupling |k| too close to 1?)");
         ss.a = -lu1.solve(g11 - g12 * k21);
-        ss.b = lu1.solve(b1 - g12 * kb);
+        ss.b = m_sources > 0 ? Eigen::MatrixXd(lu1.solve(b1 - g12 * kb)) : Eigen::MatrixXd(nd, 0);
         ss.bj = lu1.solve(p1 - g12 * kp);
     } else {
         ss.a.resize(0, 0);

@@ -146,13 +146,14 @@ render_result render(const circuit_params& circuit, am_params am, modulation& pr
     const bool phase_locked = s.method == solver_method::phase_locked && net.series_ohm() > 0.0;
     res.method = phase_locked ? solver_method::phase_locked : solver_method::adaptive;
     if (s.method == solver_method::phase_locked && !phase_locked)
-        res.warnings.push_back("the source and diode series resistances are both 0 ohm: the phase-locked solver needs a series "
-                               "resistance, so the adaptive solver was used");
+        res.warnings.push_back({warning_code::adaptive_fallback,
+                                "the source and diode series resistances are both 0 ohm: the phase-locked solver needs a series "
+                                "resistance, so the adaptive solver was used"});
     if (!phase_locked && s.carrier_steps_floor < 30.0)
-        res.warnings.push_back(fmt::format(
-            "solver.carrier_steps_floor = {}: below 30 steps per carrier cycle the error accumulates over the cycles "
-            "(measured 1.5e-3 relRMS at 20 against 7e-6 at 40); keep 40 for comparisons",
-            detail::format_value(s.carrier_steps_floor)));
+        res.warnings.push_back({warning_code::coarse_step_floor,
+                                fmt::format("solver.carrier_steps_floor = {}: below 30 steps per carrier cycle the error accumulates "
+                                            "over the cycles (measured 1.5e-3 relRMS at 20 against 7e-6 at 40); keep 40 for comparisons",
+                                            detail::format_value(s.carrier_steps_floor))});
     const auto total = static_cast<std::size_t>(std::llround(programme.duration_s() * fs));
     const auto preroll_samples = static_cast<std::size_t>(std::llround(am.preroll_s * fs));
 
@@ -219,17 +220,18 @@ render_result render(const circuit_params& circuit, am_params am, modulation& pr
                     ch = choose_steps_per_cycle(oj, fc, levels, s.dc_tolerance, 4096);
                 } catch (const integration_error& e) {
                     ch = {fallback_steps_per_cycle, std::numeric_limits<double>::quiet_NaN(), false};
-                    res.warnings.push_back(fmt::format("the step count could not be chosen ({}); {} steps per carrier cycle were used",
-                                                       e.what(), fallback_steps_per_cycle));
+                    res.warnings.push_back({warning_code::step_count_fallback,
+                                            fmt::format("the step count could not be chosen ({}); {} steps per carrier cycle were used",
+                                                        e.what(), fallback_steps_per_cycle)});
                 }
                 n = ch.steps_per_cycle;
                 res.estimated_dc_error = ch.estimated_error;
                 res.step_choice_s = std::chrono::duration<double>(clock::now() - t0).count();
                 if (!ch.met && std::isfinite(ch.estimated_error))
-                    res.warnings.push_back(fmt::format(
-                        "solver.dc_tolerance = {}: not reached with up to 4096 steps per carrier cycle (estimated error {:.2g}); "
-                        "the detected level may be less accurate than asked",
-                        detail::format_value(s.dc_tolerance), ch.estimated_error));
+                    res.warnings.push_back({warning_code::dc_tolerance_not_met,
+                                            fmt::format("solver.dc_tolerance = {}: not reached with up to 4096 steps per carrier cycle "
+                                                        "(estimated error {:.2g}); the detected level may be less accurate than asked",
+                                                        detail::format_value(s.dc_tolerance), ch.estimated_error)});
             }
             res.steps_per_cycle = n;
             cycle_settings cs;
@@ -279,7 +281,8 @@ render_result render(const circuit_params& circuit, am_params am, modulation& pr
     }
     res.samples = delivered;
     res.wall_s = std::chrono::duration<double>(clock::now() - wall0).count();
-    if (delivered < total) res.warnings.push_back(fmt::format("only {} of {} samples were produced", delivered, total));
+    if (delivered < total)
+        res.warnings.push_back({warning_code::samples_missing, fmt::format("only {} of {} samples were produced", delivered, total)});
     return res;
 }
 
@@ -405,7 +408,8 @@ render_result render_receiver(const receiver_spec& spec, const render_settings& 
     fig.rf_bandwidth_hz = loaded.bandwidth_hz;
     fig.unloaded_tuned_hz = unloaded.tuned_hz;
     res.wall_s = std::chrono::duration<double>(clock::now() - wall0).count();
-    if (delivered < total) res.warnings.push_back(fmt::format("only {} of {} samples were produced", delivered, total));
+    if (delivered < total)
+        res.warnings.push_back({warning_code::samples_missing, fmt::format("only {} of {} samples were produced", delivered, total)});
     return res;
 }
 

@@ -4,6 +4,7 @@
 #include "galena/cancel.hpp"
 #include "galena/components.hpp"
 #include "galena/error.hpp"
+#include "galena/metrics.hpp"
 #include "galena/text_table.hpp"
 #include "galena/units.hpp"
 #include "galena/validate.hpp"
@@ -622,8 +623,10 @@ sweep_result run_sweep(const fs::path& base_file, const std::vector<std::string>
         staged.publish();
     });
     relocate(res, staged);
-    for (auto& r : res.variants)
-        for (auto& w : r.job.warnings) w = staged.describe(w);
+    for (auto& r : res.variants) {
+        for (auto& w : r.job.warnings) w.message = staged.describe(w.message);
+        for (auto& w : r.warnings) w.message = staged.describe(w.message);
+    }
     return res;
 }
 
@@ -691,6 +694,7 @@ void render_sweep(sweep_result& res, const fs::path& out_dir, const sweep_option
                 if (opt.progress) jo.progress = [&, i](double f) { tick(i, f * main_s[i]); };
                 r.job = render_job_into(r.scene, r.dir, jo);
                 r.metrics = r.job.metrics;
+                r.warnings = r.job.warnings;
                 if (r.measured_separately) {
                     fs::create_directories(r.dir / "measure", ec);
                     if (opt.progress) jo.progress = [&, i](double f) { tick(i, main_s[i] + f * measure_s[i]); };
@@ -703,11 +707,11 @@ void render_sweep(sweep_result& res, const fs::path& out_dir, const sweep_option
                         if (r.job.metrics.contains(k)) merged[k] = r.job.metrics[k];
                     merged["measure_dc_v"] = mo.metrics["dc_v"];
                     merged["measure_audio_rms_v"] = mo.metrics["audio_rms_v"];
-                    std::vector<std::string> w;
-                    for (const auto& x : r.job.metrics["warnings"])
-                        if (x.get<std::string>().rfind("no distortion figures", 0) != 0) w.push_back(x.get<std::string>());
-                    for (const auto& x : mo.metrics["warnings"]) w.push_back("tone measurement: " + x.get<std::string>());
-                    merged["warnings"] = w;
+                    r.warnings.clear();
+                    for (const auto& x : r.job.warnings)
+                        if (x.code != warning_code::no_distortion_figures) r.warnings.push_back(x);
+                    for (const auto& x : mo.warnings) r.warnings.push_back(with_context("tone measurement: ", x));
+                    set_warnings(merged, r.warnings);
                     merged["distortion_from"] = fmt::format("{:.6g} Hz tone render in measure/", opt.measure_tone_hz);
                     r.metrics = merged;
                 }

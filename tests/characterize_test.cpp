@@ -107,6 +107,8 @@ TEST_CASE("clipping limits: diagonal 1/sqrt(1+(wm R C)^2), negative-peak R_ac/R_
     CHECK(dp.ac_coupled_load);
     CHECK(dp.negative_peak_m_max == doctest::Approx(20e3 / (47e3 + 20e3)).epsilon(1e-9).scale(0.0));
     CHECK(dp.exceeds_negative_peak);
+    const auto w = clipping_warnings(dp);
+    CHECK(has_warning(w, warning_code::negative_peak_clipping));
 }
 
 TEST_CASE("diagonal clipping on the simulated circuit: THD low below m_max, rising sharply above")
@@ -145,6 +147,10 @@ TEST_CASE("diagonal clipping on the simulated circuit: THD low below m_max, risi
         CHECK(rm.tone.thd_percent == doctest::Approx(t.thd_percent).epsilon(1e-9).scale(0.0));
         CHECK(rm.json.at("thd_percent").get<double>() == rm.tone.thd_percent);
         CHECK(rm.json.at("warnings").size() == (m > m_max ? 2u : 0u)); // predicted + observed
+        // Typed: the predicted limit and the observation, each by its code, in the JSON too.
+        CHECK(has_warning(rm.warnings, warning_code::diagonal_clipping) == (m > m_max));
+        CHECK(has_warning(rm.warnings, warning_code::failure_to_follow) == (m > m_max));
+        CHECK(rm.json.at("warning_codes").size() == rm.warnings.size());
         CHECK(rm.json.at("detection_efficiency").get<double>() == doctest::Approx(t.fundamental_v / (m * 3.0)).scale(0.0));
     }
     // Below m_max a strong-signal (linear) detector follows the envelope: THD of a few percent at most.

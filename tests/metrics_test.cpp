@@ -253,9 +253,11 @@ TEST_CASE("merged JSON is flat, carries warnings and writes non-finite numbers a
 {
     level_metrics l;
     l.a_weighted_dbv = -std::numeric_limits<double>::infinity();
-    const auto j = merge_metrics({to_json(l), to_json(tone_metrics{})}, {"a warning"});
+    const auto j = merge_metrics({to_json(l), to_json(tone_metrics{})}, {{warning_code::samples_missing, "a warning"}});
     CHECK(j.at("a_weighted_dbv").is_null());
     CHECK(j.at("warnings").size() == 1);
+    CHECK(j.at("warning_codes") == nlohmann::json::array({"samples-missing"}));
     for (const auto& [k, v] : j.items()) CHECK((!v.is_object()));
     CHECK(to_text(j).find("warning: a warning") != std::string::npos);
+    CHECK(to_text(j).find("samples-missing") == std::string::npos); // the codes are for programs
 }

@@ -139,3 +139,33 @@ TEST_CASE("sweep progress: finished variants reported once each, in variant orde
     for (std::size_t i = 1; i < fractions.size(); ++i) CHECK(fractions[i] >= fractions[i - 1]);
     CHECK(fractions.back() == 1.0);
 }
+
+TEST_CASE("a clip variant measured on a tone: its warnings are chosen by code, not by sentence")
+{
+    // The clip's own render has no single tone (no-distortion-figures); its distortion figures come from the
+    // tone render in measure/, so that warning is dropped and the tone render's are kept with a prefix.
+    const fs::path out = fs::path(GALENA_TEST_TMP) / "sweep-warning-codes";
+    fs::remove_all(out);
+    const std::string clip = (fs::path(GALENA_SOURCE_DIR) / "audio-samples/speech-count.wav").string();
+    sweep_options opt;
+    opt.threads = 1;
+    opt.measure_tone_hz = 1000.0;
+    opt.measure_duration_s = 0.1;
+    const auto res = run_sweep(fs::path(GALENA_SOURCE_DIR) / "scenarios/example.toml",
+                               {"signal.carrier_hz=200k", "signal.audio=" + clip, "signal.duration_s=0.1"}, {{"clip", "", {}}}, out, opt);
+    REQUIRE(res.variants.size() == 1);
+    const auto& r = res.variants.front();
+    REQUIRE(r.measured_separately);
+    CHECK(has_warning(r.job.warnings, warning_code::no_distortion_figures));
+    CHECK(has_warning(r.job.warnings, warning_code::clip_shortened));
+    CHECK_FALSE(has_warning(r.warnings, warning_code::no_distortion_figures));
+    CHECK(has_warning(r.warnings, warning_code::clip_shortened));
+    // metrics.json-style keys: sentences and codes side by side, in the same order.
+    REQUIRE(r.metrics.at("warning_codes").size() == r.warnings.size());
+    REQUIRE(r.metrics.at("warnings").size() == r.warnings.size());
+    for (std::size_t i = 0; i < r.warnings.size(); ++i) {
+        CHECK(r.metrics["warning_codes"][i].get<std::string>() == to_string(r.warnings[i].code));
+        CHECK(r.metrics["warnings"][i].get<std::string>() == r.warnings[i].message);
+        CHECK(r.metrics["warning_codes"][i].get<std::string>() != "no-distortion-figures");
+    }
+}

@@ -411,13 +411,13 @@ int main(int argc, char** argv)
             opt.allow_long = allow_long;
             // Plots go into the staged output with the WAV; a gnuplot failure costs the plots, not the render.
             opt.extras = [&](const galena::job_outcome& o, const std::filesystem::path& dir) {
-                std::vector<std::string> w;
+                std::vector<galena::warning> w;
                 try {
                     (void)galena::draw_render_plots(s, o, dir / "plots");
                 } catch (const galena::audio_error& e) {
                     std::error_code ec;
                     std::filesystem::remove_all(dir / "plots", ec);
-                    w.push_back(std::string("plots left out: ") + e.what());
+                    w.push_back({galena::warning_code::plots_left_out, std::string("plots left out: ") + e.what()});
                 }
                 return w;
             };
@@ -428,6 +428,7 @@ int main(int argc, char** argv)
             if (verbose) {
                 auto figures = o.metrics;
                 figures.erase("warnings"); // shown once, below
+                figures.erase("warning_codes");
                 fmt::print("{}", galena::to_text(figures));
                 fmt::print("simulated {:.3f} s in {:.2f} s wall ({:.2f} s per simulated s), {} steps per carrier cycle\n",
                            o.render.simulated_s, o.render.wall_s, o.render.wall_s / o.render.simulated_s, o.render.steps_per_cycle);
@@ -435,7 +436,7 @@ int main(int argc, char** argv)
             fmt::print("{}", galena::summary_text(o, s));
             if (!verbose) fmt::print("all figures: {} (or pass --verbose)\n", o.metrics_file.string());
             std::fflush(stdout);
-            for (const auto& w : o.warnings) std::fprintf(stderr, "galena: warning: %s\n", w.c_str());
+            for (const auto& w : o.warnings) std::fprintf(stderr, "galena: warning: %s\n", w.message.c_str());
             return exit_ok;
         }
     } catch (const galena::resource_error& e) {

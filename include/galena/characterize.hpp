@@ -104,7 +104,7 @@ struct transfer_curve {
     double high_dc_slope_db_per_db = 0.0;
     /// Square-law-to-linear transition: carrier level where the two fitted asymptotes cross, V.
     double transition_v = 0.0;
-    std::vector<std::string> warnings;
+    std::vector<warning> warnings;
 };
 
 /// Logarithmically spaced values from lo to hi inclusive (count >= 2, 0 < lo < hi).
@@ -184,9 +184,9 @@ struct render_metrics {
     fidelity_metrics fidelity;
     bool has_clipping = false;
     clipping_diagnosis clipping;
-    std::vector<std::string> warnings;
+    std::vector<warning> warnings;
     /// Flat keys: every key of the metrics to_json() helpers present above, plus carrier_hz, carrier_peak_v,
-    /// modulation_index, detection_efficiency, analysed_s, and warnings.
+    /// modulation_index, detection_efficiency, analysed_s, warnings and warning_codes.
     nlohmann::json json;
 };
 
@@ -213,7 +213,8 @@ struct render_metrics {
 /// Keys: ripple_carrier_hz, ripple_rms_v, ripple_fc_rms_v, ripple_2fc_rms_v, ripple_3fc_rms_v, ripple_dc_v.
 [[nodiscard]] nlohmann::json to_json(const carrier_ripple& r);
 
-/// The warnings a render's metrics should carry for this tone: one per exceeded or observed clipping limit.
-[[nodiscard]] std::vector<std::string> clipping_warnings(const clipping_diagnosis& d);
+/// The warnings a render's metrics should carry for this tone: one per exceeded or observed clipping limit
+/// (codes diagonal_clipping, negative_peak_clipping, failure_to_follow).
+[[nodiscard]] std::vector<warning> clipping_warnings(const clipping_diagnosis& d);
 
 } // namespace galena

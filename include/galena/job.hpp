@@ -36,7 +36,7 @@ struct job_options {
     /// Optional: called with the outcome and the staging folder after the render and before publishing
     /// (e.g. to draw plots there); whatever it writes into the folder is published with the rest, and the
     /// warnings it returns join the outcome's.
-    std::function<std::vector<std::string>(const job_outcome&, const std::filesystem::path& staged_dir)> extras;
+    std::function<std::vector<warning>(const job_outcome&, const std::filesystem::path& staged_dir)> extras;
     /// Optional: polled between solver blocks; once true the render stops with cancelled_error.
     const std::atomic<bool>* stop = nullptr;
 };
@@ -55,23 +55,24 @@ struct job_outcome {
     std::vector<float> analysis_v;         ///< the earpiece voltage (DC included) for metrics; bounded
     std::filesystem::path metrics_file;    ///< DIR/metrics.json
     nlohmann::json metrics;                ///< what metrics.json holds (flat keys, SI units)
-    std::vector<std::string> warnings;
+    std::vector<warning> warnings;         ///< the job's (clip input, output clipping), then the render's and the analysis's
 };
 
 /// Flat metrics of a rendered earpiece voltage (measure_render of the characterize module, with the request
 /// the programme implies): levels always; tone figures for a tone programme, IMD for two tones, clipping
 /// limits; the contract's keys fundamental_v, h2_ratio, h3_ratio, thd_percent, thd_n_percent, sinad_db are
-/// null when the programme is not one tone. `warnings` gathers the given ones and the analysis's.
+/// null when the programme is not one tone. `warnings` and `warning_codes` (set_warnings) gather the given
+/// ones and the analysis's.
 /// @param earpiece_v earpiece voltage, V, DC included, at s.render.audio_rate_hz, programme-aligned
 /// Throws config_error when the span is too short to analyse after the settling window.
 [[nodiscard]] nlohmann::json job_metrics(const scenario& s, std::span<const float> earpiece_v,
-                                         const std::vector<std::string>& warnings);
+                                         const std::vector<warning>& warnings);
 /// Metrics of a whole-receiver render (tuner.layout other than bench): levels, the wanted station's tone
 /// figures (when a tone), tuned_hz, loaded_q, rf_bandwidth_hz, detector_rf_peak_v, the `stations` list
 /// (name, carrier_hz, tone_hz, tone_v, level_db relative to the wanted station) and the carrier-difference
 /// `whistles` (frequency_hz, level_v).
 [[nodiscard]] nlohmann::json receiver_job_metrics(const scenario& s, std::span<const float> earpiece_v, const receiver_figures& fig,
-                                                  const std::vector<std::string>& warnings);
+                                                  const std::vector<warning>& warnings);
 
 /// Renders `s` into `out_dir` (created if missing) as one unit: the files are staged beside it and
 /// published together (staged_output), so on any failure or cancel no output file is left behind. Refuses

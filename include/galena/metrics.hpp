@@ -14,6 +14,8 @@
 /// Errors: config_error names the parameter, its value and the rule.
 #pragma once
 
+#include "galena/warning.hpp"
+
 #include <nlohmann/json.hpp>
 
 #include <cstddef>
@@ -169,10 +171,14 @@ struct fidelity_metrics {
 [[nodiscard]] nlohmann::json to_json(const imd_metrics& m);
 [[nodiscard]] nlohmann::json to_json(const fidelity_metrics& m);
 
-/// Merges flat objects into one (later keys win) and adds `warnings` (a list of strings).
-[[nodiscard]] nlohmann::json merge_metrics(const std::vector<nlohmann::json>& parts, const std::vector<std::string>& warnings);
+/// Merges flat objects into one (later keys win) and adds the warnings as set_warnings does.
+[[nodiscard]] nlohmann::json merge_metrics(const std::vector<nlohmann::json>& parts, const std::vector<warning>& warnings);
 
-/// One line per key, "key = value unit"-style, for humans.
+/// Writes `warnings` into a flat metrics object: `warnings` (the sentences, for people) and `warning_codes`
+/// (the stable code names of warning.hpp, same order, for programs). Replaces both keys.
+void set_warnings(nlohmann::json& flat, const std::vector<warning>& warnings);
+
+/// One line per key, "key = value unit"-style, for humans; the warnings' sentences last, without their codes.
 [[nodiscard]] std::string to_text(const nlohmann::json& flat);
 
 /// Peak amplitudes, V, of sinusoids at the given frequencies (Hz; distinct, in (0, fs/2)) fitted jointly with

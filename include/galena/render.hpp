@@ -10,6 +10,7 @@
 #include "galena/integrator.hpp"
 #include "galena/signal.hpp"
 #include "galena/stations.hpp"
+#include "galena/warning.hpp"
 
 #include <complex>
 #include <cstddef>
@@ -76,7 +77,7 @@ struct render_result {
     double step_choice_s = 0.0;       ///< phase-locked, automatic N: wall time spent choosing N, s
     cycle_stats cycles;               ///< phase-locked work counters
     step_stats stats;                 ///< steps (phase-locked: N per cycle) and Newton work
-    std::vector<std::string> warnings;
+    std::vector<warning> warnings;
 };
 
 /// Automatic preroll: five output time constants, clamped to [5 ms, 0.25 s] and at least the audio chain's

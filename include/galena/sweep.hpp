@@ -142,6 +142,7 @@ struct variant_result {
     scenario measure_scene;                  ///< that tone scenario (when measured_separately)
     std::vector<float> measure_earpiece_v;   ///< its earpiece voltage, V (when measured_separately)
     nlohmann::json metrics;                  ///< the flat metrics of the variant
+    std::vector<warning> warnings;           ///< what metrics' warnings / warning_codes hold, typed
 };
 
 /// Results, in variant order.
