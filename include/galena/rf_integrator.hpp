@@ -52,7 +52,11 @@ struct rf_stats {
 /// The discretisation error is that of the junction current's piecewise-linear form (second order) and of
 /// the nonlinear remainder of the junction charge (first order). The remainder must have a positive slope
 /// (C(v) >= C_lin, see front_end.hpp): backward Euler on a negative remainder was measured unstable. The linear network,
-/// the tuned circuit's resonance and every carrier are exact.
+/// the tuned circuit's resonance and every carrier are exact. In a tuned set the detector conducts for about
+/// 20 ns per 1 us cycle, less than one step at N = 32: the piecewise-linear current then leaves the detected
+/// DC about 0.1-0.2 % low (waveform relRMS 1.4e-3 to 2.1e-3 against a converged run; 7e-4 at N = 256).
+/// The Newton starts from the law linearised at the same phase one cycle earlier and solved with this step's
+/// linear relation v = alpha + beta J(v): about one law evaluation per step.
 ///
 /// The evaluation (block superposition; the same numbers as stepping the recursion above, to rounding). A
 /// cycle is cut into blocks of K = min(N, 32) steps. Within a block the recursion is linear in the block's
