@@ -1,4 +1,5 @@
 #include "galena/diode_fit.hpp"
+#include "galena/units.hpp"
 
 #include "galena/constants.hpp"
 #include "galena/error.hpp"
@@ -134,16 +135,17 @@ std::string shown(const std::string& text)
     return t.empty() ? "(empty)" : t;
 }
 
-/// A plain decimal number (digits, sign, point, exponent): no hex, no words, finite.
-double parse_plain_number(const std::string& text, const std::string& where, const std::string& field)
+/// A finite value in `u`, plain or with an SI prefix and the unit's symbol ("0.25", "1.2e-6", "1.2u",
+/// "10mA", "4.7k"), through the project's one value parser (units.hpp).
+double parse_plain_number(const std::string& text, const std::string& where, const std::string& field, unit u)
 {
-    const bool plain = !text.empty() && text.find_first_not_of("0123456789+-.eE") == std::string::npos;
-    char* end = nullptr;
-    errno = 0;
-    const double v = plain ? std::strtod(text.c_str(), &end) : nan_v;
-    if (!plain || end == text.c_str() || *end != '\0')
-        throw config_error(fmt::format("{}: {} = {}: must be a plain number (SI units, e.g. 0.25 or 1.2e-6)", where, field, shown(text)));
-    if (!std::isfinite(v) || errno == ERANGE)
+    double v = nan_v;
+    try {
+        v = parse_quantity(text, u);
+    } catch (const config_error& e) {
+        throw config_error(fmt::format("{}: {} = {}: {}", where, field, shown(text), e.what()));
+    }
+    if (!std::isfinite(v))
         throw config_error(fmt::format("{}: {} = {}: must be a finite number", where, field, shown(text)));
     return v;
 }
@@ -158,7 +160,8 @@ void parse_setting(const std::string& body, diode_measurements& m, const std::st
         const auto eq = body.find('=');
         if (eq == std::string::npos)
             throw config_error(fmt::format("{}: {}: a setting line must read '# {} = VALUE'", where, key, key));
-        const double v = parse_plain_number(trim(std::string_view(body).substr(eq + 1)), where, key);
+        const double v = parse_plain_number(trim(std::string_view(body).substr(eq + 1)), where, key,
+                                            std::string(key) == "temperature_c" ? unit::celsius : unit::ohm);
         if (std::string(key) == "temperature_c") {
             if (m.temperature_c) throw config_error(fmt::format("{}: temperature_c: given twice", where));
             if (!(v >= -60.0 && v <= 150.0))
@@ -232,13 +235,13 @@ diode_measurements parse_diode_measurements(const std::string& text, const fs::p
                                            diode_points_limit));
         double rel = 0.0;
         if (has_error_column) {
-            rel = parse_plain_number(fields.back(), where, "relative_error");
+            rel = parse_plain_number(fields.back(), where, "relative_error", unit::none);
             if (!(rel > 0.0 && rel <= 1.0))
                 throw config_error(fmt::format("{}: relative_error = {}: must be in (0, 1] (a fraction of the current)", where,
                                                shown(fields.back())));
         }
         const char* vname = kind == form::direct ? "voltage_v" : "diode_v";
-        const double v = parse_plain_number(fields[kind == form::direct ? 0 : 2], where, vname);
+        const double v = parse_plain_number(fields[kind == form::direct ? 0 : 2], where, vname, unit::volt);
         if (v == 0.0)
             throw config_error(fmt::format("{}: {} = {}: must not be 0 (a zero reading carries no information on a log-current "
                                            "scale; leave it out)",
@@ -255,7 +258,7 @@ diode_measurements parse_diode_measurements(const std::string& text, const fs::p
         previous_line = line_no;
         m.last_line = line_no;
         if (kind == form::direct) {
-            const double i = parse_plain_number(fields[1], where, "current_a");
+            const double i = parse_plain_number(fields[1], where, "current_a", unit::ampere);
             if (v > 0.0 && !(i > 0.0))
                 throw config_error(fmt::format("{}: current_a = {}: a forward point (voltage_v > 0) needs a current > 0", where,
                                                shown(fields[1])));
@@ -265,8 +268,8 @@ diode_measurements parse_diode_measurements(const std::string& text, const fs::p
                                                where, shown(fields[1])));
             m.points.push_back({v, i, rel, line_no});
         } else {
-            const double s = parse_plain_number(fields[0], where, "supply_v");
-            const double r = parse_plain_number(fields[1], where, "series_ohm");
+            const double s = parse_plain_number(fields[0], where, "supply_v", unit::volt);
+            const double r = parse_plain_number(fields[1], where, "series_ohm", unit::ohm);
             if (!(r > 0.0)) throw config_error(fmt::format("{}: series_ohm = {}: must be > 0 ohm", where, shown(fields[1])));
             if (s == 0.0 || (s > 0.0) != (v > 0.0))
                 throw config_error(fmt::format("{}: supply_v = {}: must have the sign of diode_v ({}): reverse points reverse the supply",

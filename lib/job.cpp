@@ -155,6 +155,15 @@ measured measure_receiver_job(const scenario& s, std::span<const float> earpiece
         stations.push_back(e);
     }
     j["stations"] = stations;
+    // The loudest neighbour's tone relative to the wanted one, dB: the selectivity a listener hears.
+    double loudest = std::numeric_limits<double>::quiet_NaN();
+    for (std::size_t k = 1; k < stations.size(); ++k)
+        if (stations[k]["level_db"].is_number()) {
+            const double d = stations[k]["level_db"].get<double>();
+            if (!(d <= loudest)) loudest = d;
+        }
+    j["wanted_tone_v"] = stations[0]["tone_v"];
+    j["loudest_neighbour_db"] = number_or_null(loudest);
     nlohmann::json whistles = nlohmann::json::array();
     for (std::size_t k = 1; k < s.stations.size(); ++k) {
         nlohmann::json e;

@@ -282,13 +282,18 @@ const std::map<std::string, std::map<std::string, key_entry>>& key_table()
              {"name", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
                   s.stations.back().params.name = as_string(n, f, w);
               }},
-             {"carrier_hz", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) { s.stations.back().params.carrier_hz = as_number(n, f, w, unit::hertz); }},
+             // Numeric keys with their unit (sweeps and hints read it from here), filling the station being read.
+             {"carrier_hz", quantity(unit::hertz, [](scenario& s) -> double& { return s.stations.back().params.carrier_hz; })},
+             // V/m is no unit of units.hpp: read as a plain number (and listed as a text key, so that the name's
+             // "_m" is not taken for metres).
              {"field_v_per_m", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) { s.stations.back().params.field_v_per_m = as_number(n, f, w, unit::none); }},
-             {"modulation_index", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) { s.stations.back().params.modulation_index = as_number(n, f, w, unit::none); }},
-             {"tone_hz", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
-                  s.stations.back().tone_hz = as_number(n, f, w, unit::hertz);
-                  s.stations.back().kind = programme_kind::tone;
-              }},
+             {"modulation_index", quantity(unit::none, [](scenario& s) -> double& { return s.stations.back().params.modulation_index; })},
+             {"tone_hz", key_entry(
+                             [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
+                                 s.stations.back().tone_hz = as_number(n, f, w, unit::hertz);
+                                 s.stations.back().kind = programme_kind::tone;
+                             },
+                             unit::hertz, [](scenario& s) -> double& { return s.stations.back().tone_hz; })},
              {"audio", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
                   s.stations.back().audio = as_string(n, f, w);
                   if (s.stations.back().audio.empty()) throw config_error(fmt::format("{}: {} = \"\": must name an audio file", w, f));
@@ -376,6 +381,51 @@ std::string field_hint(std::string_view key, std::string_view value)
     return fmt::format(" (did you mean {}?)", list);
 }
 
+/// Where a --set of a station points: its table in the [[station]] list and its 1-based number, and the key.
+struct station_target {
+    toml::table* table = nullptr; ///< null: a plain station.key (no [[station]] list to address)
+    std::size_t number = 0;
+    std::string key;
+};
+
+/// Resolves "station.N.key" (key = "N.key" after the section) against the [[station]] list of `root`.
+/// "station.key" without a number is accepted only where the file has no [[station]] list (it then makes
+/// one [station] table). Throws config_error naming the override and the rule.
+station_target station_address(const std::string& o, const std::string& key, toml::table& root)
+{
+    toml::array* list = root["station"].as_array();
+    const auto dot = key.find('.');
+    const std::string number_text = key.substr(0, dot);
+    const bool numbered = dot != std::string::npos && !number_text.empty() &&
+                          std::all_of(number_text.begin(), number_text.end(), [](unsigned char c) { return std::isdigit(c); });
+    const std::size_t count = list != nullptr ? list->size() : 0;
+    if (numbered && list == nullptr && root["station"].is_table() && number_text == "1") {
+        // One [station] table (not a list): it is station 1.
+        return {root["station"].as_table(), 1, key.substr(dot + 1)};
+    }
+    if (!numbered) {
+        if (list == nullptr) return {};
+        throw config_error(fmt::format("--set {}: the scenario has {} [[station]] table{}: address one as station.N.{} with N from 1 "
+                                       "(the wanted station) to {}",
+                                       o, count, count == 1 ? "" : "s", key, count));
+    }
+    station_target t;
+    t.key = key.substr(dot + 1);
+    if (t.key.empty() || t.key.find('.') != std::string::npos)
+        throw config_error(fmt::format("--set {}: must look like station.N.key=value", o));
+    // Whole numbers only, and no more digits than any list can hold (no overflow).
+    t.number = number_text.size() > 6 ? 0 : static_cast<std::size_t>(std::stoul(number_text));
+    if (t.number < 1 || t.number > count)
+        throw config_error(fmt::format("--set {}: station {}: {}", o, number_text,
+                                       count == 0 ? std::string("the scenario has no [[station]] tables to address")
+                                                  : fmt::format("must be a station number from 1 to {} (the scenario's [[station]] "
+                                                                "tables in file order)",
+                                                                count)));
+    t.table = (*list)[t.number - 1].as_table();
+    if (t.table == nullptr) throw config_error(fmt::format("--set {}: station {} is not a table", o, t.number));
+    return t;
+}
+
 /// Applies the overrides; returns, for each field set, the --set text that set it (for messages).
 std::map<std::string, std::string> apply_overrides(toml::table& root, const std::vector<std::string>& overrides)
 {
@@ -392,6 +442,20 @@ std::map<std::string, std::string> apply_overrides(toml::table& root, const std:
         if (section.empty() || key.empty())
             throw config_error(fmt::format("--set {}: must look like section.key=value", o));
         if (!valid_utf8(o)) throw config_error(fmt::format("--set {}: must be valid UTF-8 text", o));
+        if (section == "station") {
+            // One station of a [[station]] list: station.N.key (N from 1, the wanted station, in file order).
+            const auto at = station_address(o, key, root);
+            if (at.table != nullptr) {
+                origin[fmt::format("station.{}.{}", at.number, at.key)] = o;
+                try {
+                    toml::table parsed = toml::parse("v = " + value);
+                    at.table->insert_or_assign(at.key, *parsed["v"].node());
+                } catch (const toml::parse_error&) {
+                    at.table->insert_or_assign(at.key, value); // a bare word: a string
+                }
+                continue;
+            }
+        }
         origin[section + "." + key] = o;
         if (root.contains(section) && !root[section].is_table())
             throw config_error(fmt::format("--set {}: {} is not a section in the scenario file", o, section));
@@ -528,6 +592,8 @@ std::string slip_hint(const scenario& s, const std::string& field)
 {
     const auto dot = field.find('.');
     if (dot == std::string::npos) return {};
+    // A station's keys fill the station being read (stations.back()): not a probe of the whole scenario.
+    if (field.rfind("station.", 0) == 0) return {};
     const auto& table = key_table();
     const auto sec = table.find(field.substr(0, dot));
     if (sec == table.end()) return {};
@@ -724,10 +790,12 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
             }
             for (const toml::table* st : tabs) {
                 s.stations.emplace_back();
+                const std::string numbered = fmt::format("station.{}.", s.stations.size());
                 for (const auto& [key_name, node] : *st) {
                     const std::string key(key_name.str());
                     const std::string field = "station." + key;
-                    const std::string kw = origin_of(node, field, file, overridden);
+                    const std::string kw =
+                        overridden.contains(numbered + key) ? origin_of(node, numbered + key, file, overridden) : origin_of(node, field, file, overridden);
                     auto kt = it->second.find(key);
                     if (kt == it->second.end()) {
                         const std::string near = nearest(key, keys);
@@ -740,7 +808,14 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
                 try {
                     sp.params.validate();
                 } catch (const config_error& e) {
-                    throw config_error(fmt::format("{}: station \"{}\": {}", source_of(*st, file), sp.params.name, e.what()));
+                    // Named where the refused value was written: its line, or the --set that gave it.
+                    const std::string msg = e.what();
+                    const std::string key = msg.substr(0, msg.find(' ')).substr(std::string("station.").size());
+                    const toml::node* kn = st->get(key);
+                    const std::string at = kn == nullptr                               ? source_of(*st, file)
+                                           : overridden.contains(numbered + key) ? origin_of(*kn, numbered + key, file, overridden)
+                                                                                 : origin_of(*kn, "station." + key, file, overridden);
+                    throw config_error(fmt::format("{}: station {} \"{}\": {}", at, s.stations.size(), sp.params.name, msg));
                 }
                 if (sp.kind == programme_kind::clip && !sp.audio.is_absolute()) sp.audio = file.parent_path() / sp.audio;
             }
@@ -822,8 +897,20 @@ const std::vector<scenario_key>& scenario_keys()
     return keys;
 }
 
-unit key_unit(std::string_view field)
+std::string contract_field(std::string_view field)
 {
+    if (field.rfind("station.", 0) != 0) return std::string(field);
+    const std::string_view rest = field.substr(8);
+    const auto dot = rest.find('.');
+    if (dot == std::string_view::npos || dot == 0) return std::string(field);
+    if (!std::all_of(rest.begin(), rest.begin() + static_cast<std::ptrdiff_t>(dot), [](unsigned char c) { return std::isdigit(c); }))
+        return std::string(field);
+    return "station." + std::string(rest.substr(dot + 1));
+}
+
+unit key_unit(std::string_view field_text)
+{
+    const std::string field = contract_field(field_text);
     for (const auto& k : scenario_keys())
         if (k.field == field) {
             if (!k.numeric) throw config_error(fmt::format("{}: is not a numeric key", field));

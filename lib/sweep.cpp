@@ -50,8 +50,9 @@ std::string trim(const std::string& s)
 }
 
 /// The unit of a swept key, or unit::none for a key that is not numeric (or unknown: loading reports it).
-unit unit_of(const std::string& field)
+unit unit_of(const std::string& field_text)
 {
+    const std::string field = contract_field(field_text);
     for (const auto& k : scenario_keys())
         if (k.field == field) return k.numeric ? k.u : unit::none;
     return unit::none;
@@ -63,15 +64,10 @@ std::string lower(std::string s)
     return s;
 }
 
-bool name_ok(const std::string& n)
-{
-    return !n.empty() && n != "." && n != ".." &&
-           std::all_of(n.begin(), n.end(), [](unsigned char c) { return std::isalnum(c) || c == '-' || c == '_' || c == '.'; });
-}
-
 /// Value text as it appears in a name: numbers in engineering notation ("47k"), words kept.
-std::string value_tag(const std::string& field, const std::string& v)
+std::string value_tag(const std::string& field_text, const std::string& v)
 {
+    const std::string field = contract_field(field_text);
     const std::string t = trim(v);
     if (t == "inf" || t == "none") return "none";
     for (const auto& k : scenario_keys())
@@ -103,6 +99,12 @@ std::string json_cell(const nlohmann::json& j, int digits, bool csv)
 }
 
 } // namespace
+
+bool is_variant_name(const std::string& n)
+{
+    return !n.empty() && n != "." && n != ".." &&
+           std::all_of(n.begin(), n.end(), [](unsigned char c) { return std::isalnum(c) || c == '-' || c == '_' || c == '.'; });
+}
 
 const std::vector<std::string>& reserved_output_names()
 {
@@ -180,7 +182,7 @@ variant_spec parse_variant(const std::string& spec)
         throw config_error(fmt::format("--variant {}: must look like NAME:section.key=value,section.key=value", spec));
     variant_spec v;
     v.name = trim(spec.substr(0, colon));
-    if (!name_ok(v.name))
+    if (!is_variant_name(v.name))
         throw config_error(fmt::format("--variant {}: NAME \"{}\" may hold only letters, digits, '-', '_' and '.'", spec, v.name));
     v.label = v.name;
     for (const auto& o : split(spec.substr(colon + 1), ',')) {
@@ -229,7 +231,9 @@ std::vector<variant_spec> expand_sweep(const std::vector<sweep_axis>& axes)
         for (std::size_t k = 0; k < axes.size(); ++k) {
             const auto& a = axes[k];
             const std::string& val = a.values[idx[k]];
-            const std::string short_key = a.key.substr(a.key.find('.') + 1);
+            // "bleeder_ohm"; a station's key with its number: "station2.carrier_hz".
+            const bool station = contract_field(a.key) != a.key;
+            const std::string short_key = station ? "station" + a.key.substr(8) : a.key.substr(a.key.find('.') + 1);
             v.name += "-" + short_key + "-" + value_tag(a.key, val);
             if (!v.label.empty()) v.label += ", ";
             v.label += short_key + " = " + value_tag(a.key, val);
@@ -240,202 +244,6 @@ std::vector<variant_spec> expand_sweep(const std::vector<sweep_axis>& axes)
     return out;
 }
 
-namespace {
-std::string pack_where(const toml::node& n, const fs::path& file)
-{
-    const auto& src = n.source();
-    return src.begin.line > 0 ? fmt::format("{}:{}", file.string(), src.begin.line) : file.string();
-}
-
-std::string pack_string(const toml::table& t, const char* key, const std::string& field, const fs::path& file)
-{
-    const toml::node* n = t.get(key);
-    if (n == nullptr) return {};
-    if (auto v = n->value_exact<std::string>()) return *v;
-    throw config_error(fmt::format("{}: {}: must be a string", pack_where(*n, file), field));
-}
-
-std::optional<double> pack_number(const toml::table& t, const char* key, const std::string& field, const fs::path& file, unit u)
-{
-    const toml::node* n = t.get(key);
-    if (n == nullptr) return std::nullopt;
-    if (auto v = n->value_exact<double>()) return *v;
-    if (auto v = n->value_exact<int64_t>()) return static_cast<double>(*v);
-    if (auto text = n->value_exact<std::string>()) {
-        try {
-            return parse_quantity(*text, u);
-        } catch (const config_error& e) {
-            throw config_error(fmt::format("{}: {}: {}", pack_where(*n, file), field, e.what()));
-        }
-    }
-    throw config_error(fmt::format("{}: {}: must be a number", pack_where(*n, file), field));
-}
-
-/// A pack's `set` entry with a relative signal.audio or diode.file made absolute against the pack file's folder: paths in
-/// a file are relative to that file, wherever the command runs.
-std::string pack_relative(const std::string& entry, const fs::path& file, const std::string& where)
-{
-    const auto eq = entry.find('=');
-    if (eq == std::string::npos) return entry;
-    const std::string key = trim(entry.substr(0, eq));
-    if (key != "signal.audio" && key != "diode.file") return entry;
-    std::string path = trim(entry.substr(eq + 1));
-    try {
-        toml::table parsed = toml::parse("v = " + path);
-        if (auto str = parsed["v"].value<std::string>()) path = *str;
-    } catch (const toml::parse_error&) {
-    }
-    if (path.empty()) throw config_error(fmt::format("{}: set {}: {}: the path is empty", where, entry, key));
-    fs::path p(path);
-    if (p.is_relative()) {
-        std::error_code ec;
-        p = fs::absolute(file.parent_path() / p, ec);
-        if (ec) throw config_error(fmt::format("{}: set {}: {}: cannot resolve the path: {}", where, entry, key, ec.message()));
-    }
-    nlohmann::json q = p.string(); // a TOML basic string: JSON string escaping is a subset of it
-    return key + "=" + q.dump();
-}
-} // namespace
-
-pack_spec parse_pack(const std::string& text, const fs::path& file)
-{
-    toml::table root;
-    try {
-        root = toml::parse(text, file.string());
-    } catch (const toml::parse_error& e) {
-        throw config_error(fmt::format("{}:{}: malformed TOML: {}", file.string(), e.source().begin.line, e.description()));
-    }
-    pack_spec p;
-    p.file = file;
-    for (const auto& [k, v] : root) {
-        const std::string key(k.str());
-        if (key != "pack" && key != "variant")
-            throw config_error(fmt::format("{}: {}: unknown section (a pack file holds [pack] and [[variant]])", pack_where(v, file), key));
-    }
-    const auto* pack = root["pack"].as_table();
-    if (pack == nullptr) throw config_error(fmt::format("{}: [pack]: missing section, or not a table (needs pack.scenario)", file.string()));
-    for (const auto& [k, v] : *pack) {
-        const std::string key(k.str());
-        if (key != "title" && key != "scenario" && key != "measure_tone_hz" && key != "measure_duration_s")
-            throw config_error(fmt::format("{}: pack.{}: unknown key (known: title, scenario, measure_tone_hz, measure_duration_s)",
-                                           pack_where(v, file), key));
-    }
-    p.title = pack_string(*pack, "title", "pack.title", file);
-    if (p.title.empty()) p.title = "galena comparison";
-    const std::string sc = pack_string(*pack, "scenario", "pack.scenario", file);
-    if (sc.empty()) throw config_error(fmt::format("{}: pack.scenario: missing (the base scenario file)", file.string()));
-    p.scenario = fs::path(sc).is_absolute() ? fs::path(sc) : file.parent_path() / sc;
-    p.measure_tone_hz = pack_number(*pack, "measure_tone_hz", "pack.measure_tone_hz", file, unit::hertz).value_or(default_measure_tone_hz);
-    p.measure_duration_s =
-        pack_number(*pack, "measure_duration_s", "pack.measure_duration_s", file, unit::second).value_or(default_measure_duration_s);
-    if (!(p.measure_tone_hz >= 0.0) || p.measure_tone_hz > 20000.0)
-        throw config_error(fmt::format("{}: pack.measure_tone_hz = {}: must be 0 (off) or in (0, 20000] Hz",
-                                       pack_where(*pack->get("measure_tone_hz"), file), detail::format_value(p.measure_tone_hz)));
-    if (!(p.measure_duration_s > 0.0) || p.measure_duration_s > 10.0)
-        throw config_error(fmt::format("{}: pack.measure_duration_s = {}: must be in (0, 10] s",
-                                       pack_where(*pack->get("measure_duration_s"), file), detail::format_value(p.measure_duration_s)));
-    const auto* arr = root["variant"].as_array();
-    if (arr == nullptr || arr->empty())
-        throw config_error(fmt::format("{}: [[variant]]: at least one variant is needed", file.string()));
-    if (arr->size() > sweep_hard_limit)
-        throw config_error(fmt::format("{}: [[variant]]: {} variants: must be at most {}", file.string(), arr->size(), sweep_hard_limit));
-    for (std::size_t i = 0; i < arr->size(); ++i) {
-        const auto* t = (*arr)[i].as_table();
-        const std::string where = fmt::format("{}: variant {}", pack_where((*arr)[i], file), i + 1);
-        if (t == nullptr) throw config_error(where + ": must be a table [[variant]]");
-        for (const auto& [k, v] : *t) {
-            const std::string key(k.str());
-            if (key != "name" && key != "label" && key != "set")
-                throw config_error(fmt::format("{}: variant {}: {}: unknown key (known: name, label, set)", pack_where(v, file), i + 1, key));
-        }
-        variant_spec v;
-        v.name = pack_string(*t, "name", "name", file);
-        if (!name_ok(v.name))
-            throw config_error(fmt::format("{}: name = \"{}\": needs letters, digits, '-', '_' or '.' only", where, v.name));
-        v.label = pack_string(*t, "label", "label", file);
-        if (v.label.empty()) v.label = v.name;
-        if (const toml::node* set = t->get("set")) {
-            const auto* list = set->as_array();
-            if (list == nullptr) throw config_error(fmt::format("{}: variant {}: set: must be a list of strings \"section.key=value\"", pack_where(*set, file), i + 1));
-            for (const auto& e : *list) {
-                const auto s = e.value_exact<std::string>();
-                if (!s) throw config_error(fmt::format("{}: variant {}: set: must be a list of strings \"section.key=value\"", pack_where(e, file), i + 1));
-                v.overrides.push_back(pack_relative(*s, file, pack_where(e, file)));
-                v.origins.push_back(pack_where(e, file));
-            }
-        }
-        p.variants.push_back(std::move(v));
-    }
-    return p;
-}
-
-pack_spec load_pack(const fs::path& file)
-{
-    const std::string text = read_text_input(file, "pack file");
-    refuse_audio_file(file, text, "pack");
-    return parse_pack(text, file);
-}
-
-bool is_pack_file(const fs::path& file)
-{
-    // The same capped, checked read as every input file (a device such as /dev/zero must not hang here);
-    // a file that cannot be read is not a pack, and the caller's own read names the problem.
-    std::string text;
-    try {
-        text = read_text_input(file, "pack file");
-    } catch (const config_error&) {
-        return false;
-    }
-    try {
-        const toml::table root = toml::parse(text, file.string());
-        return root.contains("pack") || root.contains("variant");
-    } catch (const toml::parse_error&) {
-        return false;
-    }
-}
-
-std::vector<scenario> load_pack_variants(const pack_spec& pack, const std::vector<std::string>& base_overrides)
-{
-    std::vector<scenario> out;
-    for (std::size_t i = 0; i < pack.variants.size(); ++i) {
-        const auto& v = pack.variants[i];
-        for (std::size_t j = 0; j < i; ++j)
-            if (pack.variants[j].name == v.name)
-                throw config_error(fmt::format("{}: variant {}: name \"{}\" is used twice", pack.file.string(), i + 1, v.name));
-        std::vector<std::string> ov = base_overrides;
-        ov.insert(ov.end(), v.overrides.begin(), v.overrides.end());
-        try {
-            out.push_back(load_scenario(pack.scenario, ov));
-        } catch (const config_error& e) {
-            throw config_error(fmt::format("{}: variant {}: {}", pack.file.string(), v.name, e.what()));
-        }
-    }
-    return out;
-}
-
-fs::path find_bundled_file(const fs::path& relative, const fs::path& executable, const fs::path& installed_data_dir)
-{
-    std::vector<fs::path> tried;
-    auto hit = [&](const fs::path& dir) {
-        tried.push_back(dir);
-        std::error_code ec;
-        return !dir.empty() && fs::is_regular_file(dir / relative, ec);
-    };
-    if (const char* env = std::getenv("GALENA_DATA_DIR"); env != nullptr && hit(env)) return fs::path(env) / relative;
-    std::error_code ec;
-    for (fs::path start : {fs::weakly_canonical(executable, ec).parent_path(), fs::current_path(ec)}) {
-        for (fs::path d = start; !d.empty(); d = d.parent_path()) {
-            if (hit(d)) return d / relative;
-            if (d == d.parent_path()) break;
-        }
-    }
-    if (!installed_data_dir.empty() && hit(installed_data_dir)) return installed_data_dir / relative;
-    std::string where;
-    for (const auto& t : tried) where += (where.empty() ? "" : ", ") + t.string();
-    throw config_error(fmt::format("{}: bundled file not found (searched {}); set GALENA_DATA_DIR to the galena source folder",
-                                   relative.string(), where));
-}
-
 const std::vector<std::string>& table_columns()
 {
     static const std::vector<std::string> c = {"carrier_peak_v", "dc_v",       "audio_rms_v",   "a_weighted_dbv",
@@ -444,15 +252,33 @@ const std::vector<std::string>& table_columns()
     return c;
 }
 
+const std::vector<std::string>& receiver_table_columns()
+{
+    static const std::vector<std::string> c = {"tuned_hz",      "loaded_q",           "rf_bandwidth_hz",      "detector_rf_peak_v",
+                                               "dc_v",          "audio_rms_v",        "a_weighted_dbv",       "wanted_tone_v",
+                                               "loudest_neighbour_db", "thd_percent", "peak_audio_v",         "clipped_samples"};
+    return c;
+}
+
+namespace {
+/// Whole-receiver columns when any row is a whole receiver (its metrics carry tuned_hz).
+const std::vector<std::string>& columns_for(const std::vector<variant_result>& rows)
+{
+    const bool receiver = std::any_of(rows.begin(), rows.end(), [](const variant_result& r) { return r.metrics.contains("tuned_hz"); });
+    return receiver ? receiver_table_columns() : table_columns();
+}
+} // namespace
+
 std::string table_csv(const std::vector<variant_result>& rows)
 {
+    const auto& columns = columns_for(rows);
     std::vector<std::string> head = {"variant", "label"};
-    head.insert(head.end(), table_columns().begin(), table_columns().end());
+    head.insert(head.end(), columns.begin(), columns.end());
     head.emplace_back("warnings");
     std::string o = csv_row(head);
     for (const auto& r : rows) {
         std::vector<std::string> f = {r.spec.name, r.spec.label};
-        for (const auto& c : table_columns()) f.push_back(r.metrics.contains(c) ? json_cell(r.metrics[c], 10, true) : std::string());
+        for (const auto& c : columns) f.push_back(r.metrics.contains(c) ? json_cell(r.metrics[c], 10, true) : std::string());
         f.push_back(std::to_string(r.metrics.contains("warnings") ? r.metrics["warnings"].size() : 0));
         o += csv_row(f);
     }
@@ -461,32 +287,40 @@ std::string table_csv(const std::vector<variant_result>& rows)
 
 std::string table_markdown(const std::vector<variant_result>& rows)
 {
-    // Volt columns are written in engineering notation ("21.86m" under "DC V"), as builders write values;
-    // ratios, % and dB stay plain.
+    // Volt and hertz columns are written in engineering notation ("21.86m" under "DC V", "1.002M" under
+    // "tuned Hz"), as builders write values; ratios, % and dB stay plain.
     struct head {
         std::string key, text;
-        bool volts;
+        bool engineering; ///< written with format_quantity in `u`
+        unit u = unit::volt;
     };
     static const std::vector<head> heads = {
         {"carrier_peak_v", "carrier V", true}, {"dc_v", "DC V", true},        {"audio_rms_v", "audio rms V", true},
         {"a_weighted_dbv", "dBV(A)", false},   {"fundamental_v", "tone V", true}, {"h2_ratio", "H2/H1", false},
         {"h3_ratio", "H3/H1", false},          {"thd_percent", "THD %", false}, {"thd_n_percent", "THD+N %", false},
         {"sinad_db", "SINAD dB", false},       {"peak_audio_v", "peak V", true}, {"clipped_samples", "clipped", false}};
+    static const std::vector<head> receiver_heads = {
+        {"tuned_hz", "tuned Hz", true, unit::hertz},        {"loaded_q", "loaded Q", false},     {"rf_bandwidth_hz", "RF BW Hz", true, unit::hertz},
+        {"detector_rf_peak_v", "RF peak V", true}, {"dc_v", "DC V", true},           {"audio_rms_v", "audio rms V", true},
+        {"a_weighted_dbv", "dBV(A)", false},    {"wanted_tone_v", "wanted tone V", true},
+        {"loudest_neighbour_db", "neighbour dB", false}, {"thd_percent", "THD %", false}, {"peak_audio_v", "peak V", true},
+        {"clipped_samples", "clipped", false}};
+    const auto& chosen = &columns_for(rows) == &receiver_table_columns() ? receiver_heads : heads;
     std::string o = "| variant | label |";
     std::string rule = "|---|---|";
-    for (const auto& h : heads) {
+    for (const auto& h : chosen) {
         o += " " + h.text + " |";
         rule += "---:|";
     }
     o += "\n" + rule + "\n";
     for (const auto& r : rows) {
         o += "| " + markdown_cell(r.spec.name) + " | " + markdown_cell(r.spec.label) + " |";
-        for (const auto& h : heads) {
+        for (const auto& h : chosen) {
             const std::string& k = h.key;
-            const bool volts = h.volts && r.metrics.contains(k) && r.metrics[k].is_number_float() &&
+            const bool engineering = h.engineering && r.metrics.contains(k) && r.metrics[k].is_number_float() &&
                                std::isfinite(r.metrics[k].get<double>());
             const std::string cell = !r.metrics.contains(k) ? std::string()
-                                     : volts                ? format_quantity(r.metrics[k].get<double>(), unit::volt, 4)
+                                     : engineering          ? format_quantity(r.metrics[k].get<double>(), h.u, 4)
                                                             : json_cell(r.metrics[k], 4, false);
             // Appended piece by piece: `" " + std::string(...)` trips GCC 12's -Wrestrict false positive.
             o += ' ';

@@ -10,7 +10,8 @@ here="$(cd "$(dirname "${BASH_SOURCE[0]}")/.." && pwd)"
 build="${GALENA_BUILD_DIR:-$here/build}"
 
 build_pkgs=(build-essential cmake pkg-config libboost-dev libeigen3-dev libsndfile1-dev libfmt-dev doctest-dev
-            libsamplerate0-dev libfftw3-dev libtomlplusplus-dev libcli11-dev nlohmann-json3-dev gnuplot-nox espeak-ng)
+            libsamplerate0-dev libfftw3-dev libtomlplusplus-dev libcli11-dev nlohmann-json3-dev gnuplot-nox espeak-ng
+            libcpp-httplib-dev)
 test_pkgs=(ngspice sox python3-numpy python3-scipy python3-pil chromium util-linux mount)
 fuzz_pkgs=(clang-14 libclang-rt-14-dev)
 case "$mode" in

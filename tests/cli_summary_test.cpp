@@ -112,7 +112,7 @@ TEST_CASE("a stereo clip is rendered whole; its mixed-to-mono warning appears on
 TEST_CASE("check validates a pack file; compare on a plain scenario and an audio file as the scenario explain themselves")
 {
     const fs::path d = fresh("check");
-    const auto p = galena_cli("check " + q(src_dir / "scenarios/demo-pack.toml"), d / "pack");
+    const auto p = galena_cli("check " + q(src_dir / "scenarios/bench-pack.toml"), d / "pack");
     CHECK(p.rc == 0);
     CHECK(p.err.find("is a valid pack file (12 variants)") != std::string::npos);
     CHECK(p.out.find("measurement tone 1 kHz, 300 ms") != std::string::npos);

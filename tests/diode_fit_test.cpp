@@ -316,6 +316,31 @@ TEST_CASE("measurement files: both forms, the meter correction and the temperatu
     CHECK(l.points[1].current_a == doctest::Approx((3.0 - 0.4) / 100.0 - 0.4 / 1e6).epsilon(1e-15));
 }
 
+TEST_CASE("measurement files take engineering values: the same points as the plain numbers")
+{
+    // The SI prefixes scale the decimal text exactly: 250m V is the double 0.25 and 20u A the double 2e-5.
+    const auto plain = parse_diode_measurements("voltage_v,current_a\n-1,-2e-6\n0.1,1e-6\n0.25,2e-5\n", "p.csv");
+    const auto eng = parse_diode_measurements("voltage_v,current_a\n-1V,-2uA\n100m,1u\n250 mV,20uA\n", "e.csv");
+    REQUIRE(eng.points.size() == plain.points.size());
+    for (std::size_t k = 0; k < eng.points.size(); ++k) {
+        CHECK(eng.points[k].voltage_v == plain.points[k].voltage_v);
+        CHECK(eng.points[k].current_a == plain.points[k].current_a);
+    }
+    const auto lp = parse_diode_measurements("supply_v,series_ohm,diode_v\n# meter_input_ohm = 1e6\n3,4.7e3,0.4\n", "a.csv");
+    const auto le = parse_diode_measurements("supply_v,series_ohm,diode_v\n# meter_input_ohm = 1M\n3V,4.7k,400mV\n", "b.csv");
+    REQUIRE(le.points.size() == 1);
+    CHECK(le.points[0].current_a == lp.points[0].current_a);
+    // A unit of another kind is refused with the file, line, field, value and both units.
+    try {
+        (void)parse_diode_measurements("voltage_v,current_a\n0.1,1uF\n", "u.csv");
+        FAIL("a current in farads was accepted");
+    } catch (const config_error& e) {
+        const std::string m = e.what();
+        CHECK(m.find("u.csv:2: current_a = 1uF") != std::string::npos);
+        CHECK(m.find("unit F") != std::string::npos);
+    }
+}
+
 TEST_CASE("bad measurement files: one line naming file, line, field, value and rule, exit 2, nothing written")
 {
     using galena_test::galena_cli;
@@ -328,7 +353,7 @@ TEST_CASE("bad measurement files: one line naming file, line, field, value and r
         {"too-few", "voltage_v,current_a\n0.1,1e-6\n0.2,1e-5\n0.3,5e-5\n", {"too-few.csv:4:", "3 points for 3 parameters", "at least 4"}},
         {"nonpositive", "voltage_v,current_a\n0.1,1e-6\n0.2,0\n0.3,5e-5\n0.4,1e-4\n",
          {"nonpositive.csv:3:", "current_a = 0", "forward point", "current > 0"}},
-        {"nan", "voltage_v,current_a\n0.1,1e-6\n0.2,nan\n", {"nan.csv:3:", "current_a = nan", "plain number"}},
+        {"nan", "voltage_v,current_a\n0.1,1e-6\n0.2,nan\n", {"nan.csv:3:", "current_a = nan", "must be a number"}},
         {"unsorted", "voltage_v,current_a\n0.1,1e-6\n0.3,1e-5\n0.2,5e-6\n", {"unsorted.csv:4:", "voltage_v = 0.2", "must increase", "line 3"}},
         {"duplicate", "voltage_v,current_a\n0.1,1e-6\n0.1,1.1e-6\n", {"duplicate.csv:3:", "voltage_v = 0.1", "duplicate voltage", "line 2"}},
         {"wrong-form", "volts,amps\n0.1,1e-6\n", {"wrong-form.csv:1:", "header volts,amps", "voltage_v,current_a"}},

@@ -3,6 +3,7 @@
 #include "galena/scenario.hpp"
 
 #include <doctest/doctest.h>
+#include <fmt/format.h>
 #include <cmath>
 #include <filesystem>
 #include <fstream>
@@ -127,4 +128,79 @@ TEST_CASE("diode.file: a fitted diode file, relative to the scenario; keys besid
                          config_error);
     write(dir / "s6.toml", "[diode]\nfile = \"fits/missing.toml\"\n");
     CHECK_THROWS_WITH_AS(load_scenario(dir / "s6.toml"), doctest::Contains("s6.toml:2: diode.file = "), config_error);
+}
+
+TEST_CASE("one station of a [[station]] list is addressed as station.N.key; mistakes name the override and the rule")
+{
+    const std::string text = R"([signal]
+duration_s = 0.3
+[tuner]
+layout = "coupled"
+[[station]]
+name = "near"
+carrier_hz = 1.0e6
+tone_hz = 400
+[[station]]
+name = "next"
+carrier_hz = 1.01e6
+field_v_per_m = 5e-3
+)";
+    const auto s = parse_scenario(text, "rx.toml", {"station.2.carrier_hz=1.02MHz", "station.1.tone_hz=500", "station.2.name=other"});
+    REQUIRE(s.stations.size() == 2);
+    CHECK(s.stations[0].params.carrier_hz == 1.0e6); // untouched
+    CHECK(s.stations[0].tone_hz == 500.0);
+    CHECK(s.stations[1].params.carrier_hz == 1.02e6);
+    CHECK(s.stations[1].params.field_v_per_m == 5e-3); // the other keys of station 2 stay
+    CHECK(s.stations[1].params.name == "other");
+    CHECK(to_toml(parse_scenario(to_toml(s), "again.toml")) == to_toml(s));
+    // Every numeric station key, written back in engineering notation with its unit, sets station 2 to the
+    // same scenario (the keys' units come from the one key table).
+    std::size_t station_keys = 0;
+    for (const auto& k : scenario_keys()) {
+        if (!k.numeric || k.field.rfind("station.", 0) != 0) continue;
+        ++station_keys;
+        const std::string key = k.field.substr(8);
+        const std::string field = "station.2." + key;
+        const double v = key == "carrier_hz" ? 1.02e6 : key == "tone_hz" ? 700.0 : 0.45;
+        const scenario plain = parse_scenario(text, "rx.toml", {field + "=" + fmt::format("{}", v)});
+        CHECK_MESSAGE(to_toml(plain) != to_toml(parse_scenario(text, "rx.toml")), field, " was not applied");
+        for (const bool symbol : {false, true}) {
+            const scenario eng = parse_scenario(text, "rx.toml", {field + "=" + format_quantity(v, k.u, 0, symbol)});
+            CHECK_MESSAGE(to_toml(eng) == to_toml(plain), field, " = ", format_quantity(v, k.u, 0, symbol));
+        }
+    }
+    CHECK(station_keys == 3); // carrier_hz, modulation_index, tone_hz
+    CHECK(contract_field("station.2.carrier_hz") == "station.carrier_hz");
+    CHECK(contract_field("tuner.coupling") == "tuner.coupling");
+    CHECK(key_unit("station.12.carrier_hz") == unit::hertz);
+    // Without a number, with a number out of range, and for a file without stations.
+    CHECK_THROWS_WITH_AS((void)parse_scenario(text, "rx.toml", {"station.carrier_hz=1.02e6"}),
+                         doctest::Contains("--set station.carrier_hz=1.02e6: the scenario has 2 [[station]] tables: address one as "
+                                           "station.N.carrier_hz with N from 1 (the wanted station) to 2"),
+                         config_error);
+    for (const char* n : {"0", "3", "99999999999999999999"})
+        CHECK_THROWS_WITH_AS((void)parse_scenario(text, "rx.toml", {std::string("station.") + n + ".carrier_hz=1e6"}),
+                             doctest::Contains((std::string("station ") + n + ": must be a station number from 1 to 2").c_str()), config_error);
+    CHECK_THROWS_WITH_AS((void)parse_scenario("[signal]\ntone_hz = 400\n", "bench.toml", {"station.1.carrier_hz=1e6"}),
+                         doctest::Contains("--set station.1.carrier_hz=1e6: station 1: the scenario has no [[station]] tables to address"),
+                         config_error);
+    // The value's unit, its range and an unknown key: named with the --set that gave them.
+    CHECK_THROWS_WITH_AS((void)parse_scenario(text, "rx.toml", {"station.2.carrier_hz=1.02MV"}),
+                         doctest::Contains("rx.toml (--set station.2.carrier_hz=1.02MV): station.carrier_hz = '1.02MV': unit V does not "
+                                           "match the key's unit, Hz"),
+                         config_error);
+    CHECK_THROWS_WITH_AS((void)parse_scenario(text, "rx.toml", {"station.2.modulation_index=1.5"}),
+                         doctest::Contains("rx.toml (--set station.2.modulation_index=1.5): station 2 \"next\": station.modulation_index = "
+                                           "1.5: must be in [0, 1]"),
+                         config_error);
+    CHECK_THROWS_WITH_AS((void)parse_scenario(text, "rx.toml", {"station.1.carrier=1e6"}),
+                         doctest::Contains("rx.toml (--set station.1.carrier=1e6): station.carrier: unknown key (did you mean "
+                                           "station.carrier_hz?)"),
+                         config_error);
+    // A value written in the file is named by its line.
+    std::string bad = text;
+    bad.replace(bad.find("5e-3"), 4, "-1");
+    CHECK_THROWS_WITH_AS((void)parse_scenario(bad, "rx.toml"),
+                         doctest::Contains("rx.toml:12: station 2 \"next\": station.field_v_per_m = -1: must be > 0 and <= 100 V/m"),
+                         config_error);
 }

@@ -1,9 +1,12 @@
 // Sweep axes, variants and pack files: parsing, limits and the messages of bad input.
 #include "galena/error.hpp"
+#include "galena/pack_file.hpp"
 #include "galena/sweep.hpp"
 
 #include <doctest/doctest.h>
 #include <fmt/format.h>
+
+#include <cmath>
 
 #include <filesystem>
 #include <string>
@@ -12,14 +15,31 @@
 using namespace galena;
 namespace fs = std::filesystem;
 
-TEST_CASE("the bundled demo pack parses: its scenario resolves beside it and every variant has overrides")
+TEST_CASE("the bundled demo pack parses: a crystal set whose variants answer coupling, tap, bleeder and diode")
 {
     const fs::path file = fs::path(GALENA_SOURCE_DIR) / "scenarios/demo-pack.toml";
     const pack_spec p = load_pack(file);
-    CHECK(p.scenario == file.parent_path() / "demo.toml");
-    CHECK(p.measure_tone_hz == 1000.0);
+    CHECK(p.scenario == file.parent_path() / "crystal-set.toml");
+    CHECK(p.measure_tone_hz == 0.0); // the stations send test tones already
     REQUIRE(p.variants.size() >= 2);
     for (const auto& v : p.variants) CHECK_FALSE(v.overrides.empty());
+    const auto scenes = load_pack_variants(p);
+    REQUIRE(scenes.size() == p.variants.size());
+    std::vector<double> couplings;
+    for (std::size_t i = 0; i < scenes.size(); ++i) {
+        const auto& s = scenes[i];
+        CHECK(s.tuner.layout == tuner_layout::coupled);
+        // An invented band on a 10 kHz raster, the wanted station first.
+        REQUIRE(s.stations.size() == 3);
+        for (const auto& st : s.stations) CHECK(std::fmod(st.params.carrier_hz, 10e3) == 0.0);
+        CHECK(s.stations[0].params.carrier_hz == 1.0e6);
+        if (p.variants[i].name.rfind("coupling-", 0) == 0) couplings.push_back(s.tuner.coupling);
+    }
+    CHECK(couplings == std::vector<double>{0.01, 0.028, 0.08}); // loose, near critical, tight
+    // The bench pack keeps the bleeder and diode questions on the generator of demo.toml.
+    const pack_spec bench = load_pack(file.parent_path() / "bench-pack.toml");
+    CHECK(bench.scenario == file.parent_path() / "demo.toml");
+    CHECK(bench.measure_tone_hz == 1000.0);
 }
 
 TEST_CASE("axes: lists, log ranges and their limits")
@@ -96,11 +116,11 @@ TEST_CASE("pack files are told from scenarios; check loads every variant and nam
     CHECK(is_pack_file(dir / "example-pack.toml"));
     CHECK_FALSE(is_pack_file(dir / "example.toml"));
     CHECK_FALSE(is_pack_file(fs::path(GALENA_SOURCE_DIR) / "audio-samples/tone-1khz.wav"));
-    const pack_spec demo = load_pack(dir / "demo-pack.toml");
-    const auto scenes = load_pack_variants(demo);
-    REQUIRE(scenes.size() == demo.variants.size());
+    const pack_spec bench = load_pack(dir / "bench-pack.toml");
+    const auto scenes = load_pack_variants(bench);
+    REQUIRE(scenes.size() == bench.variants.size());
     CHECK(scenes[1].circuit.load.bleeder_ohm == 10e3); // ge-weak-10k
-    pack_spec broken = demo;
+    pack_spec broken = bench;
     broken.variants[2].overrides.push_back("load.bleeder_ohm=10nF");
     std::string msg;
     try {
@@ -108,8 +128,54 @@ TEST_CASE("pack files are told from scenarios; check loads every variant and nam
     } catch (const config_error& e) {
         msg = e.what();
     }
-    CHECK(msg.rfind((dir / "demo-pack.toml").string() + ": variant ge-weak-47k: ", 0) == 0);
+    CHECK(msg.rfind((dir / "bench-pack.toml").string() + ": variant ge-weak-47k: ", 0) == 0);
     CHECK(msg.find("load.bleeder_ohm = '10nF': unit F does not match the key's unit, ohm") != std::string::npos);
+}
+
+TEST_CASE("receiver axes: tuner keys and numbered stations, with engineering values in names and labels")
+{
+    const auto k = parse_sweep_axis("tuner.coupling=10m,28m,0.08");
+    const auto t = parse_sweep_axis("tuner.detector_tap=log:0.25:1:3");
+    REQUIRE(t.values.size() == 3);
+    CHECK(t.values[1] == "0.5");
+    const auto v = expand_sweep({k, t});
+    REQUIRE(v.size() == 9);
+    CHECK(v[0].name == "01-coupling-10m-detector_tap-250m");
+    CHECK(v[8].label == "coupling = 80m, detector_tap = 1");
+    // A station is addressed by its number; its key's unit applies (carrier_hz: Hz).
+    const auto c = parse_sweep_axis("station.2.carrier_hz=log:1.01MHz:1.04MHz:2");
+    CHECK(c.values == std::vector<std::string>{"1.01e+06", "1.04e+06"});
+    const auto sv = expand_sweep({c});
+    CHECK(sv[0].name == "01-station2.carrier_hz-1.01M");
+    CHECK(sv[1].label == "station2.carrier_hz = 1.04M");
+    CHECK(sv[1].overrides == std::vector<std::string>{"station.2.carrier_hz=1.04e+06"});
+    CHECK_THROWS_WITH_AS(parse_sweep_axis("station.2.carrier_hz=log:1.01MV:1.04MHz:2"),
+                         doctest::Contains("LO = \"1.01MV\": unit V does not match the key's unit, Hz"), config_error);
+    // Each variant loads through the crystal-set scenario, and a refused value names the file, the override,
+    // the field, the value and the rule.
+    const fs::path base = fs::path(GALENA_SOURCE_DIR) / "scenarios/crystal-set.toml";
+    const sweep_result ok = prepare_sweep(base, {}, expand_sweep({c, k}), sweep_options{});
+    REQUIRE(ok.variants.size() == 6);
+    CHECK(ok.variants[5].scene.stations[1].params.carrier_hz == 1.04e6);
+    CHECK(ok.variants[5].scene.stations[0].params.carrier_hz == 1.0e6);
+    CHECK(ok.variants[5].scene.tuner.coupling == 0.08);
+    std::string msg;
+    try {
+        (void)prepare_sweep(base, {}, expand_sweep({parse_sweep_axis("tuner.coupling=0.05,1.2")}), sweep_options{});
+    } catch (const config_error& e) {
+        msg = e.what();
+    }
+    CHECK(msg.find("variant 02-coupling-1.2: ") != std::string::npos);
+    CHECK(msg.find(base.string() + " (--set tuner.coupling=1.2)") != std::string::npos);
+    CHECK(msg.find("tuner.coupling = 1.2: must be > 0 and <= 0.9 (did you mean 0.012, i.e. 1.2 %?)") != std::string::npos);
+    msg.clear();
+    try {
+        (void)prepare_sweep(base, {}, expand_sweep({parse_sweep_axis("station.3.field_v_per_m=1m,-2m")}), sweep_options{});
+    } catch (const config_error& e) {
+        msg = e.what();
+    }
+    CHECK(msg.find(base.string() + " (--set station.3.field_v_per_m=-2m): station 3 \"Valley Regional\": "
+                   "station.field_v_per_m = -0.002: must be > 0 and <= 100 V/m") != std::string::npos);
 }
 
 TEST_CASE("sweep progress: finished variants reported once each, in variant order, with a rising work fraction")
@@ -138,6 +204,27 @@ TEST_CASE("sweep progress: finished variants reported once each, in variant orde
     REQUIRE_FALSE(fractions.empty());
     for (std::size_t i = 1; i < fractions.size(); ++i) CHECK(fractions[i] >= fractions[i - 1]);
     CHECK(fractions.back() == 1.0);
+}
+
+TEST_CASE("tables: whole-receiver rows get the front end's columns, bench rows keep theirs")
+{
+    variant_result bench;
+    bench.spec.name = "b";
+    bench.metrics = {{"carrier_peak_v", 0.15}, {"dc_v", 0.02}, {"warnings", nlohmann::json::array()}};
+    variant_result rx;
+    rx.spec.name = "r";
+    rx.metrics = {{"tuned_hz", 1.0e6}, {"loaded_q", 26.5}, {"rf_bandwidth_hz", 37.7e3}, {"wanted_tone_v", 0.105},
+                  {"loudest_neighbour_db", 1.9}, {"warnings", nlohmann::json::array()}};
+    const std::string b = table_csv({bench});
+    CHECK(b.rfind("variant,label,carrier_peak_v,dc_v,", 0) == 0);
+    const std::string r = table_csv({rx});
+    CHECK(r.rfind("variant,label,tuned_hz,loaded_q,rf_bandwidth_hz,detector_rf_peak_v,", 0) == 0);
+    CHECK(r.find("wanted_tone_v,loudest_neighbour_db") != std::string::npos);
+    CHECK(r.find("\nr,,1000000,26.5,37700,,") != std::string::npos); // no label: an empty cell
+    const std::string m = table_markdown({rx});
+    CHECK(m.find("| tuned Hz | loaded Q | RF BW Hz |") != std::string::npos);
+    CHECK(m.find("| 1M | 26.5 | 37.7k |") != std::string::npos);
+    CHECK(m.find("| 105m | 1.9 |") != std::string::npos);
 }
 
 TEST_CASE("a clip variant measured on a tone: its warnings are chosen by code, not by sentence")

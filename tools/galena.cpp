@@ -10,6 +10,7 @@
 #include "galena/staged_output.hpp"
 #include "galena/sweep.hpp"
 #include "galena/units.hpp"
+#include "galena/workbench.hpp"
 
 #include <CLI/CLI.hpp>
 #include <cerrno>
@@ -164,6 +165,8 @@ void print_pack(const galena::pack_outcome& o, const std::string& out_dir, doubl
     fmt::print("{}", galena::table_markdown(o.sweep.variants));
     fmt::print("\nwrote {} ({} variants, playlist {}); {:.1f} s wall\n", (std::filesystem::path(out_dir) / "index.html").string(),
                o.sweep.variants.size(), o.playlist_wav.string(), wall_s);
+    std::fflush(stdout);
+    for (const auto& w : o.warnings) std::fprintf(stderr, "galena: warning: %s\n", w.message.c_str());
 }
 
 } // namespace
@@ -258,7 +261,7 @@ int main(int argc, char** argv)
 
     std::string demo_out = "demo-out";
     unsigned demo_threads = 0;
-    auto* demo = app.add_subcommand("demo", "render the bundled demo pack (bleeder values; germanium vs Schottky; weak and strong carrier)");
+    auto* demo = app.add_subcommand("demo", "render the bundled demo: a crystal set on an invented band (coupling, detector tap, bleeder, diode)");
     demo->add_option("--out,-o", demo_out, "output directory")->capture_default_str();
     demo->add_option("--threads,-j", demo_threads, "worker threads (0 = all cores)");
     demo->add_flag("--overwrite", overwrite, "replace existing output files");
@@ -291,6 +294,18 @@ int main(int argc, char** argv)
     rank->add_flag("--quiet,-q", quiet, "no progress output");
     rank->add_flag("--allow-long", allow_long, long_help);
 
+    // The workbench (issue 17): a local web page that renders on each change.
+    int wb_port = 8017;
+    std::string wb_listen = "127.0.0.1";
+    unsigned wb_threads = 0;
+    auto* workbench = app.add_subcommand("workbench", "serve the bench in the browser: change a part, hear it (loopback only; Ctrl-C stops it)");
+    workbench->add_option("--port,-p", wb_port, "TCP port (0 = a free port)")->capture_default_str();
+    workbench->add_option("--listen", wb_listen,
+                          "listen on this address instead of the loopback address: anyone who reaches it can render on "
+                          "this machine (README \"Workbench\")")
+        ->capture_default_str();
+    workbench->add_option("--threads,-j", wb_threads, "renders at once (0 = all cores)");
+
     try {
         app.parse(argc, argv);
     } catch (const CLI::ParseError& e) {
@@ -307,6 +322,25 @@ int main(int argc, char** argv)
                            d.leakage_resistance_ohm, d.junction_capacitance_f, d.junction_potential_v, d.grading_coefficient,
                            d.breakdown_voltage_v, d.energy_gap_ev, d.video_resistance_ohm(), d.temperature_c);
             }
+            return exit_ok;
+        }
+        if (*workbench) {
+            galena::workbench_options wo;
+            wo.host = wb_listen;
+            wo.port = wb_port;
+            wo.render_threads = wb_threads;
+            wo.base_scenario = galena::find_bundled_file("scenarios/workbench.toml", "/proc/self/exe", installed_data_dir());
+            wo.clips_dir = galena::find_bundled_file("audio-samples/README.md", "/proc/self/exe", installed_data_dir()).parent_path();
+            galena::workbench bench(wo);
+            fmt::print("galena workbench: {} (Ctrl-C stops it)\n", bench.address());
+            std::fflush(stdout);
+            if (wb_listen != "127.0.0.1" && wb_listen != "::1" && wb_listen != "localhost")
+                std::fprintf(stderr, "galena: warning: listening on %s: anyone who can reach this address can render on this machine\n",
+                             wb_listen.c_str());
+            bench.serve_until_cancelled();
+            const auto st = bench.stats();
+            std::fprintf(stderr, "galena: workbench stopped after %zu renders (%zu replaced by newer changes); temporary folder removed\n",
+                         st.renders_done, st.renders_cancelled);
             return exit_ok;
         }
         if (*fit_diode) {
@@ -330,6 +364,8 @@ int main(int argc, char** argv)
             std::vector<std::filesystem::path> files(rk_diodes.begin(), rk_diodes.end());
             const auto o = galena::rank_diodes(rk_scenario, rk_sets, files, rk_out, ro);
             fmt::print("{}\nwrote {}, {} and {}\n", galena::ranking_markdown(o), o.csv.string(), o.markdown.string(), o.pack.page.string());
+            std::fflush(stdout);
+            for (const auto& w : o.pack.warnings) std::fprintf(stderr, "galena: warning: %s\n", w.message.c_str());
             return exit_ok;
         }
         if (*check) {

@@ -69,8 +69,9 @@ struct job_outcome {
                                          const std::vector<warning>& warnings);
 /// Metrics of a whole-receiver render (tuner.layout other than bench): levels, the wanted station's tone
 /// figures (when a tone), tuned_hz, loaded_q, rf_bandwidth_hz, detector_rf_peak_v, the `stations` list
-/// (name, carrier_hz, tone_hz, tone_v, level_db relative to the wanted station) and the carrier-difference
-/// `whistles` (frequency_hz, level_v).
+/// (name, carrier_hz, tone_hz, tone_v, level_db relative to the wanted station), wanted_tone_v (the first
+/// station's tone_v), loudest_neighbour_db (the largest level_db of the other stations; null when none is
+/// measured) and the carrier-difference `whistles` (frequency_hz, level_v).
 [[nodiscard]] nlohmann::json receiver_job_metrics(const scenario& s, std::span<const float> earpiece_v, const receiver_figures& fig,
                                                   const std::vector<warning>& warnings);
 

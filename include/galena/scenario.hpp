@@ -75,7 +75,10 @@ struct scenario {
 };
 
 /// Parses and validates a scenario file, then applies `overrides` ("section.key=value", TOML value syntax;
-/// bare words are taken as strings). Numeric keys take numbers or engineering text with the key's unit
+/// bare words are taken as strings). One station of the [[station]] list is addressed as
+/// "station.N.key=value", N from 1 (the wanted station) in file order ("station.2.carrier_hz=1.01MHz");
+/// "station.key=value" without N is refused when the file has a [[station]] list (it makes a [station]
+/// table where there is none). Numeric keys take numbers or engineering text with the key's unit
 /// (parse_quantity: "47k", "10nF"). Throws config_error "FILE:LINE: section.key = value: rule" on any
 /// problem, with a suggestion for unknown keys, for a key given without its section, and for a value that
 /// a missing SI prefix or a percentage made invalid ("did you mean 1000e3 or 1000k?"). An audio file given
@@ -93,6 +96,9 @@ struct scenario_key {
 };
 /// Every key of the contract, sorted by field.
 [[nodiscard]] const std::vector<scenario_key>& scenario_keys();
+/// The key-table field that an override's field addresses: "station.N.key" (station N of the [[station]]
+/// list, N from 1 = the wanted station) -> "station.key"; any other field unchanged.
+[[nodiscard]] std::string contract_field(std::string_view field);
 /// The unit of the numeric key `field` ("load.bleeder_ohm" -> unit::ohm). Throws config_error for an
 /// unknown key (naming the nearest) or a key that is not numeric.
 [[nodiscard]] unit key_unit(std::string_view field);

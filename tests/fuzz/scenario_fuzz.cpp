@@ -6,6 +6,7 @@
 // that parses renders to TOML that parses again to the same text (to_toml round trip).
 #include "galena/error.hpp"
 #include "galena/scenario.hpp"
+#include "galena/pack_file.hpp"
 #include "galena/sweep.hpp"
 
 #include <cstddef>
