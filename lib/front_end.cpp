@@ -91,7 +91,10 @@ double tuner_params::tuning_capacitance_f() const noexcept
     return 1.0 / (w * w * coil_h);
 }
 
-double tuner_params::design_hz() const noexcept { return 1.0 / (two_pi * std::sqrt(coil_h * tuning_capacitance_f())); }
+double tuner_params::design_hz() const noexcept
+{
+    return capacitance_f > 0.0 ? 1.0 / (two_pi * std::sqrt(coil_h * capacitance_f)) : tuned_hz;
+}
 
 void stamp_load(network& net, node_id out, const load_params& load, const earpiece_params& ear)
 {
@@ -197,12 +200,11 @@ void stamp_tapped_coil(network& net, const std::vector<node_id>& nodes, const st
 
 } // namespace
 
-receiver_network build_receiver_network(const circuit_params& circuit, const antenna_params& antenna, const tuner_params& tuner)
+namespace {
+
+/// The receiver with the tuning capacitor given (F; used by the tuned layouts only).
+receiver_network build_with(const circuit_params& circuit, const antenna_params& antenna, const tuner_params& tuner, double c_tune_f)
 {
-    circuit.diode.validate();
-    circuit.load.validate();
-    circuit.earpiece.validate();
-    tuner.validate();
     receiver_network r;
     network& net = r.net;
     const double w0_for_loss = [&] {
@@ -230,7 +232,7 @@ receiver_network build_receiver_network(const circuit_params& circuit, const ant
         break;
     case tuner_layout::single_coil:
     case tuner_layout::coupled: {
-        r.tuning_capacitance_f = tuner.tuning_capacitance_f();
+        r.tuning_capacitance_f = c_tune_f;
         r.design_hz = tuner.design_hz();
         const double loss = w0_for_loss * tuner.coil_h / tuner.coil_q;
         // Boundaries of the tapped tuning coil, bottom (ground, 0) to top (1).
@@ -245,6 +247,7 @@ receiver_network build_receiver_network(const circuit_params& circuit, const ant
             nodes.push_back(net.add_node(i + 1 == fr.size() ? "tuning coil top" : fmt::format("tuning coil tap {:.3g}", fr[i])));
         auto node_at = [&](double f) { return nodes[static_cast<std::size_t>(std::find(fr.begin(), fr.end(), f) - fr.begin())]; };
         const node_id top = nodes.back();
+        r.tank_node = top;
         net.add_capacitor(top, ground_node, r.tuning_capacitance_f);
         for (std::size_t i = 1; i + 1 < nodes.size(); ++i) net.add_capacitor(nodes[i], ground_node, tap_stray_capacitance_f);
         r.detector_node = node_at(tuner.detector_tap);
@@ -276,6 +279,68 @@ receiver_network build_receiver_network(const circuit_params& circuit, const ant
     net.set_junction(anode, r.output_node, c_lin);
     stamp_load(net, r.output_node, circuit.load, circuit.earpiece);
     return r;
+}
+
+/// The largest response |v_detector / EMF| (junction open) within f_hz (1 +- span): a scan, then golden-section
+/// refinement; Hz.
+double response_peak_hz(const receiver_network& rn, double f_hz, double span)
+{
+    auto gain = [&](double f) { return std::abs(rn.net.transfer_to(rn.emf_input, rn.detector_node, ground_node, f, 0.0)); };
+    constexpr int scan = 40;
+    const double lo = f_hz * (1.0 - span), step = 2.0 * span * f_hz / scan;
+    int best = 0;
+    double best_g = -1.0;
+    for (int k = 0; k <= scan; ++k) {
+        const double g = gain(lo + k * step);
+        if (g > best_g) best_g = g, best = k;
+    }
+    if (best == 0 || best == scan) return lo + best * step;
+    double a = lo + (best - 1) * step, b = lo + (best + 1) * step;
+    const double gr = 0.5 * (std::sqrt(5.0) - 1.0);
+    double x1 = b - gr * (b - a), x2 = a + gr * (b - a);
+    double g1 = gain(x1), g2 = gain(x2);
+    while (b - a > 1e-12 * f_hz) {
+        if (g1 > g2) b = x2, x2 = x1, g2 = g1, x1 = b - gr * (b - a), g1 = gain(x1);
+        else a = x1, x1 = x2, g1 = g2, x2 = a + gr * (b - a), g2 = gain(x2);
+    }
+    return 0.5 * (a + b);
+}
+
+} // namespace
+
+receiver_network build_receiver_network(const circuit_params& circuit, const antenna_params& antenna, const tuner_params& tuner)
+{
+    circuit.diode.validate();
+    circuit.load.validate();
+    circuit.earpiece.validate();
+    tuner.validate();
+    const bool tuned = tuner.layout == tuner_layout::single_coil || tuner.layout == tuner_layout::coupled;
+    if (!tuned || tuner.capacitance_f > 0.0) return build_with(circuit, antenna, tuner, tuner.tuning_capacitance_f());
+    // Solve the tuning capacitor for the loaded tank: the admittance at the top of the tuning coil (the
+    // capacitor's node; EMF shorted, junction port open, its linear capacitance in place) is Y_rest + jwC,
+    // affine in C, so the C that makes it real at w = 2 pi tuned_hz follows from one evaluation at the bare
+    // value C0: C = C0 - Im(Y(C0)) / w.
+    const double c0 = tuner.tuning_capacitance_f();
+    const receiver_network first = build_with(circuit, antenna, tuner, c0);
+    const double w = two_pi * tuner.tuned_hz;
+    const std::complex<double> z = first.net.impedance(first.tank_node, ground_node, tuner.tuned_hz, 0.0);
+    double c = c0 - (1.0 / z).imag() / w;
+    if (!(c > 0.0) || !std::isfinite(c))
+        throw config_error(fmt::format("tuner.tuned_hz = {}: the antenna and the detector already tune a {} coil above it (no "
+                                       "positive tuning capacitance is left); give a lower tuned_hz or a smaller coil_h",
+                                       detail::format_value(tuner.tuned_hz), detail::format_value(tuner.coil_h)));
+    // Then the response peak at the detector (junction open) onto tuned_hz: the loss moves it from the parallel
+    // resonance by about f / (2 Q^2). A peak more than 1e-3 away (two humps of an over-coupled pair) keeps the
+    // parallel resonance. The peak moves as 1 / sqrt(C).
+    receiver_network rn = build_with(circuit, antenna, tuner, c);
+    for (int it = 0; it < 6; ++it) {
+        const double fp = response_peak_hz(rn, tuner.tuned_hz, 2e-3);
+        const double r = fp / tuner.tuned_hz;
+        if (!(std::fabs(r - 1.0) < 1e-3) || std::fabs(r - 1.0) < 1e-8) break;
+        c *= r * r;
+        rn = build_with(circuit, antenna, tuner, c);
+    }
+    return rn;
 }
 
 double detector_gain(const receiver_network& rn, std::complex<double> y, double f_hz)

@@ -12,6 +12,12 @@
 
 namespace galena {
 
+namespace {
+/// Largest block of steps evaluated by superposition (see the class comment): the per-step dot product
+/// grows with it, the per-block products shrink per step; 32 measured best for 8 states and 3 stations.
+constexpr int max_block_steps = 32;
+} // namespace
+
 rf_integrator::rf_integrator(const state_space& ss, int input, const junction_law& junction, const station_source& stations,
                              double reference_hz, const rf_settings& st)
     : m_src(&stations), m_law(junction), m_n(st.steps_per_cycle), m_fref(reference_hz)
@@ -24,6 +30,7 @@ rf_integrator::rf_integrator(const state_space& ss, int input, const junction_la
     if (input < 0 || input >= ss.b.cols()) throw config_error(fmt::format("rf_integrator: input {} does not exist", input));
     m_tol = st.newton_tolerance_v;
     m_h = 1.0 / (reference_hz * m_n);
+    m_block = std::min(m_n, max_block_steps);
     m_c_lin = ss.port_linear_capacitance_f;
     m_charge = junction.cj0_f > 0.0;
     const int n = ss.states();
@@ -50,38 +57,99 @@ rf_integrator::rf_integrator(const state_space& ss, int input, const junction_la
         m(n + 1, n + 1) = std::complex<double>(0.0, w);
         m(n, n + 1) = 1.0;
         const Eigen::MatrixXcd e = (m * std::complex<double>(m_h, 0.0)).exp();
-        m_w0r.push_back(e.block(0, n, n, 1).real());
-        m_w0i.push_back(e.block(0, n, n, 1).imag());
-        m_w1r.push_back(e.block(0, n + 1, n, 1).real());
-        m_w1i.push_back(e.block(0, n + 1, n, 1).imag());
+        m_w0.emplace_back(e.block(0, n, n, 1));
+        m_w1.emplace_back(e.block(0, n + 1, n, 1));
         m_ratio.push_back(stations.station(s).params().carrier_hz / reference_hz);
-        m_rot.push_back(std::polar(1.0, w * m_h));
+        m_wh.push_back(w * m_h);
     }
-    m_pc = ss.port_c;
-    m_pd = ss.port_d(input);
-    m_pdj = ss.port_dj;
-    // 4-point Lagrange weights on cycle boundaries -1, 0, 1, 2 at phase tau = k / N.
-    for (int k = 0; k <= m_n; ++k) {
-        const double t = static_cast<double>(k) / m_n;
-        m_lag.push_back({-t * (t - 1.0) * (t - 2.0) / 6.0, (t + 1.0) * (t - 1.0) * (t - 2.0) / 2.0,
-                         -(t + 1.0) * t * (t - 2.0) / 2.0, (t + 1.0) * t * (t - 1.0) / 6.0});
-    }
+    // The port, and the state after a whole block and after the cycle's last (possibly shorter) block.
+    m_port = tabulate(ss.port_c, Eigen::VectorXd::Constant(1, ss.port_d(input)), Eigen::VectorXd::Constant(1, ss.port_dj), m_block, false);
+    const Eigen::MatrixXd eye = Eigen::MatrixXd::Identity(n, n);
+    const Eigen::VectorXd zero = Eigen::VectorXd::Zero(n);
+    m_end = tabulate(eye, zero, zero, m_block, true);
+    const int last = m_n - (m_n - 1) / m_block * m_block;
+    m_end_last = last == m_block ? m_end : tabulate(eye, zero, zero, last, true);
     m_env.assign(4 * stations.size(), 0.0);
     for (int k = 1; k <= m_n; ++k) m_ref_phasor.push_back(std::polar(1.0, -two_pi * static_cast<double>(k) / m_n));
-    m_v_prev.assign(static_cast<std::size_t>(m_n), 0.0);
+    m_prev.assign(static_cast<std::size_t>(m_n), phase_point{});
     m_x = Eigen::VectorXd::Zero(n);
-    m_tmp = Eigen::VectorXd::Zero(n);
+    m_z = Eigen::VectorXd::Zero(n + 8 * static_cast<Eigen::Index>(stations.size()));
+    m_jb = Eigen::VectorXd::Zero(m_block + 1);
+    m_free = Eigen::VectorXd::Zero(m_block);
+    m_y = Eigen::VectorXd::Zero(m_block);
+}
+
+rf_integrator::row_tables rf_integrator::tabulate(const Eigen::MatrixXd& c, const Eigen::VectorXd& d_u, const Eigen::VectorXd& d_j,
+                                                  int length, bool last_only) const
+{
+    // Row r of c at local step end k (1..length) after a block start x_b, j_0 and the envelope's Taylor
+    // coefficients P_q (q = 0..3, in units of sigma = local step / N) times the carrier phasor p at the block
+    // start:
+    //   c x_k = c Phi^k x_b + Re(sum_q p P_q sum_{i<k} c Phi^{k-1-i} V_q,i)
+    //         + sum_{i<k} c Phi^{k-1-i} g0 j_i + sum_{1<=i<=k} c Phi^{k-i} g1 j_i,
+    //   V_q,i = r^i (sigma_i^q W0 + (sigma_{i+1}^q - sigma_i^q) / h W1),  r = e^{jwh},
+    // plus d_u u_k (u_k = Re(p r^k sum_q P_q sigma_k^q) per station) and d_j j_k.
+    const auto n = m_phi.rows();
+    const auto rows = c.rows();
+    const auto ns = static_cast<Eigen::Index>(m_w0.size());
+    const Eigen::Index cols = n + 8 * ns;
+    std::vector<Eigen::MatrixXd> cp(static_cast<std::size_t>(length) + 1); // c Phi^k
+    cp[0] = c;
+    for (std::size_t k = 1; k < cp.size(); ++k) cp[k] = cp[k - 1] * m_phi;
+    const Eigen::Index out_rows = last_only ? rows : length;
+    row_tables t;
+    t.m = Eigen::MatrixXd::Zero(out_rows, cols);
+    t.j = row_major::Zero(out_rows, length + 1);
+    auto sigma_pow = [&](int i, int q) { return std::pow(static_cast<double>(i) / m_n, q); };
+    // V_q,i for every station, q and i < length.
+    std::vector<Eigen::VectorXcd> v(static_cast<std::size_t>(ns * 4 * length));
+    auto v_at = [&](Eigen::Index s, int q, int i) -> Eigen::VectorXcd& {
+        return v[static_cast<std::size_t>((s * 4 + q) * length + i)];
+    };
+    for (Eigen::Index s = 0; s < ns; ++s) {
+        const auto su = static_cast<std::size_t>(s);
+        for (int q = 0; q < 4; ++q)
+            for (int i = 0; i < length; ++i)
+                v_at(s, q, i) = std::polar(1.0, static_cast<double>(i) * m_wh[su]) *
+                                (sigma_pow(i, q) * m_w0[su] + ((sigma_pow(i + 1, q) - sigma_pow(i, q)) / m_h) * m_w1[su]);
+    }
+    const int first = last_only ? length : 1;
+    for (int k = first; k <= length; ++k) {
+        const auto kk = static_cast<std::size_t>(k);
+        for (Eigen::Index r = 0; r < rows; ++r) {
+            const Eigen::Index at = last_only ? r : k - 1;
+            t.m.row(at).head(n) = cp[kk].row(r);
+            for (int i = 0; i <= k; ++i) {
+                double g = 0.0;
+                if (i < k) g += cp[kk - 1 - static_cast<std::size_t>(i)].row(r).dot(m_g0);
+                if (i >= 1) g += cp[kk - static_cast<std::size_t>(i)].row(r).dot(m_g1);
+                if (i == k) g += d_j[r];
+                t.j(at, i) = g;
+            }
+            for (Eigen::Index s = 0; s < ns; ++s) {
+                const auto su = static_cast<std::size_t>(s);
+                for (int q = 0; q < 4; ++q) {
+                    std::complex<double> acc = d_u[r] * std::polar(1.0, static_cast<double>(k) * m_wh[su]) * sigma_pow(k, q);
+                    for (int i = 0; i < k; ++i)
+                        acc += cp[kk - 1 - static_cast<std::size_t>(i)].row(r).cast<std::complex<double>>().transpose().cwiseProduct(v_at(s, q, i)).sum();
+                    t.m(at, n + 4 * s + q) = acc.real();
+                    t.m(at, n + 4 * ns + 4 * s + q) = -acc.imag();
+                }
+            }
+        }
+    }
+    return t;
 }
 
 int rf_integrator::add_output(const Eigen::RowVectorXd& c, double d_u, double d_j)
 {
-    m_out_c.push_back(c);
-    m_out_du.push_back(d_u);
-    m_out_dj.push_back(d_j);
+    if (c.size() != m_x.size())
+        throw config_error(fmt::format("rf_integrator: an output row has {} entries for {} states", c.size(), m_x.size()));
+    m_outs.push_back(tabulate(c, Eigen::VectorXd::Constant(1, d_u), Eigen::VectorXd::Constant(1, d_j), m_block, false));
     m_out_mean.push_back(0.0);
     m_out_peak.push_back(0.0);
     m_out_last.push_back(0.0);
-    return static_cast<int>(m_out_c.size()) - 1;
+    return static_cast<int>(m_outs.size()) - 1;
 }
 
 void rf_integrator::reset_peaks() { std::fill(m_out_peak.begin(), m_out_peak.end(), 0.0); }
@@ -100,8 +168,13 @@ void rf_integrator::initialize()
     m_j = 0.0;
     const junction_values jv = m_law.evaluate(0.0);
     m_i0 = jv.current_a;
-    m_qr0 = jv.charge_c;
-    std::fill(m_v_prev.begin(), m_v_prev.end(), 0.0);
+    m_qr0 = m_charge ? jv.charge_c : 0.0;
+    m_g0_s = jv.conductance_s;
+    m_cr0_f = m_charge ? jv.capacitance_f - m_c_lin : 0.0;
+    // The predictor's first cycle linearises the law at v = 0 (beta as in run_cycle).
+    const double beta = m_port.j(0, 1);
+    const double g = m_g0_s + m_cr0_f / m_h;
+    std::fill(m_prev.begin(), m_prev.end(), phase_point{0.0, m_i0 + m_qr0 / m_h, 1.0 / (1.0 - beta * g)});
     std::fill(m_out_last.begin(), m_out_last.end(), 0.0);
     m_stats = {};
 }
@@ -112,13 +185,7 @@ double rf_integrator::envelope_at_cycle(std::size_t s, long long c) const noexce
     return m_src->station(s).envelope(c > 0 ? static_cast<double>(c) / m_fref : 0.0);
 }
 
-void rf_integrator::load_envelopes(std::size_t c)
-{
-    const auto cc = static_cast<long long>(c);
-    for (std::size_t s = 0; s < m_src->size(); ++s)
-        for (int i = 0; i < 4; ++i) m_env[4 * s + static_cast<std::size_t>(i)] = envelope_at_cycle(s, cc - 1 + i);
-}
-
+template <bool Breakdown, bool Charge, bool SquareRoot>
 double rf_integrator::solve_junction(double alpha, double beta, double v, double& j1)
 {
     // F(v) = v - alpha - beta J(v), J the step's junction current as a function of its end voltage;
@@ -128,11 +195,11 @@ double rf_integrator::solve_junction(double alpha, double beta, double v, double
     double hi = std::numeric_limits<double>::infinity();
     for (int it = 0; it < 200; ++it) {
         ++m_stats.newton_iterations;
-        const junction_values jv = m_law.evaluate(v);
+        const junction_values jv = m_law.evaluate_as<Breakdown, Charge, SquareRoot>(v);
         double jj = jv.current_a;
         double dj = jv.conductance_s;
         double qr = 0.0, cr = 0.0;
-        if (m_charge) {
+        if constexpr (Charge) {
             // Backward Euler on the residual charge (see the header): no step-to-step recursion to ring.
             qr = jv.charge_c - m_c_lin * v;
             cr = jv.capacitance_f - m_c_lin;
@@ -153,13 +220,16 @@ double rf_integrator::solve_junction(double alpha, double beta, double v, double
             }
         }
         const double dv = vn - v;
-        // Newton's remaining error after this update is about |F''| dv^2 / (2 F'), F'' = -beta dI'/dv (the
-        // charge's curvature is left out: it is bounded by the conductance's in forward conduction).
-        if (std::fabs(dv) <= m_tol || 0.5 * std::fabs(beta * jv.conductance_slope_s_per_v) * dv * dv <= m_tol * df) {
+        // Newton's remaining error after this update is about |F''| dv^2 / (2 F'), F'' = -beta (I'' + C_r' / h).
+        double curvature = jv.conductance_slope_s_per_v;
+        if constexpr (Charge) curvature += inv_h * jv.capacitance_slope_f_per_v;
+        if (std::fabs(dv) <= m_tol || 0.5 * std::fabs(beta * curvature) * dv * dv <= m_tol * df) {
             // Converged: the update is below the tolerance; carry the law to vn linearly.
             j1 = jj + dj * dv;
             m_i0 = jv.current_a + jv.conductance_s * dv;
             m_qr0 = qr + cr * dv;
+            m_g0_s = jv.conductance_s;
+            m_cr0_f = cr;
             return vn;
         }
         v = vn;
@@ -171,108 +241,110 @@ double rf_integrator::solve_junction(double alpha, double beta, double v, double
 
 void rf_integrator::advance_cycle(std::span<double> out)
 {
-    // Fixed-size kernels for the usual state counts (a whole receiver has 4 to 14 states).
-    switch (m_x.size()) {
-    case 2: run_cycle<2>(out); break;
-    case 3: run_cycle<3>(out); break;
-    case 4: run_cycle<4>(out); break;
-    case 5: run_cycle<5>(out); break;
-    case 6: run_cycle<6>(out); break;
-    case 7: run_cycle<7>(out); break;
-    case 8: run_cycle<8>(out); break;
-    case 9: run_cycle<9>(out); break;
-    case 10: run_cycle<10>(out); break;
-    case 11: run_cycle<11>(out); break;
-    case 12: run_cycle<12>(out); break;
-    case 13: run_cycle<13>(out); break;
-    case 14: run_cycle<14>(out); break;
-    default: run_cycle<Eigen::Dynamic>(out); break;
+    // The junction law's switches fixed at compile time, as junction_law::evaluate dispatches them.
+    if (m_law.cj0_f > 0.0) {
+        if (m_law.square_root_grading)
+            m_law.breakdown ? run_cycle<true, true, true>(out) : run_cycle<false, true, true>(out);
+        else
+            m_law.breakdown ? run_cycle<true, true, false>(out) : run_cycle<false, true, false>(out);
+    } else {
+        m_law.breakdown ? run_cycle<true, false, true>(out) : run_cycle<false, false, true>(out);
     }
 }
 
-template <int N>
+template <bool Breakdown, bool Charge, bool SquareRoot>
 void rf_integrator::run_cycle(std::span<double> out)
 {
-    using vec = Eigen::Matrix<double, N, 1>;
-    using row = Eigen::Matrix<double, 1, N>;
-    using mat = Eigen::Matrix<double, N, N>;
-    const auto n = m_x.size();
-    const Eigen::Map<const mat> phi(m_phi.data(), n, n);
-    const Eigen::Map<const vec> g0(m_g0.data(), n), g1(m_g1.data(), n);
-    const Eigen::Map<const row> pc(m_pc.data(), n);
-    vec x = Eigen::Map<const vec>(m_x.data(), n);
-    vec t(n);
-    const std::size_t c = m_cycle;
-    load_envelopes(c);
+    const Eigen::Index n = m_x.size();
     const std::size_t ns = m_src->size();
-    // Station phasors e^{j w t} at the cycle start, from the cycle count (never accumulated across cycles).
-    std::array<std::complex<double>, 16> p_small{};
-    std::vector<std::complex<double>> p_big;
-    std::complex<double>* p = p_small.data();
-    if (ns > p_small.size()) {
-        p_big.resize(ns);
-        p = p_big.data();
+    const auto ens = static_cast<Eigen::Index>(ns);
+    const std::size_t c = m_cycle;
+    // Envelope samples at cycles c-1 .. c+2 and the cubic through them in tau (cycles since c):
+    // e(tau) = a0 + a1 tau + a2 tau^2 + a3 tau^3 (4-point Lagrange on tau = -1, 0, 1, 2).
+    std::array<double, 64> cubic_small{};
+    std::vector<double> cubic_big;
+    double* cubic = cubic_small.data();
+    if (4 * ns > cubic_small.size()) {
+        cubic_big.resize(4 * ns);
+        cubic = cubic_big.data();
     }
-    std::array<double, 16> e_small{};
-    std::vector<double> e_big;
-    double* e_prev = e_small.data();
-    if (ns > e_small.size()) {
-        e_big.resize(ns);
-        e_prev = e_big.data();
-    }
+    const auto cc = static_cast<long long>(c);
     for (std::size_t s = 0; s < ns; ++s) {
-        const double cyc = static_cast<double>(c) * m_ratio[s];
-        p[s] = std::polar(1.0, two_pi * (cyc - std::floor(cyc)));
-        e_prev[s] = m_env[4 * s + 1];
+        const double e0 = envelope_at_cycle(s, cc - 1), e1 = envelope_at_cycle(s, cc), e2 = envelope_at_cycle(s, cc + 1),
+                     e3 = envelope_at_cycle(s, cc + 2);
+        cubic[4 * s] = e1;
+        cubic[4 * s + 1] = -e0 / 3.0 - 0.5 * e1 + e2 - e3 / 6.0;
+        cubic[4 * s + 2] = 0.5 * e0 - e1 + 0.5 * e2;
+        cubic[4 * s + 3] = (e3 - e0) / 6.0 + 0.5 * (e1 - e2);
     }
-    const double beta = pc.dot(g1) + m_pdj;
-    const std::size_t no = m_out_c.size();
+    const std::size_t no = m_outs.size();
     for (std::size_t o = 0; o < no; ++o) m_out_mean[o] = 0.5 * m_out_last[o];
-    double v_before = m_v_prev[static_cast<std::size_t>(m_n - 1)];
-    for (int k = 0; k < m_n; ++k) {
-        t.noalias() = phi * x;
-        t += g0 * m_j;
-        double u1 = 0.0;
-        const auto& w = m_lag[static_cast<std::size_t>(k + 1)];
+    const double inv_h = 1.0 / m_h;
+    for (int k0 = 0; k0 < m_n; k0 += m_block) {
+        const int len = std::min(m_block, m_n - k0);
+        const double tau0 = static_cast<double>(k0) / m_n;
+        // Block input: the start state, then per station the envelope's Taylor coefficients at tau0 times the
+        // carrier phasor there (phase from the cycle count, never accumulated across cycles).
+        m_z.head(n) = m_x;
         for (std::size_t s = 0; s < ns; ++s) {
-            const double* e = &m_env[4 * s];
-            const double e0 = e_prev[s];
-            const double e1 = w[0] * e[0] + w[1] * e[1] + w[2] * e[2] + w[3] * e[3];
-            const double de = (e1 - e0) / m_h;
-            const double pr = p[s].real(), pi_ = p[s].imag();
-            t += (e0 * pr) * Eigen::Map<const vec>(m_w0r[s].data(), n) - (e0 * pi_) * Eigen::Map<const vec>(m_w0i[s].data(), n) +
-                 (de * pr) * Eigen::Map<const vec>(m_w1r[s].data(), n) - (de * pi_) * Eigen::Map<const vec>(m_w1i[s].data(), n);
-            p[s] *= m_rot[s];
-            u1 += e1 * p[s].real();
-            e_prev[s] = e1;
+            const double* a = &cubic[4 * s];
+            const double p[4] = {a[0] + tau0 * (a[1] + tau0 * (a[2] + tau0 * a[3])), a[1] + tau0 * (2.0 * a[2] + 3.0 * tau0 * a[3]),
+                                 a[2] + 3.0 * tau0 * a[3], a[3]};
+            const double cyc = static_cast<double>(c) * m_ratio[s];
+            double ph = cyc - std::floor(cyc) + m_ratio[s] * tau0;
+            ph -= std::floor(ph);
+            const std::complex<double> rot = std::polar(1.0, two_pi * ph);
+            const auto es = static_cast<Eigen::Index>(s);
+            for (int q = 0; q < 4; ++q) {
+                m_z[n + 4 * es + q] = rot.real() * p[q];
+                m_z[n + 4 * ens + 4 * es + q] = rot.imag() * p[q];
+            }
         }
-        const double alpha = pc.dot(t) + m_pd * u1;
-        const auto kk = static_cast<std::size_t>(k);
-        const double old = m_v_prev[kk];
-        const double guess = old + (m_v - v_before);
-        v_before = old;
-        double j1 = 0.0;
-        const double v1 = solve_junction(alpha, beta, guess, j1);
-        x = t + g1 * j1;
-        m_v = v1;
-        m_j = j1;
-        m_v_prev[kk] = v1;
+        m_free.head(len).noalias() = m_port.m.topRows(len) * m_z;
+        m_jb[0] = m_j;
+        for (int k = 1; k <= len; ++k) {
+            const auto kk = static_cast<std::size_t>(k0 + k - 1);
+            const double alpha = m_free[k - 1] + m_port.j.row(k - 1).head(k).dot(m_jb.head(k));
+            const double beta = m_port.j(k - 1, k);
+            // Predictor: the junction law linearised at this phase's solution one cycle earlier, solved with
+            // this step's v = alpha + beta J(v) (a Newton step from there that costs no law evaluation).
+            // (The division is made when the point is stored, off this step's chain of dependent operations.)
+            phase_point& pp = m_prev[kk];
+            double guess = (alpha + beta * (pp.offset_a - m_qr0 * inv_h)) * pp.inv_den;
+            if (!std::isfinite(guess)) guess = pp.v;
+            double j1 = 0.0;
+            const double v1 = solve_junction<Breakdown, Charge, SquareRoot>(alpha, beta, guess, j1);
+            const double g = m_g0_s + m_cr0_f * inv_h;
+            pp = {v1, m_i0 + m_qr0 * inv_h - g * v1, 1.0 / (1.0 - beta * g)};
+            m_jb[k] = j1;
+            m_v = v1;
+            m_j = j1;
+            if (m_phasors) {
+                m_v_phasor += v1 * m_ref_phasor[kk];
+                m_j_phasor += j1 * m_ref_phasor[kk];
+            }
+        }
+        const auto jb = m_jb.head(len + 1);
         for (std::size_t o = 0; o < no; ++o) {
-            const double y = Eigen::Map<const row>(m_out_c[o].data(), n).dot(x) + m_out_du[o] * u1 + m_out_dj[o] * j1;
-            m_out_mean[o] += k + 1 == m_n ? 0.5 * y : y;
-            m_out_peak[o] = std::max(m_out_peak[o], std::fabs(y));
-            if (!out.empty()) out[o * static_cast<std::size_t>(m_n) + kk] = y;
-            if (k + 1 == m_n) m_out_last[o] = y;
+            const row_tables& t = m_outs[o];
+            m_y.head(len).noalias() = t.m.topRows(len) * m_z;
+            m_y.head(len).noalias() += t.j.topLeftCorner(len, len + 1) * jb;
+            for (int k = 1; k <= len; ++k) {
+                const double y = m_y[k - 1];
+                const bool cycle_end = k0 + k == m_n;
+                m_out_mean[o] += cycle_end ? 0.5 * y : y;
+                m_out_peak[o] = std::max(m_out_peak[o], std::fabs(y));
+                if (!out.empty()) out[o * static_cast<std::size_t>(m_n) + static_cast<std::size_t>(k0 + k - 1)] = y;
+                if (cycle_end) m_out_last[o] = y;
+            }
         }
-        if (m_phasors) {
-            m_v_phasor += v1 * m_ref_phasor[kk];
-            m_j_phasor += j1 * m_ref_phasor[kk];
-        }
+        const row_tables& e = len == m_block ? m_end : m_end_last;
+        m_x.noalias() = e.m * m_z;
+        m_x.noalias() += e.j * jb;
     }
     m_stats.steps += static_cast<std::size_t>(m_n);
-    Eigen::Map<vec>(m_x.data(), n) = x;
     for (std::size_t o = 0; o < no; ++o) m_out_mean[o] /= m_n;
-    if (!std::isfinite(m_v) || !x.allFinite())
+    if (!std::isfinite(m_v) || !m_x.allFinite())
         throw integration_error(fmt::format("the receiver's state became non-finite near t = {:.9g} s", time_s()), time_s());
     ++m_cycle;
 }

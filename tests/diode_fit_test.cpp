@@ -119,15 +119,15 @@ TEST_CASE("Lambert-W diode current: published check values, Boost.Math's lambert
     m.emission_coefficient = 1.5;
     m.series_resistance_ohm = 20.0;
     m.thermal_voltage_v = vt_300k;
-    CHECK(m.current_a(0.3) == doctest::Approx(1.219773140e-3).epsilon(1e-9));
+    CHECK(m.current_a(0.3) == doctest::Approx(1.219773140e-3).epsilon(1e-9).scale(0));
     const double a = 1.5 * vt_300k;
     const double published = a / 20.0 * boost::math::lambert_w0(1e-6 * 20.0 / a * std::exp((0.3 + 1e-6 * 20.0) / a)) - 1e-6;
     CHECK(m.current_a(0.3) == doctest::Approx(published).epsilon(1e-13));
 
     diode_dc_model ms = m;
     ms.leakage_resistance_ohm = 100e3;
-    CHECK(ms.current_a(0.3) == doctest::Approx(1.221464436e-3).epsilon(1e-8));
-    CHECK(ms.current_a(-1.0) == doctest::Approx(-10.99780e-6).epsilon(1e-6));
+    CHECK(ms.current_a(0.3) == doctest::Approx(1.221464436e-3).epsilon(1e-8).scale(0));
+    CHECK(ms.current_a(-1.0) == doctest::Approx(-10.99780e-6).epsilon(1e-6).scale(0));
     auto shunt_form = [&](double v) {
         const double rs = 20.0, rsh = 100e3, is = 1e-6;
         return (v - rsh * is) / (rs + rsh) +
@@ -204,8 +204,8 @@ TEST_CASE("noiseless synthetic points: all four parameters recovered")
     // Derived figures from their definitions: slope = n Vt ln 10; R0 = n Vt / Is; I(V at 100 uA) = 100 uA.
     const double vt = thermal_voltage_v(kelvin_from_celsius(25.0));
     CHECK(r.slope_mv_per_decade.value == doctest::Approx(1.3 * vt * std::log(10.0) * 1e3).epsilon(1e-6));
-    CHECK(r.zero_bias_resistance_ohm.value == doctest::Approx(1.3 * vt / 2e-7).epsilon(1e-6));
-    CHECK(implicit_current(s.truth, r.voltage_at_100ua_v.value) == doctest::Approx(100e-6).epsilon(1e-6));
+    CHECK(r.zero_bias_resistance_ohm.value == doctest::Approx(1.3 * vt / 2e-7).epsilon(1e-6).scale(0));
+    CHECK(implicit_current(s.truth, r.voltage_at_100ua_v.value) == doctest::Approx(100e-6).epsilon(1e-6).scale(0));
 }
 
 TEST_CASE("noisy synthetic points: the reported 95 % intervals cover the truth in 90-99 % of trials")

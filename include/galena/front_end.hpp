@@ -56,7 +56,15 @@ struct tuner_params {
     tuner_layout layout = tuner_layout::bench;
     double coil_h = 240e-6;          ///< tuning coil, H; (0, 1e-1]
     double coil_q = 200.0;           ///< unloaded Q at the tuned frequency (series loss w0 L / Q); [1, 1e5]
-    double tuned_hz = 1.0e6;         ///< resonance of coil_h with the tuning capacitor, Hz, used when capacitance_f is 0
+    /// Hz, used when capacitance_f is 0: the frequency the loaded set is tuned to. The tuning capacitor is
+    /// solved with the antenna (or antenna coil), the tap strays, the diode's series resistance and linear
+    /// junction capacitance, the load and the earpiece all connected (the junction's nonlinear part left out):
+    /// first so that the tank is in parallel resonance at tuned_hz (the admittance at the top of the tuning
+    /// coil is real there), then so that the response peak at the detector lies on tuned_hz (within 1e-8;
+    /// the coil's loss had put it about f/(2 Q^2) above). Where that peak is more than 1e-3 away (the two
+    /// humps of an over-coupled pair) the parallel resonance stays at tuned_hz. The junction's nonlinear
+    /// loading, measured by a render (receiver_figures::tuned_hz), moves the peak a little further. [1e4, 1e8]
+    double tuned_hz = 1.0e6;
     double capacitance_f = 0.0;      ///< tuning capacitor, F; 0 = solved from tuned_hz
     double detector_tap = 1.0;       ///< turns fraction of the tuning coil at the detector; (0, 1]
     double antenna_tap = 0.2;        ///< single-coil: turns fraction at the antenna; (0, 1]
@@ -66,9 +74,11 @@ struct tuner_params {
     double dc_return_ohm = 47e3;     ///< untuned: resistance from the antenna terminal to ground, ohm; (0, inf)
 
     const tuner_params& validate() const;
-    /// The tuning capacitance, F: capacitance_f, or 1 / ((2 pi tuned_hz)^2 coil_h).
+    /// capacitance_f, or the bare-coil value 1 / ((2 pi tuned_hz)^2 coil_h), F: the start of the loaded solve
+    /// in build_receiver_network (whose receiver_network::tuning_capacitance_f is the capacitor used).
     [[nodiscard]] double tuning_capacitance_f() const noexcept;
-    /// The frequency at which coil losses are set (w0 L / Q): 1 / (2 pi sqrt(coil_h C)), Hz.
+    /// The frequency at which coil losses are set (w0 L / Q): tuned_hz, or 1 / (2 pi sqrt(coil_h capacitance_f))
+    /// when the capacitor is given, Hz.
     [[nodiscard]] double design_hz() const noexcept;
 };
 
@@ -88,14 +98,17 @@ struct receiver_network {
     node_id antenna_node = 0;     ///< the antenna terminal (bench: the generator's node)
     node_id detector_node = 0;    ///< the detector's input (the tap), before the diode's series resistance
     node_id output_node = 0;      ///< the earpiece node
-    double tuning_capacitance_f = 0.0; ///< F; 0 without a tuned circuit
+    node_id tank_node = 0;        ///< the top of the tuning coil (the tuning capacitor's node); 0 without a tuned circuit
+    double tuning_capacitance_f = 0.0; ///< the tuning capacitor, F (given, or solved from tuned_hz); 0 without a tuned circuit
     double design_hz = 0.0;       ///< frequency at which coil losses are set, Hz; 0 without a tuned circuit
 };
 
 /// Builds the network of a whole receiver. The diode's series resistance is a resistor, its depletion
 /// capacitance at junction_linear_reverse_v a linear capacitor across the port (the rest of its charge stays
 /// nonlinear).
-/// Throws config_error for invalid parts or a coupling the coil sections cannot hold (not positive definite).
+/// With tuner.capacitance_f = 0 the tuning capacitor is solved for the loaded tank (see tuner_params::tuned_hz).
+/// Throws config_error for invalid parts, a coupling the coil sections cannot hold (not positive definite), or
+/// a tuned_hz the loaded coil cannot reach with a positive capacitance.
 [[nodiscard]] receiver_network build_receiver_network(const circuit_params& circuit, const antenna_params& antenna,
                                                       const tuner_params& tuner);
 

@@ -10,7 +10,8 @@ namespace galena::vmath {
 /// e^x for x in [-708, 709], relative error <= 2.3e-16 (checked against libm in vector_math_test).
 /// Below -708 it returns e^-708 (about 3e-308), above 709 it is not defined (callers clamp first).
 /// Method: Cody-Waite reduction x = n ln2 + r with |r| <= ln2/2 (ln2 split in two parts), a degree-13
-/// Taylor polynomial for e^r (truncation error < 5e-18), and 2^n assembled in the exponent bits.
+/// Taylor polynomial for e^r (truncation error < 5e-18, evaluated in Estrin's form), and 2^n assembled in the
+/// exponent bits.
 [[nodiscard, gnu::always_inline]] inline double exp(double x) noexcept
 {
     constexpr double log2e = 1.4426950408889634074;
@@ -22,20 +23,15 @@ namespace galena::vmath {
     const double n = t - round_magic;
     const std::int64_t ni = std::bit_cast<std::int64_t>(t) - std::bit_cast<std::int64_t>(round_magic);
     const double r = (x - n * ln2_hi) - n * ln2_lo;
-    double p = 1.0 / 6227020800.0;
-    p = p * r + 1.0 / 479001600.0;
-    p = p * r + 1.0 / 39916800.0;
-    p = p * r + 1.0 / 3628800.0;
-    p = p * r + 1.0 / 362880.0;
-    p = p * r + 1.0 / 40320.0;
-    p = p * r + 1.0 / 5040.0;
-    p = p * r + 1.0 / 720.0;
-    p = p * r + 1.0 / 120.0;
-    p = p * r + 1.0 / 24.0;
-    p = p * r + 1.0 / 6.0;
-    p = p * r + 0.5;
-    p = p * r + 1.0;
-    p = p * r + 1.0;
+    // The terms from r^3 on in Estrin's form (pairs, then r^2, r^4, r^8), the first three in Horner's form
+    // (which keeps the rounding of the large terms as before): a dependency chain of about 6 multiply-adds
+    // instead of 14, which a scalar Newton iteration waits on.
+    const double r2 = r * r, r4 = r2 * r2, r8 = r4 * r4;
+    const double q01 = 1.0 / 6.0 + r * (1.0 / 24.0), q23 = 1.0 / 120.0 + r * (1.0 / 720.0);
+    const double q45 = 1.0 / 5040.0 + r * (1.0 / 40320.0), q67 = 1.0 / 362880.0 + r * (1.0 / 3628800.0);
+    const double q89 = 1.0 / 39916800.0 + r * (1.0 / 479001600.0);
+    const double q = (q01 + r2 * q23) + r4 * (q45 + r2 * q67) + r8 * (q89 + r2 * (1.0 / 6227020800.0));
+    const double p = 1.0 + r * (1.0 + r * (0.5 + r * q));
     return p * std::bit_cast<double>((ni + 1023) << 52);
 }
 
