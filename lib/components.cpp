@@ -15,20 +15,6 @@ junction_values junction_law::evaluate(double v_v) const noexcept
     return detail::evaluate_inline(*this, v_v);
 }
 
-template <bool Breakdown, bool Charge, bool SquareRoot>
-junction_values junction_law::evaluate_as(double v_v) const noexcept
-{
-    return detail::evaluate_law<Breakdown, Charge, SquareRoot>(*this, v_v);
-}
-template junction_values junction_law::evaluate_as<false, false, false>(double) const noexcept;
-template junction_values junction_law::evaluate_as<false, false, true>(double) const noexcept;
-template junction_values junction_law::evaluate_as<false, true, false>(double) const noexcept;
-template junction_values junction_law::evaluate_as<false, true, true>(double) const noexcept;
-template junction_values junction_law::evaluate_as<true, false, false>(double) const noexcept;
-template junction_values junction_law::evaluate_as<true, false, true>(double) const noexcept;
-template junction_values junction_law::evaluate_as<true, true, false>(double) const noexcept;
-template junction_values junction_law::evaluate_as<true, true, true>(double) const noexcept;
-
 using detail::require_above;
 using detail::require_range;
 

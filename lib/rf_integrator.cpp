@@ -2,6 +2,7 @@
 
 #include "galena/constants.hpp"
 #include "galena/error.hpp"
+#include "galena/junction_law_eval.hpp"
 #include "galena/validate.hpp"
 
 #include <algorithm>
@@ -195,7 +196,7 @@ double rf_integrator::solve_junction(double alpha, double beta, double v, double
     double hi = std::numeric_limits<double>::infinity();
     for (int it = 0; it < 200; ++it) {
         ++m_stats.newton_iterations;
-        const junction_values jv = m_law.evaluate_as<Breakdown, Charge, SquareRoot>(v);
+        const junction_values jv = detail::evaluate_law<Breakdown, Charge, SquareRoot>(m_law, v);
         double jj = jv.current_a;
         double dj = jv.conductance_s;
         double qr = 0.0, cr = 0.0;

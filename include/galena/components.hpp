@@ -112,12 +112,6 @@ struct junction_law {
     /// Current, charge, capacitance and slopes at junction voltage v_v, V. (The library's batch loops use
     /// the same law inlined with its switches fixed at compile time; that form is internal.)
     [[nodiscard]] junction_values evaluate(double v_v) const noexcept;
-    /// evaluate() with the law's switches fixed at compile time (Breakdown == breakdown, Charge ==
-    /// (cj0_f > 0), SquareRoot == square_root_grading). Out of line (all eight combinations are instantiated
-    /// in components.cpp); a loop that needs it inlined includes lib/private/galena/junction_law_eval.hpp and
-    /// calls detail::evaluate_law, as the phase-locked batch kernel does.
-    template <bool Breakdown, bool Charge, bool SquareRoot>
-    [[nodiscard]] junction_values evaluate_as(double v_v) const noexcept;
 };
 
 /// A diode ready for evaluation: derived constants precomputed from validated diode_params.
