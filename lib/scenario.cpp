@@ -26,8 +26,6 @@ namespace fs = std::filesystem;
 
 namespace {
 
-constexpr double inf = std::numeric_limits<double>::infinity();
-
 /// Where a key came from, for messages.
 struct key_origin {
     std::string where; // "file:line" or "--set"
