@@ -5,6 +5,7 @@
 #include "galena/error.hpp"
 #include "galena/integrator.hpp"
 #include "galena/signal.hpp"
+#include "galena/transducer.hpp"
 
 #include <algorithm>
 #include <cmath>
@@ -319,6 +320,20 @@ render_metrics measure_render(std::span<const double> ev, double fs, const circu
         for (auto& w : clipping_warnings(rm.clipping)) rm.warnings.push_back(std::move(w));
     }
     nlohmann::json extra;
+    // The diaphragm drive (transducer.hpp): what the ear follows, comparable across earpiece kinds.
+    if (has_diaphragm_drive(circuit.earpiece)) {
+        const std::vector<double> drive = diaphragm_drive_n(circuit.earpiece, ev, fs);
+        const level_metrics dl = measure_levels(std::span<const double>(drive).subspan(skip), fs, lo, hi);
+        rm.diaphragm_drive_rms_n = dl.audio_rms_v;
+        extra["diaphragm_drive_rms_n"] = num(dl.audio_rms_v);
+        extra["diaphragm_drive_db_re_1mn"] = dl.audio_rms_v > 0.0 ? num(20.0 * std::log10(dl.audio_rms_v / 1e-3)) : nlohmann::json(nullptr);
+        extra["diaphragm_drive_quantity"] = std::string(diaphragm_drive_quantity(circuit.earpiece));
+    } else {
+        rm.diaphragm_drive_rms_n = nan_v;
+        extra["diaphragm_drive_rms_n"] = nullptr;
+        extra["diaphragm_drive_db_re_1mn"] = nullptr;
+        extra["diaphragm_drive_quantity"] = nullptr;
+    }
     extra["carrier_hz"] = num(am.carrier_hz);
     extra["carrier_peak_v"] = num(am.carrier_peak_v);
     extra["modulation_index"] = num(am.modulation_index);

@@ -133,9 +133,13 @@ struct render_metrics {
     fidelity_metrics fidelity;
     bool has_clipping = false;
     clipping_diagnosis clipping;
+    /// RMS in the audio band of the earpiece's diaphragm drive force (transducer.hpp), N; NaN for the
+    /// resistor load. The quantity each earpiece kind's drive is computed from: diaphragm_drive_quantity().
+    double diaphragm_drive_rms_n = 0.0;
     std::vector<warning> warnings;
     /// Flat keys: every key of the metrics to_json() helpers present above, plus carrier_hz, carrier_peak_v,
-    /// modulation_index, detection_efficiency, analysed_s, warnings and warning_codes.
+    /// modulation_index, detection_efficiency, analysed_s, diaphragm_drive_rms_n, diaphragm_drive_db_re_1mn,
+    /// diaphragm_drive_quantity (null for the resistor load), warnings and warning_codes.
     nlohmann::json json;
 };
 
