@@ -6,6 +6,7 @@
 #include "galena/constants.hpp"
 #include "galena/error.hpp"
 #include "galena/metrics.hpp"
+#include "galena/plot_choices.hpp"
 #include "galena/report_detail.hpp"
 #include "galena/text_table.hpp"
 #include "galena/units.hpp"
@@ -83,18 +84,10 @@ std::string terminal_pair_script(const std::string& stem, const std::string& bod
 /// The legend: outside on the right, readable on a projector (no smaller than the tick labels).
 constexpr const char* key_setting = "set key outside right top font ',14' spacing 1.15 samplen 3\n";
 
-/// A colour-blind-safe palette: the eight colours of Okabe & Ito, "Color Universal Design" (2008), told
-/// apart under the common colour-vision deficiencies; ordered so that neighbours contrast and the pale
-/// yellow comes last.
-constexpr std::array<const char*, 8> palette = {"0072B2", "D55E00", "009E73", "CC79A7", "E69F00", "56B4E9", "000000", "F0E442"};
+/// A colour-blind-safe palette (plot_choices.hpp): neighbours contrast, the pale yellow comes last.
+const auto& palette = detail::plot_palette;
 
-/// The line style of member `m` of group `g` (a circuit; its members differ only in signal level): the
-/// group's colour and a dash pattern as the second cue, so that groups 8 apart and members of one group
-/// still differ. gnuplot dash types 1-5 (solid, dashed, dotted, dash-dot, dash-dot-dot).
-std::string line_style(std::size_t g, std::size_t m, double width = 2.5)
-{
-    return fmt::format("lc rgb '#{}' dt {} lw {}", palette[g % palette.size()], 1 + (m + g / palette.size()) % 5, width);
-}
+std::string line_style(std::size_t g, std::size_t m, double width = 2.5) { return detail::plot_line_style(g, m, width); }
 
 int palette_rgb(std::size_t g) { return std::stoi(palette[g % palette.size()], nullptr, 16); }
 
@@ -257,97 +250,21 @@ programme_view programme_of(const scenario& sc)
     return p;
 }
 
-/// Residual RMS of y after the least-squares fit y ~ a + b x + c dx over one window (the earpiece following
-/// its envelope, with a small lag); what is left is what the detector failed to follow (diagonal clipping,
-/// negative-peak clipping) plus distortion.
-double follow_residual(const double* y, const double* x, const double* dx, std::size_t n)
-{
-    double m[3][4] = {};
-    for (std::size_t k = 0; k < n; ++k) {
-        const double b[3] = {1.0, x[k], dx[k]};
-        for (int i = 0; i < 3; ++i) {
-            for (int j = 0; j < 3; ++j) m[i][j] += b[i] * b[j];
-            m[i][3] += b[i] * y[k];
-        }
-    }
-    // Ridge of 1e-9 of the diagonal: a silent stretch (x constant) then fits the mean alone.
-    for (int i = 0; i < 3; ++i) m[i][i] += 1e-9 * (m[0][0] + m[1][1] + m[2][2]) + 1e-300;
-    for (int c = 0; c < 3; ++c) { // Gaussian elimination with partial pivoting
-        int p = c;
-        for (int r = c + 1; r < 3; ++r)
-            if (std::fabs(m[r][c]) > std::fabs(m[p][c])) p = r;
-        for (int j = 0; j < 4; ++j) std::swap(m[c][j], m[p][j]);
-        for (int r = c + 1; r < 3; ++r) {
-            const double f = m[r][c] / m[c][c];
-            for (int j = c; j < 4; ++j) m[r][j] -= f * m[c][j];
-        }
-    }
-    double coef[3];
-    for (int i = 2; i >= 0; --i) {
-        double v = m[i][3];
-        for (int j = i + 1; j < 3; ++j) v -= m[i][j] * coef[j];
-        coef[i] = v / m[i][i];
-    }
-    double ss = 0.0;
-    for (std::size_t k = 0; k < n; ++k) {
-        const double r = y[k] - coef[0] - coef[1] * x[k] - coef[2] * dx[k];
-        ss += r * r;
-    }
-    return std::sqrt(ss / static_cast<double>(n));
-}
-
-/// The zoom's start time, s: the window (of `span_s`, from t_min_s on) where the earpiece departs most from
-/// its programme's envelope, over all traces, each measured against its own RMS (so a quiet variant counts as
-/// much as a loud one, and near-silence, where nothing departs, is never chosen). The first window within 5 %
-/// of the largest departure wins, so a steady tone gives the earliest window after settling.
+/// The zoom's start, s (detail::choose_zoom_start over the traces and their programmes).
 double choose_zoom_start(const std::vector<trace>& traces, std::vector<programme_view>& pv, double fs, double t_min_s, double span_s)
 {
-    const auto k_min = static_cast<std::size_t>(std::ceil(t_min_s * fs));
-    const auto len = std::max<std::size_t>(8, static_cast<std::size_t>(span_s * fs));
-    const std::size_t hop = std::max<std::size_t>(1, len / 4);
-    std::vector<double> score;
+    std::vector<std::span<const double>> ys;
+    std::vector<std::vector<double>> xs;
     for (std::size_t i = 0; i < traces.size(); ++i) {
         const auto& v = traces[i].v;
-        if (v.size() < k_min + len + 2) continue;
-        const std::size_t n = v.size() - k_min;
-        std::vector<double> x(n), dx(n);
+        ys.emplace_back(v);
+        std::vector<double> x(v.size(), 0.0);
+        const auto k_min = std::min(v.size(), static_cast<std::size_t>(t_min_s * fs));
         pv[i].prog->prepare(static_cast<double>(k_min) / fs, static_cast<double>(v.size()) / fs);
-        for (std::size_t k = 0; k < n; ++k) x[k] = pv[i].prog->value(static_cast<double>(k_min + k) / fs);
-        for (std::size_t k = 0; k < n; ++k) dx[k] = (x[std::min(k + 1, n - 1)] - x[k > 0 ? k - 1 : 0]) * 0.5;
-        double mean = 0.0, ss = 0.0;
-        for (std::size_t k = 0; k < n; ++k) mean += v[k_min + k];
-        mean /= static_cast<double>(n);
-        for (std::size_t k = 0; k < n; ++k) ss += (v[k_min + k] - mean) * (v[k_min + k] - mean);
-        const double rms = std::sqrt(ss / static_cast<double>(n));
-        if (!(rms > 0.0)) continue;
-        const std::size_t windows = (n - len) / hop + 1;
-        score.resize(std::max(score.size(), windows), 0.0);
-        for (std::size_t w = 0; w < windows; ++w) {
-            const std::size_t a = w * hop;
-            score[w] = std::max(score[w], follow_residual(v.data() + k_min + a, x.data() + a, dx.data() + a, len) / rms);
-        }
+        for (std::size_t k = k_min; k < v.size(); ++k) x[k] = pv[i].prog->value(static_cast<double>(k) / fs);
+        xs.push_back(std::move(x));
     }
-    if (score.empty()) return t_min_s;
-    const double best = *std::max_element(score.begin(), score.end());
-    for (std::size_t w = 0; w < score.size(); ++w)
-        if (score[w] >= 0.95 * best) return static_cast<double>(k_min + w * hop) / fs;
-    return t_min_s;
-}
-
-/// Removes the least-squares line (the DC bias and the slow drift of its settling) from v.
-std::vector<double> detrended(std::span<const double> v)
-{
-    const double n = static_cast<double>(v.size());
-    double st = 0, sy = 0, stt = 0, sty = 0;
-    for (std::size_t k = 0; k < v.size(); ++k) {
-        const double t = static_cast<double>(k);
-        st += t, sy += v[k], stt += t * t, sty += t * v[k];
-    }
-    const double b = (n * sty - st * sy) / (n * stt - st * st);
-    const double a = (sy - b * st) / n;
-    std::vector<double> o(v.size());
-    for (std::size_t k = 0; k < v.size(); ++k) o[k] = v[k] - a - b * static_cast<double>(k);
-    return o;
+    return detail::choose_zoom_start(ys, xs, fs, t_min_s, span_s);
 }
 
 /// Zoom window and spectrum plots over a list of (name, trace), styled by circuit group.
@@ -423,16 +340,10 @@ void draw_traces(const std::vector<std::string>& names, const std::vector<trace>
             if (v.size() < 64) continue; // too short to analyse: no data block, so the next trace keeps its index
             // The DC bias and its slow settling drift are removed before the window: left in, the window's
             // side lobes carry them across the lowest bins.
-            const std::vector<double> ac = detrended(v);
-            const auto sp = compute_spectrum(ac, fs_hz, spectrum_window::blackman_harris4);
-            // Below 5 bins the 4-term Blackman-Harris window's main lobe (+-4 bins) still holds what was removed.
-            const double f_min = std::max(20.0, 5.0 * fs_hz / static_cast<double>(ac.size()));
-            f_lowest = std::max(f_lowest, f_min);
-            for (std::size_t k = 1; k < sp.frequency_hz.size(); ++k) {
-                if (sp.frequency_hz[k] > band_high) break;
-                if (sp.frequency_hz[k] < f_min) continue;
-                data += fmt::format("{:.6g} {:.6g}\n", sp.frequency_hz[k], 20.0 * std::log10(std::max(sp.amplitude_v[k], 1e-12)));
-            }
+            const detail::plotted_spectrum sp = detail::spectrum_for_plot(v, fs_hz, band_high);
+            f_lowest = std::max(f_lowest, sp.lowest_hz);
+            for (std::size_t k = 0; k < sp.frequency_hz.size(); ++k)
+                data += fmt::format("{:.6g} {:.6g}\n", sp.frequency_hz[k], sp.level_dbv[k]);
             data += "\n\n";
             plot += fmt::format("{}'spectrum.dat' index {} using 1:2 with lines {} title '{}'", plot.empty() ? "" : ", ", block,
                                 line_style(groups.group[i], groups.member[i], 1.8), gp_escape(names[i]));
@@ -615,21 +526,6 @@ characterize_settings curve_settings(const scenario& s)
     return cs;
 }
 
-/// The carrier levels of a transfer curve: 7 from 10 mV to 3 V, with the operating levels put in (a grid
-/// level within 15 % of an operating level gives way to it), ascending.
-std::vector<double> transfer_levels(const std::vector<double>& operating)
-{
-    std::vector<double> grid = log_spaced(0.01, 3.0, 7);
-    std::vector<double> out;
-    for (double g : grid)
-        if (std::none_of(operating.begin(), operating.end(), [&](double o) { return std::fabs(std::log(g / o)) < std::log(1.15); }))
-            out.push_back(g);
-    for (double o : operating)
-        if (std::none_of(out.begin(), out.end(), [&](double x) { return std::fabs(x / o - 1.0) < 1e-9; })) out.push_back(o);
-    std::sort(out.begin(), out.end());
-    return out;
-}
-
 std::string describe_curve_conditions(const characterize_settings& cs)
 {
     return fmt::format("{} carrier, m = {:.2g}, {:g} Hz tone", format_quantity(cs.carrier_hz, unit::hertz, 4, true), cs.modulation_index,
@@ -775,7 +671,7 @@ pack_plots draw_pack_plots(const sweep_result& sweep, const fs::path& dir, bool 
                 const scenario& s = curve_scene(i);
                 const characterize_settings cs = curve_settings(s);
                 if (job < ng) {
-                    tc[job] = measure_transfer_curve(s.circuit, transfer_levels(operating[job]), cs);
+                    tc[job] = measure_transfer_curve(s.circuit, detail::transfer_levels(operating[job]), cs);
                 } else {
                     std::vector<double> f = log_spaced(150.0, std::min(8000.0, 0.4 * s.render.audio_rate_hz), 7);
                     fr[i] = measure_frequency_response(s.circuit, s.am.carrier_peak_v, f, cs);
@@ -871,5 +767,141 @@ pack_plots draw_pack_plots(const sweep_result& sweep, const fs::path& dir, bool 
     draw_diode_levels(sweep, groups, tc, cond, names, dir, stems);
     return out;
 }
+
+namespace detail {
+
+const std::array<const char*, 8> plot_palette = {"0072B2", "D55E00", "009E73", "CC79A7", "E69F00", "56B4E9", "000000", "F0E442"};
+
+std::string plot_line_style(std::size_t g, std::size_t m, double width)
+{
+    return fmt::format("lc rgb '#{}' dt {} lw {}", plot_palette[g % plot_palette.size()], 1 + (m + g / plot_palette.size()) % 5, width);
+}
+
+namespace {
+/// Residual RMS of y after the least-squares fit y ~ a + b x + c dx over one window (the earpiece following
+/// its envelope, with a small lag); what is left is what the detector failed to follow (diagonal clipping,
+/// negative-peak clipping) plus distortion.
+double follow_residual(const double* y, const double* x, const double* dx, std::size_t n)
+{
+    double m[3][4] = {};
+    for (std::size_t k = 0; k < n; ++k) {
+        const double b[3] = {1.0, x[k], dx[k]};
+        for (int i = 0; i < 3; ++i) {
+            for (int j = 0; j < 3; ++j) m[i][j] += b[i] * b[j];
+            m[i][3] += b[i] * y[k];
+        }
+    }
+    // Ridge of 1e-9 of the diagonal: a silent stretch (x constant) then fits the mean alone.
+    for (int i = 0; i < 3; ++i) m[i][i] += 1e-9 * (m[0][0] + m[1][1] + m[2][2]) + 1e-300;
+    for (int c = 0; c < 3; ++c) { // Gaussian elimination with partial pivoting
+        int p = c;
+        for (int r = c + 1; r < 3; ++r)
+            if (std::fabs(m[r][c]) > std::fabs(m[p][c])) p = r;
+        for (int j = 0; j < 4; ++j) std::swap(m[c][j], m[p][j]);
+        for (int r = c + 1; r < 3; ++r) {
+            const double f = m[r][c] / m[c][c];
+            for (int j = c; j < 4; ++j) m[r][j] -= f * m[c][j];
+        }
+    }
+    double coef[3];
+    for (int i = 2; i >= 0; --i) {
+        double v = m[i][3];
+        for (int j = i + 1; j < 3; ++j) v -= m[i][j] * coef[j];
+        coef[i] = v / m[i][i];
+    }
+    double ss = 0.0;
+    for (std::size_t k = 0; k < n; ++k) {
+        const double r = y[k] - coef[0] - coef[1] * x[k] - coef[2] * dx[k];
+        ss += r * r;
+    }
+    return std::sqrt(ss / static_cast<double>(n));
+}
+
+/// Removes the least-squares line (the DC bias and the slow drift of its settling) from v.
+std::vector<double> detrended(std::span<const double> v)
+{
+    const double n = static_cast<double>(v.size());
+    double st = 0, sy = 0, stt = 0, sty = 0;
+    for (std::size_t k = 0; k < v.size(); ++k) {
+        const double t = static_cast<double>(k);
+        st += t, sy += v[k], stt += t * t, sty += t * v[k];
+    }
+    const double b = (n * sty - st * sy) / (n * stt - st * st);
+    const double a = (sy - b * st) / n;
+    std::vector<double> o(v.size());
+    for (std::size_t k = 0; k < v.size(); ++k) o[k] = v[k] - a - b * static_cast<double>(k);
+    return o;
+}
+
+} // namespace
+
+/// The zoom's start time, s: the window (of `span_s`, from t_min_s on) where the earpiece departs most from
+/// its programme's envelope, over all traces, each measured against its own RMS (so a quiet variant counts as
+/// much as a loud one, and near-silence, where nothing departs, is never chosen). The first window within 5 %
+/// of the largest departure wins, so a steady tone gives the earliest window after settling.
+double choose_zoom_start(const std::vector<std::span<const double>>& traces, const std::vector<std::vector<double>>& programme, double fs,
+                         double t_min_s, double span_s)
+{
+    const auto k_min = static_cast<std::size_t>(std::ceil(t_min_s * fs));
+    const auto len = std::max<std::size_t>(8, static_cast<std::size_t>(span_s * fs));
+    const std::size_t hop = std::max<std::size_t>(1, len / 4);
+    std::vector<double> score;
+    for (std::size_t i = 0; i < traces.size(); ++i) {
+        const auto& v = traces[i];
+        if (v.size() < k_min + len + 2) continue;
+        const std::size_t n = v.size() - k_min;
+        if (programme[i].size() < v.size()) continue;
+        std::vector<double> x(programme[i].begin() + static_cast<std::ptrdiff_t>(k_min), programme[i].begin() + static_cast<std::ptrdiff_t>(v.size())), dx(n);
+        for (std::size_t k = 0; k < n; ++k) dx[k] = (x[std::min(k + 1, n - 1)] - x[k > 0 ? k - 1 : 0]) * 0.5;
+        double mean = 0.0, ss = 0.0;
+        for (std::size_t k = 0; k < n; ++k) mean += v[k_min + k];
+        mean /= static_cast<double>(n);
+        for (std::size_t k = 0; k < n; ++k) ss += (v[k_min + k] - mean) * (v[k_min + k] - mean);
+        const double rms = std::sqrt(ss / static_cast<double>(n));
+        if (!(rms > 0.0)) continue;
+        const std::size_t windows = (n - len) / hop + 1;
+        score.resize(std::max(score.size(), windows), 0.0);
+        for (std::size_t w = 0; w < windows; ++w) {
+            const std::size_t a = w * hop;
+            score[w] = std::max(score[w], follow_residual(v.data() + k_min + a, x.data() + a, dx.data() + a, len) / rms);
+        }
+    }
+    if (score.empty()) return t_min_s;
+    const double best = *std::max_element(score.begin(), score.end());
+    for (std::size_t w = 0; w < score.size(); ++w)
+        if (score[w] >= 0.95 * best) return static_cast<double>(k_min + w * hop) / fs;
+    return t_min_s;
+}
+
+plotted_spectrum spectrum_for_plot(std::span<const double> v, double fs_hz, double band_high_hz)
+{
+    plotted_spectrum o;
+    const std::vector<double> ac = detrended(v);
+    const auto sp = compute_spectrum(ac, fs_hz, spectrum_window::blackman_harris4);
+    // Below 5 bins the 4-term Blackman-Harris window's main lobe (+-4 bins) still holds what was removed.
+    o.lowest_hz = std::max(20.0, 5.0 * fs_hz / static_cast<double>(ac.size()));
+    for (std::size_t k = 1; k < sp.frequency_hz.size(); ++k) {
+        if (sp.frequency_hz[k] > band_high_hz) break;
+        if (sp.frequency_hz[k] < o.lowest_hz) continue;
+        o.frequency_hz.push_back(sp.frequency_hz[k]);
+        o.level_dbv.push_back(20.0 * std::log10(std::max(sp.amplitude_v[k], 1e-12)));
+    }
+    return o;
+}
+
+std::vector<double> transfer_levels(const std::vector<double>& operating)
+{
+    std::vector<double> grid = log_spaced(0.01, 3.0, 7);
+    std::vector<double> out;
+    for (double g : grid)
+        if (std::none_of(operating.begin(), operating.end(), [&](double o) { return std::fabs(std::log(g / o)) < std::log(1.15); }))
+            out.push_back(g);
+    for (double o : operating)
+        if (std::none_of(out.begin(), out.end(), [&](double x) { return std::fabs(x / o - 1.0) < 1e-9; })) out.push_back(o);
+    std::sort(out.begin(), out.end());
+    return out;
+}
+
+} // namespace detail
 
 } // namespace galena

@@ -1,5 +1,4 @@
 // The earpiece as a transducer: the diaphragm drive of each earpiece model (issue 14).
-#include "galena/characterize.hpp"
 #include "galena/error.hpp"
 #include "galena/transducer.hpp"
 
@@ -38,16 +37,16 @@ double drive_per_volt_measured(const earpiece_params& e, double f)
     return amplitude(diaphragm_drive_n(e, v, fs), f);
 }
 
-/// A crystal earpiece with a Butterworth-Van Dyke branch resonating near 3 kHz (values of the order of a
-/// small piezo sounder's; illustrative, not a measured part): fr = 1 / (2 pi sqrt(Lm Cm)) = 3008 Hz, Q = 3.8.
+/// A crystal earpiece with a Butterworth-Van Dyke branch resonating near 3 kHz (illustrative values, not a
+/// measured part: Cm / (C0 + Cm) = 0.17, a moderate coupling): fr = 1 / (2 pi sqrt(Lm Cm)) = 3008 Hz, Q = 5.0.
 earpiece_params bvd_earpiece()
 {
     earpiece_params e;
     e.kind = earpiece_kind::piezo;
     e.capacitance_f = 10e-9;
-    e.motional_resistance_ohm = 500.0;
-    e.motional_inductance_h = 0.1;
-    e.motional_capacitance_f = 28e-9;
+    e.motional_resistance_ohm = 5300.0;
+    e.motional_inductance_h = 1.4;
+    e.motional_capacitance_f = 2e-9;
     e.piezo_force_factor_n_per_volt = 0.02;
     return e;
 }
