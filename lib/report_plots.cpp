@@ -21,6 +21,7 @@
 #include <fcntl.h>
 #include <fmt/format.h>
 #include <fstream>
+#include <functional>
 #include <map>
 #include <set>
 #include <mutex>
@@ -110,6 +111,20 @@ std::string circuit_key(const circuit_params& c, bool with_diode = true)
     return k;
 }
 
+/// circuit_key plus, for a whole receiver, its antenna and tuner: variants with one key differ only in signal.
+std::string scene_key(const scenario& sc, bool with_diode = true)
+{
+    std::string k = circuit_key(sc.circuit, with_diode);
+    if (sc.tuner.layout != tuner_layout::bench) {
+        const auto& a = sc.antenna;
+        const auto& t = sc.tuner;
+        k += fmt::format(" | antenna {} {} {} {} | tuner {} {} {} {} {} {} {} {} {} {} {}", a.effective_height_m, a.capacitance_f,
+                         a.inductance_h, a.resistance_ohm, to_string(t.layout), t.coil_h, t.coil_q, t.tuned_hz, t.capacitance_f,
+                         t.detector_tap, t.antenna_tap, t.antenna_coil_h, t.antenna_coil_q, t.coupling, t.dc_return_ohm);
+    }
+    return k;
+}
+
 /// Variants grouped by circuit, in order of first appearance: group[i] and member[i] of variant i.
 struct grouping {
     std::vector<std::size_t> group, member;
@@ -121,7 +136,7 @@ grouping group_by_circuit(const std::vector<const scenario*>& scenes)
     grouping g;
     std::map<std::string, std::size_t> index;
     for (std::size_t i = 0; i < scenes.size(); ++i) {
-        const auto [it, fresh] = index.emplace(circuit_key(scenes[i]->circuit), g.members.size());
+        const auto [it, fresh] = index.emplace(scene_key(*scenes[i]), g.members.size());
         if (fresh) g.members.emplace_back();
         g.group.push_back(it->second);
         g.member.push_back(g.members[it->second].size());
@@ -549,21 +564,27 @@ double tone_at(const transfer_curve& c, double v)
 /// diode's recovered tone level against the carrier level from weak to strong (the transfer curves already
 /// simulated at the scenario's own carrier), the variants' levels marked, and a panel with each diode's
 /// level re the first one's. Drawn only when some circuits differ in the diode alone.
-void draw_diode_levels(const sweep_result& sweep, const grouping& groups, const std::vector<transfer_curve>& tc, const std::string& cond,
-                       const std::vector<std::string>& names, const fs::path& dir, std::vector<std::string>& stems)
+/// The circuit groups that differ only in their diode (the largest such set, at least two), or none.
+std::vector<std::size_t> diode_comparison(const sweep_result& sweep, const grouping& groups)
 {
     std::map<std::string, std::vector<std::size_t>> buckets; // circuit less the diode -> groups
     std::vector<std::string> order;
     for (std::size_t g = 0; g < groups.members.size(); ++g) {
-        const std::string k = circuit_key(sweep.variants[groups.members[g].front()].scene.circuit, false);
+        const std::string k = scene_key(sweep.variants[groups.members[g].front()].scene, false);
         if (!buckets.count(k)) order.push_back(k);
         buckets[k].push_back(g);
     }
     const std::vector<std::size_t>* best = nullptr;
     for (const auto& k : order)
         if (buckets[k].size() >= 2 && (!best || buckets[k].size() > best->size())) best = &buckets[k];
-    if (!best) return;
-    const std::vector<std::size_t>& gs = *best;
+    return best ? *best : std::vector<std::size_t>{};
+}
+
+void draw_diode_levels(const sweep_result& sweep, const grouping& groups, const std::vector<std::size_t>& gs,
+                       const std::vector<transfer_curve>& tc, const std::function<double(std::size_t)>& operating_level,
+                       const std::string& cond, const std::vector<std::string>& names, const fs::path& dir, std::vector<std::string>& stems)
+{
+    if (gs.size() < 2) return;
     std::string data, top, diff, ops, diode_list;
     const transfer_curve& ref = tc[gs.front()];
     for (std::size_t j = 0; j < gs.size(); ++j) {
@@ -581,7 +602,8 @@ void draw_diode_levels(const sweep_result& sweep, const grouping& groups, const 
         diff += fmt::format("{}'diode_levels.dat' index {} using 1:3 with linespoints {} pt 7 ps 0.9 notitle", diff.empty() ? "" : ", ", j,
                             line_style(j, 0, 3.0));
         for (std::size_t i : groups.members[g]) {
-            const double v = (sweep.variants[i].measured_separately ? sweep.variants[i].measure_scene : sweep.variants[i].scene).am.carrier_peak_v;
+            const double v = operating_level(i);
+            if (!(v >= tc[g].points.front().carrier_peak_v && v <= tc[g].points.back().carrier_peak_v)) continue;
             ops += fmt::format("{:.6g} {:.6g} {} \"{}\"\n", v, 20.0 * std::log10(tone_at(tc[g], v)), palette_rgb(j), gp_escape(names[i]));
         }
     }
@@ -601,6 +623,67 @@ void draw_diode_levels(const sweep_result& sweep, const grouping& groups, const 
     run_gnuplot(terminal_pair_script("diode_levels", body, 1280, 800), dir, "diode_levels");
     stems.push_back("diode_levels");
 }
+/// Level against carrier for a whole-receiver pack's diode comparison: the detector alone (bench layout,
+/// behind the scenario's source.resistance_ohm, which the title states) at the wanted station's carrier,
+/// modulation and tone; each variant's operating level is its measured peak at the detector input over
+/// (1 + m). A failed simulation leaves the chart out with a warning.
+void draw_receiver_diode_levels(const sweep_result& sweep, const grouping& groups, const std::vector<std::string>& names,
+                                const fs::path& dir, pack_plots& out)
+{
+    const std::vector<std::size_t> gs = diode_comparison(sweep, groups);
+    if (gs.size() < 2) return;
+    // The bench scenario of a receiver variant: the wanted station's carrier, modulation and tone.
+    auto bench_of = [&](std::size_t i) {
+        scenario s = sweep.variants[i].scene;
+        const auto& st = s.stations.front();
+        s.am.carrier_hz = st.params.carrier_hz;
+        s.am.modulation_index = st.params.modulation_index;
+        s.programme.kind = st.kind;
+        s.programme.tone_hz = st.tone_hz;
+        return s;
+    };
+    auto operating = [&](std::size_t i) {
+        const auto& r = sweep.variants[i];
+        return r.job.receiver.detector_rf_peak_v / (1.0 + r.scene.stations.front().params.modulation_index);
+    };
+    std::vector<transfer_curve> tc(groups.members.size());
+    std::vector<std::size_t> jobs(gs.begin(), gs.end());
+    std::string failure;
+    std::mutex m;
+    std::atomic<std::size_t> next{0};
+    auto work = [&] {
+        for (std::size_t j; (j = next.fetch_add(1)) < jobs.size() && !cancel_requested();) {
+            const std::size_t g = jobs[j];
+            try {
+                const scenario s = bench_of(groups.members[g].front());
+                std::vector<double> ops;
+                for (std::size_t i : groups.members[g])
+                    if (operating(i) > 0.0 && std::isfinite(operating(i))) ops.push_back(operating(i));
+                tc[g] = measure_transfer_curve(s.circuit, detail::transfer_levels(ops), curve_settings(s));
+            } catch (const galena::error& e) {
+                std::lock_guard<std::mutex> lk(m);
+                if (failure.empty()) failure = e.what();
+            }
+        }
+    };
+    {
+        std::vector<std::thread> pool;
+        const unsigned threads = std::max(1u, std::min<unsigned>(std::thread::hardware_concurrency(), static_cast<unsigned>(jobs.size())));
+        for (unsigned t = 0; t < threads; ++t) pool.emplace_back(work);
+        for (auto& t : pool) t.join();
+    }
+    throw_if_cancelled();
+    if (!failure.empty()) {
+        out.warnings.push_back({warning_code::plots_left_out, fmt::format("level against carrier left out: {}", failure)});
+        return;
+    }
+    const scenario s0 = bench_of(groups.members[gs.front()].front());
+    const std::string cond = fmt::format("the detector alone behind source.resistance_ohm = {}, at the wanted station''s {}",
+                                         format_quantity(s0.circuit.source.resistance_ohm, unit::ohm, 3, true),
+                                         describe_curve_conditions(curve_settings(s0)));
+    draw_diode_levels(sweep, groups, gs, tc, operating, cond, names, dir, out.stems);
+}
+
 } // namespace
 
 pack_plots draw_pack_plots(const sweep_result& sweep, const fs::path& dir, bool curves)
@@ -645,6 +728,7 @@ pack_plots draw_pack_plots(const sweep_result& sweep, const fs::path& dir, bool 
     if (any_receiver) draw_receiver_plots(sweep, dir, stems);
     // The response and transfer curves simulate the bench detector (generator behind source.resistance_ohm);
     // a whole receiver's detector is fed by its tuned circuit, which the selectivity plot shows instead.
+    if (curves && any_receiver) draw_receiver_diode_levels(sweep, groups, names, dir, out);
     if (!curves || any_receiver) return out;
 
     // The scenario behind each variant's curves: the tone measurement's where there is one (its tone).
@@ -701,7 +785,7 @@ pack_plots draw_pack_plots(const sweep_result& sweep, const fs::path& dir, bool 
     // Conditions: each variant's own; the title states them, or says they differ.
     std::set<std::string> conditions;
     for (std::size_t i = 0; i < n; ++i) conditions.insert(describe_curve_conditions(curve_settings(curve_scene(i))));
-    const std::string cond = conditions.size() == 1 ? *conditions.begin() : std::string("each variant's own carrier and modulation");
+    const std::string cond = conditions.size() == 1 ? *conditions.begin() : std::string("each variant''s own carrier and modulation");
     // The circuit's name in legends: its variants' names less the words they do not share (e.g. "weak", "strong").
     auto group_name = [&](std::size_t g) {
         const auto& mem = groups.members[g];
@@ -764,7 +848,8 @@ pack_plots draw_pack_plots(const sweep_result& sweep, const fs::path& dir, bool 
                                                              cond, key_setting, rplot)),
                 dir, "response");
     stems.push_back("response");
-    draw_diode_levels(sweep, groups, tc, cond, names, dir, stems);
+    draw_diode_levels(sweep, groups, diode_comparison(sweep, groups), tc, [&](std::size_t i) { return curve_scene(i).am.carrier_peak_v; },
+                      cond, names, dir, stems);
     return out;
 }
 
