@@ -3,6 +3,7 @@
 
 #include "galena/constants.hpp"
 #include "galena/error.hpp"
+#include "galena/filter_by_response.hpp"
 #include "galena/integrator.hpp"
 #include "galena/signal.hpp"
 #include "galena/transducer.hpp"
@@ -268,6 +269,13 @@ carrier_ripple measure_carrier_ripple(const circuit_params& circuit, double fc, 
     const auto tm = analyze_tone(v, fs, fc, 0.5 * fc, 0.5 * fs);
     r.harmonic_rms_v = {tm.fundamental_v / std::sqrt(2.0), tm.harmonic_v[2] / std::sqrt(2.0), tm.harmonic_v[3] / std::sqrt(2.0)};
     return r;
+}
+
+std::vector<double> diaphragm_drive_n(const earpiece_params& e, std::span<const double> v, double fs)
+{
+    if (!(fs > 0.0) || !std::isfinite(fs)) throw config_error(fmt::format("diaphragm drive: fs = {} Hz: must be > 0", fs));
+    if (!has_diaphragm_drive(e)) return std::vector<double>(v.size(), 0.0);
+    return detail::filter_by_response(v, fs, [&](double f) { return diaphragm_drive_per_volt(e, f); });
 }
 
 render_metrics measure_render(std::span<const double> ev, double fs, const circuit_params& circuit, const am_params& am,

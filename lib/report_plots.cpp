@@ -859,7 +859,10 @@ const std::array<const char*, 8> plot_palette = {"0072B2", "D55E00", "009E73", "
 
 std::string plot_line_style(std::size_t g, std::size_t m, double width)
 {
-    return fmt::format("lc rgb '#{}' dt {} lw {}", plot_palette[g % plot_palette.size()], 1 + (m + g / plot_palette.size()) % 5, width);
+    // gnuplot's five dash types and three patterns of our own (dash, dot and gap lengths).
+    static constexpr std::array<const char*, 8> dashes = {"1", "2", "3", "4", "5", "(24,8,4,8)", "(4,6,4,6,16,6)", "(36,12)"};
+    return fmt::format("lc rgb '#{}' dt {} lw {}", plot_palette[g % plot_palette.size()], dashes[(3 * (g / plot_palette.size()) + m) % 8],
+                       width);
 }
 
 namespace {

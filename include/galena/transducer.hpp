@@ -10,15 +10,14 @@
 /// - magnetic phones (R in series with L || R_loss): F = Bl i_L, with i_L the current through the winding's
 ///   inductance (the flux-producing part; R_loss stands for the iron's eddy losses), Bl the force factor.
 /// The diaphragm's own area and stiffness are not modelled: equal drive force means equal loudness only for
-/// alike diaphragms. Not for the resistor load (no transducer).
+/// alike diaphragms. Not for the resistor load (no transducer). The waveform (diaphragm_drive_n) is in
+/// characterize.hpp: it filters through the FFT, which lives in the metrics layer.
 #pragma once
 
 #include "galena/components.hpp"
 
 #include <complex>
-#include <span>
 #include <string_view>
-#include <vector>
 
 namespace galena {
 
@@ -33,12 +32,5 @@ namespace galena {
 /// piezo N; BVD N / (1 - w^2 Lm Cm + j w Rm Cm); magnetic Bl R_loss / (R R_loss + j w L (R + R_loss)).
 /// 0 for the resistor. `e` must be valid.
 [[nodiscard]] std::complex<double> diaphragm_drive_per_volt(const earpiece_params& e, double frequency_hz);
-
-/// The drive force waveform, N, from the terminal voltage samples `terminal_v` (V, DC included, at
-/// `fs_hz` > 0, starting from rest as renders do). The branch's transfer is discretised by the bilinear
-/// transform, prewarped to the BVD resonance (or the magnetic corner) when it lies below 0.45 fs, so the
-/// response matches diaphragm_drive_per_volt at that frequency; below it the error is O((f / fs)^2).
-/// Returns all zeros for the resistor. Throws config_error for fs_hz <= 0.
-[[nodiscard]] std::vector<double> diaphragm_drive_n(const earpiece_params& e, std::span<const double> terminal_v, double fs_hz);
 
 } // namespace galena

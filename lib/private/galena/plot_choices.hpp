@@ -13,8 +13,8 @@ namespace galena::detail {
 /// The eight colours of Okabe & Ito, "Color Universal Design" (2008), as RRGGBB hex, in plot order.
 extern const std::array<const char*, 8> plot_palette;
 
-/// gnuplot line style of member `m` of group `g`: the group's colour (g mod 8) and dash type
-/// 1 + (m + g / 8) mod 5 as the second cue.
+/// gnuplot line style of member `m` of group `g`: the group's colour (g mod 8) and dash pattern
+/// (3 (g / 8) + m) mod 8 of eight as the second cue: distinct for up to 16 groups of 3 members (48 entries).
 [[nodiscard]] std::string plot_line_style(std::size_t g, std::size_t m, double width = 2.5);
 
 /// The zoom window's start, s: over windows of span_s from t_min_s on (hop span / 4), the largest departure
