@@ -76,9 +76,9 @@ trace plot_trace(const variant_result& r)
 std::string terminal_pair_script(const std::string& stem, const std::string& body, int w = 1280, int h = 720)
 {
     return fmt::format("set terminal svg size {0},{1} dynamic font 'sans,14' background rgb 'white'\n"
-                       "set output '{2}.svg'\n{3}\nunset output\n"
+                       "set output '{2}.svg'\nreset\n{3}\nunset output\n"
                        "set terminal pngcairo size {0},{1} font 'sans,16' background rgb 'white'\n"
-                       "set output '{2}.png'\n{3}\nunset output\n",
+                       "set output '{2}.png'\nreset\n{3}\nunset output\n",
                        w, h, stem, body);
 }
 
@@ -339,7 +339,8 @@ void draw_traces(const std::vector<std::string>& names, const std::vector<trace>
         const std::string body = fmt::format(
             "set multiplot layout 2,1 title 'Waveform zoom: {:.3g} ms from {:.4g} s, where the earpiece departs most from its envelope'\n"
             "{}set grid\n{}set ylabel '{}'\nset format x ''\nset xlabel ''\n"
-            "plot {}\nset format x '%g'\nset ylabel 'earpiece V (DC included)'\nset xlabel 'time in the window, ms'\nplot {}\nunset multiplot",
+            "plot {}\nset format x '%g'\nset ylabel 'earpiece V (DC included)'\nset xlabel 'time in the window, ms'\n"
+            "set key at screen 0.995, screen 0.52 right top font ',13' spacing 1.0\nplot {}\nunset multiplot",
             span * 1e3, t0, frame, key_setting, receiver ? "antenna EMF, V" : "source V", env_plot, ear_plot);
         run_gnuplot(terminal_pair_script("zoom", body, 1280, 800), dir, "zoom");
         stems.push_back("zoom");
@@ -369,8 +370,8 @@ void draw_traces(const std::vector<std::string>& names, const std::vector<trace>
             const std::string body =
                 fmt::format("set title 'Earpiece spectrum: DC and settling drift removed, 4-term Blackman-Harris window, from {:.0f} Hz'\n"
                             "set grid\n{}set logscale x\nset xlabel 'frequency, Hz'\nset ylabel 'amplitude, dBV'\nset yrange [-140:*]\n"
-                            "set lmargin at screen 0.09\nset rmargin at screen 0.68\nplot {}",
-                            f_lowest, key_setting, plot);
+                            "set xrange [{:.6g}:{:.6g}]\nset lmargin at screen 0.09\nset rmargin at screen 0.68\nplot {}",
+                            f_lowest, key_setting, f_lowest, band_high, plot);
             run_gnuplot(terminal_pair_script("spectrum", body), dir, "spectrum");
             stems.push_back("spectrum");
         }
@@ -379,9 +380,9 @@ void draw_traces(const std::vector<std::string>& names, const std::vector<trace>
 
 /// Upright bars rising from `floor` (stated in the title when it is not zero), the value printed on each
 /// bar, each bar in its circuit group's colour.
-void draw_bars(const std::string& stem, const std::string& title, const std::string& ylabel, const std::vector<std::string>& names,
-               const std::vector<double>& values, const std::vector<std::size_t>& group, bool from_zero, const fs::path& dir,
-               std::vector<std::string>& stems)
+void draw_bars(const std::string& stem, const std::string& title, const std::string& ylabel, const std::string& unit_text,
+               const std::vector<std::string>& names, const std::vector<double>& values, const std::vector<std::size_t>& group, bool from_zero,
+               const fs::path& dir, std::vector<std::string>& stems)
 {
     double lo = std::numeric_limits<double>::infinity(), hi = -lo;
     for (double v : values)
@@ -395,10 +396,10 @@ void draw_bars(const std::string& stem, const std::string& title, const std::str
         data += fmt::format("\"{}\" {} {}\n", gp_escape(names[i]), std::isfinite(values[i]) ? fmt::format("{:.6g}", values[i]) : "NaN",
                             palette_rgb(group[i]));
     write_text_atomic(dir / (stem + ".dat"), data);
-    const std::string full_title = from_zero ? title : fmt::format("{}\\nbars rise from a floor at {:g} (not a zero)", title, floor);
+    const std::string full_title = from_zero ? title : fmt::format("{}\\nbars rise from a floor at {:g} {}, not from zero", title, floor, unit_text);
     const std::string body = fmt::format(
-        "set title '{0}'\nset grid ytics\nset style fill solid 0.85 border rgb '#333333'\nset yrange [{1:.6g}:{2:.6g}]\n"
-        "set xrange [-0.6:{3}]\nset xtics rotate by -35 left font ',14'\nset ylabel '{4}'\nset bmargin 10\nunset key\n"
+        "set title \"{0}\"\nset grid ytics\nset style fill solid 0.85 border rgb '#333333'\nset yrange [{1:.6g}:{2:.6g}]\n"
+        "set xrange [-0.6:{3}]\nset xtics rotate by -35 left font ',14'\nset ylabel '{4}'\nset bmargin 8\nunset key\n"
         "plot '{5}.dat' using 0:2:($0-0.36):($0+0.36):({1:.6g}):2:3 with boxxyerror lc rgb variable, "
         "'' using 0:2:(sprintf('%.1f', $2)):xtic(1) with labels offset 0,0.9 font ',14'",
         full_title, floor, top, static_cast<double>(names.size()) - 0.4, ylabel, stem);
@@ -585,7 +586,8 @@ void draw_diode_levels(const sweep_result& sweep, const grouping& groups, const 
                        const std::string& cond, const std::vector<std::string>& names, const fs::path& dir, std::vector<std::string>& stems)
 {
     if (gs.size() < 2) return;
-    std::string data, top, diff, ops, diode_list;
+    std::string data, top, diff, diode_list;
+    std::vector<std::string> ops(gs.size());
     const transfer_curve& ref = tc[gs.front()];
     for (std::size_t j = 0; j < gs.size(); ++j) {
         const std::size_t g = gs[j];
@@ -604,22 +606,28 @@ void draw_diode_levels(const sweep_result& sweep, const grouping& groups, const 
         for (std::size_t i : groups.members[g]) {
             const double v = operating_level(i);
             if (!(v >= tc[g].points.front().carrier_peak_v && v <= tc[g].points.back().carrier_peak_v)) continue;
-            ops += fmt::format("{:.6g} {:.6g} {} \"{}\"\n", v, 20.0 * std::log10(tone_at(tc[g], v)), palette_rgb(j), gp_escape(names[i]));
+            ops[j] += fmt::format("{:.6g} {:.6g} {} \"{}\"\n", v, 20.0 * std::log10(tone_at(tc[g], v)), palette_rgb(j), gp_escape(names[i]));
         }
     }
-    data += ops;
+    // The variants' points, one block per diode, each diode's names on its own side of its curve.
+    std::string marks;
+    for (std::size_t j = 0; j < gs.size(); ++j) {
+        if (ops[j].empty()) continue;
+        data += ops[j] + "\n\n";
+        const std::size_t b = gs.size() + j;
+        marks += fmt::format(", 'diode_levels.dat' index {0} using 1:2:3 with points pt 6 ps 3 lw 3 lc rgb variable {1}, "
+                             "'' index {0} using 1:2:4 with labels left offset 1.8,{2} font ',13' notitle",
+                             b, j == 0 ? "title 'the variants'" : "notitle", j % 2 ? "-0.9" : "0.9");
+    }
     write_text_atomic(dir / "diode_levels.dat", data);
-    const std::size_t op_block = gs.size();
     const std::string body = fmt::format(
-        "set multiplot title 'Level against carrier: {0} from weak to strong\\n({1}; the rest of the circuit as in the pack)'\n"
+        "set multiplot title \"Level against carrier: {0}, weak to strong\\n({1})\"\n"
         "set lmargin at screen 0.09\nset rmargin at screen 0.68\nset logscale x\nset grid\n{2}"
         "set tmargin at screen 0.86\nset bmargin at screen 0.40\nset format x ''\nset ylabel 'recovered tone, dBV'\n"
-        "plot {3}, 'diode_levels.dat' index {4} using 1:2:3 with points pt 6 ps 3 lw 3 lc rgb variable title 'the variants', "
-        "'' index {4} using 1:2:4 with labels left offset 1.6,-0.2 font ',13' notitle\n"
+        "plot {3}{4}\n"
         "set tmargin at screen 0.36\nset bmargin at screen 0.10\nset format x '%g'\nset xlabel 'carrier peak at the detector input, V'\n"
-        "set ylabel 're {5}, dB'\nunset title\nplot {6}\nunset multiplot",
-        gp_escape(diode_list), cond, key_setting, top, op_block,
-        gp_escape(sweep.variants[groups.members[gs.front()].front()].scene.circuit.diode.name), diff);
+        "set ylabel 'dB re first diode'\nset ytics 5\nunset title\nplot {5}\nunset multiplot",
+        gp_escape(diode_list), cond, key_setting, top, marks, diff);
     run_gnuplot(terminal_pair_script("diode_levels", body, 1280, 800), dir, "diode_levels");
     stems.push_back("diode_levels");
 }
@@ -678,7 +686,7 @@ void draw_receiver_diode_levels(const sweep_result& sweep, const grouping& group
         return;
     }
     const scenario s0 = bench_of(groups.members[gs.front()].front());
-    const std::string cond = fmt::format("the detector alone behind source.resistance_ohm = {}, at the wanted station''s {}",
+    const std::string cond = fmt::format("the detector alone behind source.resistance_ohm = {}, at the wanted station's {}",
                                          format_quantity(s0.circuit.source.resistance_ohm, unit::ohm, 3, true),
                                          describe_curve_conditions(curve_settings(s0)));
     draw_diode_levels(sweep, groups, gs, tc, operating, cond, names, dir, out.stems);
@@ -710,18 +718,18 @@ pack_plots draw_pack_plots(const sweep_result& sweep, const fs::path& dir, bool 
         level.push_back(rms > 0.0 ? 20.0 * std::log10(rms) : std::numeric_limits<double>::quiet_NaN());
         drive.push_back(detail::number_or_nan(r.metrics, "diaphragm_drive_db_re_1mn"));
     }
-    draw_bars("thd", "THD (fundamental reference, harmonics 2-9) of the tone", "THD, %", names, thd, groups.group, true, dir, stems);
+    draw_bars("thd", "THD (fundamental reference, harmonics 2-9) of the tone", "THD, %", "%", names, thd, groups.group, true, dir, stems);
     // Earpieces of different kinds are compared on what moves the diaphragm (transducer.hpp), not on volts.
     std::set<earpiece_kind> kinds;
     for (const auto& r : sweep.variants) kinds.insert(r.scene.circuit.earpiece.kind);
     if (kinds.size() > 1 && std::any_of(drive.begin(), drive.end(), [](double d) { return std::isfinite(d); })) {
-        draw_bars("level", "Diaphragm drive force (RMS, audio band): the earpieces differ in kind, so they are compared on drive, "
-                           "not volts\\npiezo: N q_m / C_m (or N v); magnetic: Bl i_L; sensitivities from each scenario's earpiece keys",
-                  "drive force, dB re 1 mN", names, drive, groups.group, false, dir, stems);
-        draw_bars("level_volts", "Earpiece voltage (RMS, 20 Hz - 10 kHz): volts are not loudness across earpiece kinds", "level, dBV", names,
+        draw_bars("level", "Diaphragm drive force (RMS, audio band): earpieces of different kinds compared on drive, not volts\\n"
+                           "piezo N v or N q_m / C_m (BVD), magnetic Bl i_L; sensitivities: the earpiece keys (defaults are orders from memory)",
+                  "drive force, dB re 1 mN", "dB re 1 mN", names, drive, groups.group, false, dir, stems);
+        draw_bars("level_volts", "Earpiece voltage (RMS, 20 Hz - 10 kHz): volts are not loudness across earpiece kinds", "level, dBV", "dBV", names,
                   level, groups.group, false, dir, stems);
     } else {
-        draw_bars("level", "Earpiece audio level (RMS, 20 Hz - 10 kHz)", "level, dBV", names, level, groups.group, false, dir, stems);
+        draw_bars("level", "Earpiece audio level (RMS, 20 Hz - 10 kHz)", "level, dBV", "dBV", names, level, groups.group, false, dir, stems);
     }
     const bool any_receiver = std::any_of(sweep.variants.begin(), sweep.variants.end(),
                                           [](const variant_result& r) { return r.scene.tuner.layout != tuner_layout::bench; });
@@ -785,7 +793,7 @@ pack_plots draw_pack_plots(const sweep_result& sweep, const fs::path& dir, bool 
     // Conditions: each variant's own; the title states them, or says they differ.
     std::set<std::string> conditions;
     for (std::size_t i = 0; i < n; ++i) conditions.insert(describe_curve_conditions(curve_settings(curve_scene(i))));
-    const std::string cond = conditions.size() == 1 ? *conditions.begin() : std::string("each variant''s own carrier and modulation");
+    const std::string cond = conditions.size() == 1 ? *conditions.begin() : std::string("each variant's own carrier and modulation");
     // The circuit's name in legends: its variants' names less the words they do not share (e.g. "weak", "strong").
     auto group_name = [&](std::size_t g) {
         const auto& mem = groups.members[g];
@@ -832,8 +840,9 @@ pack_plots draw_pack_plots(const sweep_result& sweep, const fs::path& dir, bool 
     write_text_atomic(dir / "transfer_operating.dat", opdata);
     write_text_atomic(dir / "response.dat", rdata);
     run_gnuplot(terminal_pair_script("transfer",
-                                     fmt::format("set title 'Transfer curve: recovered tone against carrier level ({}), one curve per "
-                                                 "circuit\\nlarge rings: the variants'' own carrier levels'\nset grid\nset logscale xy\n{}"
+                                     fmt::format("set title \"Transfer curve, one per circuit: recovered tone against carrier level\\n({}; rings: the "
+                                                 "variants' own levels)\"\nset grid\nset logscale xy\nset format y '%g'\n"
+                                                 "set xrange [0.008:4]\n{}"
                                                  "set xlabel 'carrier peak, V'\nset ylabel 'tone amplitude at the earpiece, V'\n"
                                                  "set lmargin at screen 0.09\nset rmargin at screen 0.68\n"
                                                  "plot {}, 'transfer_operating.dat' using 1:2:3 with points pt 6 ps 3.2 lw 3 lc rgb variable "
@@ -841,8 +850,8 @@ pack_plots draw_pack_plots(const sweep_result& sweep, const fs::path& dir, bool 
                                                  cond, key_setting, tplot)),
                 dir, "transfer");
     stems.push_back("transfer");
-    run_gnuplot(terminal_pair_script("response", fmt::format("set title 'Frequency response, audio in to earpiece, re each variant''s "
-                                                             "peak ({})\\ncolour: circuit; dash: signal level'\nset grid\nset logscale x\n{}"
+    run_gnuplot(terminal_pair_script("response", fmt::format("set title \"Frequency response re each variant's peak\\n({}; colour: circuit, "
+                                                             "dash: signal level)\"\nset grid\nset logscale x\n{}"
                                                              "set xlabel 'frequency, Hz'\nset ylabel 'relative gain, dB'\n"
                                                              "set lmargin at screen 0.09\nset rmargin at screen 0.68\nplot {}",
                                                              cond, key_setting, rplot)),
