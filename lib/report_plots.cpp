@@ -686,7 +686,7 @@ void draw_receiver_diode_levels(const sweep_result& sweep, const grouping& group
         return;
     }
     const scenario s0 = bench_of(groups.members[gs.front()].front());
-    const std::string cond = fmt::format("the detector alone behind source.resistance_ohm = {}, at the wanted station's {}",
+    const std::string cond = fmt::format("the detector alone behind a {} source, at the wanted station's {}",
                                          format_quantity(s0.circuit.source.resistance_ohm, unit::ohm, 3, true),
                                          describe_curve_conditions(curve_settings(s0)));
     draw_diode_levels(sweep, groups, gs, tc, operating, cond, names, dir, out.stems);
