@@ -2,6 +2,7 @@
 // the transfer curve's levels, and a small bench pack's curves at the scenario's own carrier.
 #include "galena/plot_choices.hpp"
 #include "galena/report.hpp"
+#include "galena/sweep.hpp"
 
 #include <doctest/doctest.h>
 
@@ -128,4 +129,34 @@ TEST_CASE("transfer levels hold the operating levels among a weak-to-strong grid
     CHECK(l.front() == doctest::Approx(0.01));
     CHECK(l.back() == doctest::Approx(3.0));
     for (std::size_t k = 1; k < l.size(); ++k) CHECK(l[k] / l[k - 1] > 1.15); // none crowds another
+}
+
+TEST_CASE("a bench pack's curves run at the scenario's own carrier and modulation, one transfer curve per circuit")
+{
+    // demo.toml: a 1 MHz carrier with m = 0.3. Two circuits (germanium, Schottky), the germanium one at two
+    // levels: two transfer curves, three responses, the operating levels among the transfer points, and the
+    // level-against-carrier chart for the two diodes.
+    const fs::path out = fs::path(GALENA_TEST_TMP) / "plots-bench-pack";
+    fs::remove_all(out);
+    const fs::path base = fs::path(GALENA_SOURCE_DIR) / "scenarios/demo.toml";
+    std::vector<variant_spec> variants = {{"ge-weak", "", {"signal.carrier_peak_v=0.15"}, {}},
+                                          {"ge-strong", "", {"signal.carrier_peak_v=1.5"}, {}},
+                                          {"schottky-weak", "", {"signal.carrier_peak_v=0.15", "diode.preset=small-signal-schottky"}, {}}};
+    pack_options po;
+    po.sweep.threads = 2;
+    const pack_outcome o = make_pack(base, {"signal.duration_s=0.2"}, variants, out, po);
+    CHECK(o.warnings.empty());
+    const std::string transfer = read_text(out / "plots" / "transfer.gp");
+    CHECK(transfer.find("1 MHz carrier, m = 0.3") != std::string::npos);
+    CHECK(transfer.find("200 kHz") == std::string::npos);
+    // Two curves (two data blocks) and the three operating points ringed.
+    const std::string tdat = read_text(out / "plots" / "transfer.dat");
+    std::size_t blocks = 0;
+    for (std::size_t p = tdat.find("\n\n\n"); p != std::string::npos; p = tdat.find("\n\n\n", p + 3)) ++blocks;
+    CHECK(blocks == 2);
+    const std::string ops = read_text(out / "plots" / "transfer_operating.dat");
+    CHECK(std::count(ops.begin(), ops.end(), '\n') == 3);
+    CHECK(fs::exists(out / "plots" / "diode_levels.png"));
+    const std::string dl = read_text(out / "plots" / "diode_levels.gp");
+    CHECK(dl.find("germanium-point-contact and small-signal-schottky") != std::string::npos);
 }
