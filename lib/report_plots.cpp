@@ -368,7 +368,7 @@ void draw_traces(const std::vector<std::string>& names, const std::vector<trace>
         if (!plot.empty()) {
             write_text_atomic(dir / "spectrum.dat", data);
             const std::string body =
-                fmt::format("set title 'Earpiece spectrum: DC and settling drift removed, 4-term Blackman-Harris window, from {:.0f} Hz'\n"
+                fmt::format("set title \"Earpiece spectrum, from {:.0f} Hz\\n(DC and settling drift removed before a 4-term Blackman-Harris window)\"\n"
                             "set grid\n{}set logscale x\nset xlabel 'frequency, Hz'\nset ylabel 'amplitude, dBV'\nset yrange [-140:*]\n"
                             "set xrange [{:.6g}:{:.6g}]\nset lmargin at screen 0.09\nset rmargin at screen 0.68\nplot {}",
                             f_lowest, key_setting, f_lowest, band_high, plot);
