@@ -94,7 +94,8 @@ void rf_integrator::set_network(const state_space& ss, int input)
 void rf_integrator::retune(const state_space& ss, int input, const Eigen::VectorXd& x, std::span<const output_row> outputs)
 {
     if (ss.states() != m_x.size() || x.size() != m_x.size())
-        throw config_error(fmt::format("rf_integrator::retune: {} states for a network of {}", ss.states(), m_x.size()));
+        throw config_error(fmt::format("rf_integrator::retune: a network of {} states and a state of {} entries for an integrator of {}",
+                                       ss.states(), x.size(), m_x.size()));
     if (outputs.size() != m_outs.size())
         throw config_error(fmt::format("rf_integrator::retune: {} output rows for {} outputs", outputs.size(), m_outs.size()));
     if (ss.port_linear_capacitance_f != m_c_lin)
