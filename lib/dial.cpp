@@ -128,6 +128,7 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
     detail::require_range("output.sample_rate_hz", s.audio_rate_hz, 8000.0, 192000.0, "Hz");
     detail::require_range("render.dc_block_hz", s.dc_block_hz, 1e-3, 200.0, "Hz");
     detail::require_above("dial.retune_interval_s", s.retune_interval_s, 0.0, 0.1, "s");
+    detail::require_range("dial.level_window_s", s.level_window_s, 1e-4, 1.0, "s");
     if (spec.stations.empty()) throw config_error("band: a dial sweep needs at least one station");
     spec.antenna.validate();
     const double fs = s.audio_rate_hz;
@@ -197,15 +198,22 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
     const auto seg = std::max<std::size_t>(1, static_cast<std::size_t>(std::llround(s.retune_interval_s * fref)));
     const double period = 1.0 / fref;
 
-    // Per-station DFT at the detector's input: the carrier phasor e^{-j w t} rotated per step.
+    // Per-station DFT at the detector's input: the carrier phasor e^{-j w t} rotated per step (and per cycle),
+    // set exactly at the start of each level window (no drift).
     const std::size_t ns = src.size();
-    std::vector<double> ratio(ns), rot_re(ns), rot_im(ns), acc_re(ns), acc_im(ns), p_re(ns), p_im(ns);
+    std::vector<double> ratio(ns), rot_re(ns), rot_im(ns), cyc_re(ns), cyc_im(ns), acc_re(ns), acc_im(ns), p_re(ns), p_im(ns);
     for (std::size_t k = 0; k < ns; ++k) {
         ratio[k] = res.carriers_hz[k] / fref;
         const double a = -two_pi * ratio[k] / n_steps;
         rot_re[k] = std::cos(a);
         rot_im[k] = std::sin(a);
+        const double b = -two_pi * (ratio[k] - std::floor(ratio[k]));
+        cyc_re[k] = std::cos(b);
+        cyc_im[k] = std::sin(b);
     }
+    const auto window = std::max<std::size_t>(2, static_cast<std::size_t>(std::llround(s.level_window_s * fref)));
+    std::size_t w_start = 0;
+    double wsum = 0.0;
     std::vector<double> det(static_cast<std::size_t>(2 * n_steps));
 
     res.audio_rate_hz = fs;
@@ -219,8 +227,7 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
     const std::size_t chunk_cycles = seg; // one chunk per retune interval
     for (std::size_t c0 = 0; c0 < cycles_total && delivered < total; c0 += chunk_cycles) {
         const std::size_t c1 = std::min(cycles_total, c0 + chunk_cycles);
-        const double t_mid = 0.5 * static_cast<double>(c0 + c1) * period - preroll;
-        const double f_dial = dial_frequency(path, tuning, t_mid);
+        const double f_dial = dial_frequency(path, tuning, 0.5 * static_cast<double>(c0 + c1) * period - preroll);
         if (c0 > 0) {
             const auto w0 = clock::now();
             receiver_network next = network_at(f_dial);
@@ -236,22 +243,23 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
         const double tb = static_cast<double>(c1) * period;
         for (const auto& st : spec.stations)
             st.programme->prepare(static_cast<double>(c0) * period - preroll - 2.0 * period, tb - preroll + 3.0 * period);
-        std::fill(acc_re.begin(), acc_re.end(), 0.0);
-        std::fill(acc_im.begin(), acc_im.end(), 0.0);
-        double wsum = 0.0;
-        const double len = static_cast<double>(c1 - c0);
         for (std::size_t c = c0; c < c1; ++c) {
             ig.advance_cycle(det);
             chain.add_cycle_mean(ig.output_mean(out_k), raw);
-            // Hann weight per cycle (constant within one), carrier phasor at the cycle's first step end.
-            const double w = 0.5 * (1.0 - std::cos(two_pi * (static_cast<double>(c - c0) + 0.5) / len));
-            wsum += w * n_steps;
-            for (std::size_t k = 0; k < ns; ++k) {
-                const double cyc = static_cast<double>(c) * ratio[k];
-                const double ph = -two_pi * (cyc - std::floor(cyc) + ratio[k] / n_steps);
-                p_re[k] = std::cos(ph);
-                p_im[k] = std::sin(ph);
+            if (c == w_start) {
+                // A new level window: the phasors at its first step end, exactly.
+                for (std::size_t k = 0; k < ns; ++k) {
+                    const double cyc = static_cast<double>(c) * ratio[k];
+                    const double ph = -two_pi * (cyc - std::floor(cyc) + ratio[k] / n_steps);
+                    p_re[k] = std::cos(ph);
+                    p_im[k] = std::sin(ph);
+                    acc_re[k] = acc_im[k] = 0.0;
+                }
+                wsum = 0.0;
             }
+            // Hann weight per cycle (constant within one).
+            const double w = 0.5 * (1.0 - std::cos(two_pi * (static_cast<double>(c - w_start) + 0.5) / static_cast<double>(window)));
+            wsum += w * n_steps;
             const double* dv = det.data() + n_steps; // row det_k
             for (std::size_t k = 0; k < ns; ++k) {
                 double pr = p_re[k], pi_ = p_im[k], ar = 0.0, ai = 0.0;
@@ -265,17 +273,25 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
                 }
                 acc_re[k] += w * ar;
                 acc_im[k] += w * ai;
+                // On to the next cycle's first step.
+                const double t = p_re[k] * cyc_re[k] - p_im[k] * cyc_im[k];
+                p_im[k] = p_re[k] * cyc_im[k] + p_im[k] * cyc_re[k];
+                p_re[k] = t;
+            }
+            if (c + 1 == w_start + window) {
+                const double t_centre = (static_cast<double>(w_start) + 0.5 * static_cast<double>(window)) * period - preroll;
+                if (t_centre >= 0.0 && t_centre <= duration) {
+                    dial_point p;
+                    p.time_s = t_centre;
+                    p.tuned_hz = dial_frequency(path, tuning, t_centre);
+                    p.capacitance_f = tuning.capacitance_f(p.tuned_hz);
+                    for (std::size_t k = 0; k < ns; ++k) p.level_v.push_back(2.0 * std::hypot(acc_re[k], acc_im[k]) / wsum);
+                    res.trace.push_back(std::move(p));
+                }
+                w_start = c + 1;
             }
         }
         static_assert(det_k == 1);
-        if (t_mid >= 0.0 && t_mid <= duration) {
-            dial_point p;
-            p.time_s = t_mid;
-            p.tuned_hz = f_dial;
-            p.capacitance_f = rn.tuning_capacitance_f;
-            for (std::size_t k = 0; k < ns; ++k) p.level_v.push_back(2.0 * std::hypot(acc_re[k], acc_im[k]) / wsum);
-            res.trace.push_back(std::move(p));
-        }
         block_e.clear();
         block_a.clear();
         const std::size_t first = delivered;

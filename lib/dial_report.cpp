@@ -48,8 +48,9 @@ std::string gp_text(const std::string& s)
 /// Two panels: the dial (tuned frequency, kHz) against time, and each station's level at the detector, dBV.
 std::string dial_map_script(const dial_result& r, const std::string& csv_name, const std::string& stem)
 {
-    std::string body = "set datafile separator ','\nset multiplot layout 2,1\nset grid\nset key outside right top\n";
-    body += "set ylabel 'tuned frequency, kHz'\nunset xlabel\nset format x ''\n";
+    std::string body = "reset\nset datafile separator ','\nset multiplot layout 2,1\nset grid\nset key outside right top\n"
+                       "set lmargin at screen 0.09\nset rmargin at screen 0.66\n";
+    body += "set ylabel 'tuned frequency, kHz'\nunset xlabel\nset format x ''\nset autoscale y\n";
     for (std::size_t k = 0; k < r.names.size(); ++k)
         body += fmt::format("set arrow from graph 0, first {0:.3f} to graph 1, first {0:.3f} nohead dt 3 lc rgb '#999999'\n",
                             r.carriers_hz[k] / 1e3);
@@ -91,7 +92,7 @@ void transcode(const fs::path& src, const fs::path& target, double fs, wav_forma
 const std::vector<std::string>& dial_output_names()
 {
     static const std::vector<std::string> names{"dial.wav",   "dial-normalised.wav", "dial-map.csv", "survey.csv",
-                                                "survey.md",  "dial-map.svg",        "dial-map.png", "dial-map.log"};
+                                                "survey.md",  "dial-map.svg",        "dial-map.png", "dial-map.log", "dial-map.gp"};
     return names;
 }
 
@@ -140,6 +141,7 @@ dial_outcome run_dial_into(const scenario& s, const band_spec& band, const fs::p
     for (std::size_t k = 0; k < band.stations.size(); ++k) spec.stations.push_back({band.stations[k].params, programmes[k].get()});
     dial_settings ds;
     ds.retune_interval_s = opt.retune_interval_s;
+    ds.level_window_s = opt.level_window_s;
     ds.steps_per_cycle = opt.steps_per_cycle;
     ds.audio_rate_hz = s.render.audio_rate_hz;
     ds.dc_block_hz = s.render.dc_block_hz;

@@ -197,6 +197,8 @@ TEST_CASE("dial sweep: a slow sweep past one station traces the universal resona
     path.end_hz = 1.02 * fs_hz;
     path.glide_s = 0.1;
     dial_settings ds;
+    ds.retune_interval_s = 1e-3;
+    ds.level_window_s = 1e-3; // an unmodulated carrier: a short window, a fine trace
     const dial_result r = render_dial(swept, path, ds, [](const audio_block&) {});
     REQUIRE(r.trace.size() >= 95);
     double peak = 0.0;

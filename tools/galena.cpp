@@ -271,7 +271,7 @@ int main(int argc, char** argv)
     // Turning the dial (issue 16).
     std::string dl_scenario, dl_band, dl_out, dl_law = "frequency";
     std::vector<std::string> dl_sets;
-    double dl_from = 0.0, dl_to = 0.0, dl_glide = 0.0, dl_dwell = -1.0, dl_retune = 1e-3;
+    double dl_from = 0.0, dl_to = 0.0, dl_glide = 0.0, dl_dwell = -1.0, dl_retune = 2e-3, dl_window = 8e-3;
     bool dl_stops = false;
     int dl_steps = 32;
     auto* dial = app.add_subcommand("dial", "sweep a set's tuning capacitor across a band: DIR/dial.wav, dial map, band survey");
@@ -287,6 +287,8 @@ int main(int argc, char** argv)
     dial->add_flag("--stop-on-stations", dl_stops, "dwell on every station's carrier, gliding between them");
     dial->add_option("--dwell", dl_dwell, "time on each stop, s (with --stop-on-stations)")->transform(engineering(galena::unit::second));
     dial->add_option("--retune-interval", dl_retune, "simulated time between capacitor updates, s")
+        ->capture_default_str()->transform(engineering(galena::unit::second));
+    dial->add_option("--level-window", dl_window, "each station's level is measured over windows of this length, s")
         ->capture_default_str()->transform(engineering(galena::unit::second));
     dial->add_option("--steps-per-cycle", dl_steps, "steps per cycle of the highest dial frequency (even, 8-4096)")->capture_default_str();
     dial->add_flag("--overwrite", overwrite, "replace existing output files");
@@ -397,6 +399,7 @@ int main(int argc, char** argv)
             galena::dial_job_options dopt;
             dopt.overwrite = overwrite;
             dopt.retune_interval_s = dl_retune;
+            dopt.level_window_s = dl_window;
             dopt.steps_per_cycle = dl_steps;
             galena::dial_path path = galena::load_band(dl_band).dial;
             const bool any = dl_from > 0.0 || dl_to > 0.0 || dl_glide > 0.0 || dl_dwell >= 0.0 || dl_stops || dial->count("--law") > 0;

@@ -56,22 +56,27 @@ private:
 /// Settings of a dial render.
 struct dial_settings {
     /// The network is re-assembled and re-tabulated with the capacitor's new value every this many seconds
-    /// of simulated time (the value at the interval's middle is held through it); (0, 0.1]. 1 ms moves a
-    /// 10 s sweep over 530-1700 kHz by 117 Hz per interval, about 1/40 of a loaded bandwidth.
-    double retune_interval_s = 1e-3;
+    /// of simulated time (the value at the interval's middle is held through it); (0, 0.1]. 2 ms moves a
+    /// 10 s sweep over 530-1700 kHz by 234 Hz per interval, about 1/20 of a loaded bandwidth.
+    double retune_interval_s = 2e-3;
+    /// Each station's level is measured over consecutive windows of this length (Hann), s; [1e-4, 1]. 8 ms
+    /// resolves 125 Hz, so a programme's sidebands from 300 Hz up fall outside the window's main lobe
+    /// and the carrier's level does not flutter with the programme.
+    double level_window_s = 8e-3;
     int steps_per_cycle = 32;     ///< N steps per cycle of the reference (the path's highest frequency)
     double audio_rate_hz = 48000.0;
     double dc_block_hz = 10.0;
     double preroll_s = -1.0;      ///< s; < 0: automatic (the output's and the tuned circuit's settling)
 };
 
-/// One retune interval: where the dial stood and each station's RF level at the detector's input.
+/// One level window: where the dial stood (at the window's middle) and each station's RF level at the
+/// detector's input.
 struct dial_point {
-    double time_s = 0.0;          ///< middle of the interval, programme time (0 = the path's start), s
+    double time_s = 0.0;          ///< middle of the window, programme time (0 = the path's start), s
     double tuned_hz = 0.0;        ///< the dial's tuned frequency, Hz
     double capacitance_f = 0.0;   ///< the tuning capacitor, F
     /// Per station (band order): the amplitude of its carrier at the detector's input (the tap), V, from a
-    /// Hann-windowed DFT of the simulated voltage over the interval (0 during the preroll).
+    /// Hann-windowed DFT of the simulated voltage over the window.
     std::vector<double> level_v;
 };
 
@@ -79,7 +84,7 @@ struct dial_point {
 struct dial_result {
     std::vector<std::string> names;       ///< stations, band order
     std::vector<double> carriers_hz;
-    std::vector<dial_point> trace;        ///< one per retune interval after the preroll
+    std::vector<dial_point> trace;        ///< one per level window inside the path
     std::size_t samples = 0;              ///< audio samples delivered
     double audio_rate_hz = 0.0;
     double reference_hz = 0.0;            ///< the grid's reference carrier, Hz

@@ -18,7 +18,8 @@ namespace galena {
 struct dial_job_options {
     bool overwrite = false;
     std::optional<dial_path> path;       ///< replaces the band file's [dial] when given
-    double retune_interval_s = 1e-3;     ///< dial_settings::retune_interval_s
+    double retune_interval_s = 2e-3;     ///< dial_settings::retune_interval_s
+    double level_window_s = 8e-3;        ///< dial_settings::level_window_s
     int steps_per_cycle = 32;            ///< dial_settings::steps_per_cycle
     std::function<void(double)> progress;
 };
