@@ -14,7 +14,7 @@ namespace galena {
 /// 2nd-order Butterworth low-passes at 2.5 kHz (the telephone band where the long-term speech spectrum
 /// carries most of its energy; falling 24 dB per octave above 2.5 kHz), times a syllabic envelope: a second
 /// seeded noise low-passed at 4 Hz (the syllable rate of running speech, common practice), squared and scaled
-/// to [0.05, 1]. Generated at 16 kHz over the whole duration (8 bytes a sample: 7.7 MB for 60 s), peak
+/// to [0.05, 1]. Generated at 16 kHz over the whole duration (a float a sample: 3.8 MB for 60 s), peak
 /// normalised to 0.95, read by linear interpolation. Not speech: no formants, no pitch.
 class speech_noise_modulation final : public modulation {
 public:
