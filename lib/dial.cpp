@@ -220,12 +220,10 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
     res.reference_hz = fref;
     res.steps_per_cycle = n_steps;
     res.preroll_s = preroll;
-    biquad dc_block = biquad::butterworth_highpass(s.dc_block_hz, fs);
-    bool dc_settled = false;
+    detail::programme_delivery delivery(preroll_samples, total, fs, s.dc_block_hz);
     std::vector<double> raw, block_e, block_a;
-    std::size_t produced = 0, delivered = 0;
     const std::size_t chunk_cycles = seg; // one chunk per retune interval
-    for (std::size_t c0 = 0; c0 < cycles_total && delivered < total; c0 += chunk_cycles) {
+    for (std::size_t c0 = 0; c0 < cycles_total && !delivery.complete(); c0 += chunk_cycles) {
         const std::size_t c1 = std::min(cycles_total, c0 + chunk_cycles);
         const double f_dial = dial_frequency(path, tuning, 0.5 * static_cast<double>(c0 + c1) * period - preroll);
         if (c0 > 0) {
@@ -294,25 +292,12 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
         static_assert(det_k == 1);
         block_e.clear();
         block_a.clear();
-        const std::size_t first = delivered;
-        for (double v : raw) {
-            const std::size_t n = produced++;
-            if (n < preroll_samples || delivered >= total) continue;
-            if (!std::isfinite(v))
-                throw integration_error(fmt::format("the earpiece voltage became non-finite near t = {:.9g} s", tb), tb);
-            if (!dc_settled) {
-                dc_block.settle_to(v);
-                dc_settled = true;
-            }
-            block_e.push_back(v);
-            block_a.push_back(dc_block.process(v));
-            ++delivered;
-        }
-        raw.clear();
+        const std::size_t first = delivery.delivered();
+        delivery.deliver(raw, tb, block_e, block_a);
         if (!block_e.empty()) sink(audio_block{first, block_e, block_a});
         if (progress) progress(std::clamp(static_cast<double>(c1) / static_cast<double>(cycles_total), 0.0, 1.0));
     }
-    res.samples = delivered;
+    res.samples = delivery.delivered();
     res.simulated_s = ig.time_s();
     res.wall_s = std::chrono::duration<double>(clock::now() - wall0).count();
     return res;
