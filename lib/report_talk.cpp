@@ -31,6 +31,7 @@ std::string talk_css()
 #quiz-note{background:#f4f4f4;padding:.4em .6em}
 .presenter{position:fixed;inset:0;background:#fff;color:#111;z-index:10;overflow:auto;font-family:sans-serif}
 .presenter .slide{padding:2vh 4vw;height:96vh;box-sizing:border-box;display:flex;flex-direction:column}
+.presenter .slide[hidden]{display:none}
 .presenter .p-count{font-size:2.4vh;color:#555}
 .presenter .p-name{font-size:7vh;margin:.5vh 0;line-height:1.1}
 .presenter .p-label{font-size:3.2vh;margin:.3vh 0;color:#333}

@@ -91,7 +91,9 @@ class PackPage(Page):
         self.call("Input.dispatchKeyEvent", type="keyUp", **params)
 
     def visible_slide(self):
-        return self.js("Array.from(document.querySelectorAll('#presenter .slide')).filter(s => !s.hidden).map(s => Number(s.dataset.i))")
+        # What is drawn, not the attribute: a CSS display rule could show a slide marked hidden.
+        return self.js("Array.from(document.querySelectorAll('#presenter .slide'))"
+                       ".filter(s => getComputedStyle(s).display !== 'none' && s.getClientRects().length > 0).map(s => Number(s.dataset.i))")
 
 
 def main():

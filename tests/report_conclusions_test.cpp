@@ -85,10 +85,14 @@ TEST_CASE("spectral distance and brightness of constructed spectra")
     // Share of power from 2 kHz up: 7/20 -> -4.559 dB flat; 0.017584 / 0.030584 -> -2.404 dB raised: +2.155 dB.
     CHECK(std::abs(brightness_db(b, a) - 2.155) < 0.001);
     CHECK(std::abs(brightness_db(a, b) + 2.155) < 0.001);
-    // A band more than band_floor_db (40 dB) below the loudest one does not count.
-    auto quiet_band = flat("q", -20.0);
-    quiet_band.band_db[0] = -80.0;  // 50 dB below the others
-    CHECK(spectral_distance_db(quiet_band, a) < 0.05);
+    // A band more than band_floor_db (40 dB) below the loudest band in both spectra does not count: 5 dB
+    // apart at 45 and 50 dB down leaves only the totals' 1e-8 / 20e-3 shift (2e-6 dB).
+    auto q1 = flat("q1", -20.0), q2 = flat("q2", -20.0);
+    q1.band_db[0] = -75.0;
+    q2.band_db[0] = -80.0;
+    CHECK(spectral_distance_db(q1, q2) < 1e-4);
+    q1.band_db[0] = -65.0;  // 35 dB down: counts
+    CHECK(std::abs(spectral_distance_db(q1, q2) - 15.0) < 0.01);
     const auto v = compare_for_listening(b, a);
     CHECK(std::abs(v.level_db + 9.0) < 1e-12);
     CHECK_FALSE(v.same_level);
