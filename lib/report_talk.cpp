@@ -37,7 +37,7 @@ std::string talk_css()
 .presenter .p-label{font-size:3.2vh;margin:.3vh 0;color:#333}
 .presenter .p-summary{font-size:4vh;margin:1vh 0;line-height:1.25}
 .presenter .p-plot{flex:1;min-height:0}
-.presenter .p-plot svg{width:100%;height:100%;max-height:48vh}
+.presenter .p-plot svg{width:100%;height:100%;max-height:58vh}
 .presenter .p-controls{font-size:3.4vh;display:flex;gap:2vw;align-items:center;flex-wrap:wrap}
 .presenter button{font-size:3.4vh;padding:.4vh 1.6vw}
 .presenter button.on{background:#0072b2;color:#fff}
@@ -263,18 +263,22 @@ std::string talk_script(const talk_data& d)
   function openPresenter(i) {
     P.open = true;
     $('presenter').hidden = false;
+    document.documentElement.style.overflow = 'hidden';  // no page scroll bar beside the slide
     show(i === undefined ? P.i : i);
   }
   function closePresenter() {
     P.open = false;
     pa.pause(); pb.pause();
+    document.documentElement.style.overflow = '';
     $('presenter').hidden = true;
   }
   for (const el of [pa, pb]) for (const ev of ['play', 'pause', 'ended']) el.addEventListener(ev, label);
+  // A clicked button gives its focus back: space must not press it again after the key handler ran.
+  const click = (f) => (e) => { f(); e.currentTarget.blur(); };
   slides.forEach((s) => {
-    s.querySelector('.p-play').addEventListener('click', playPause);
-    s.querySelector('.p-a').addEventListener('click', () => hear('a'));
-    s.querySelector('.p-b').addEventListener('click', () => hear('b'));
+    s.querySelector('.p-play').addEventListener('click', click(playPause));
+    s.querySelector('.p-a').addEventListener('click', click(() => hear('a')));
+    s.querySelector('.p-b').addEventListener('click', click(() => hear('b')));
   });
   const opener = $('open-presenter');
   if (opener) opener.addEventListener('click', () => openPresenter(0));

@@ -12,6 +12,8 @@ projector's size) as SCRATCH_DIR/presenter.png. Standard library only (the DevTo
 workbench_page_check.py).
 
 Usage: pack_page_check.py GALENA_TOOL SCRATCH_DIR    (exit 77 = skipped: no chromium)
+Environment: GALENA_PACK_PAGE_REUSE=1 checks the pack already in SCRATCH_DIR/pack (for trying mutants of the
+page's script by editing its index.html) instead of rendering it again.
 """
 import base64
 import json
@@ -102,14 +104,17 @@ def main():
     if chromium is None:
         print("pack_page_check: skipped: no chromium (bootstrap.sh test installs it)")
         return 77
-    shutil.rmtree(scratch, ignore_errors=True)
-    os.makedirs(scratch)
-    pack = os.path.join(scratch, "bleeders.toml")
-    with open(pack, "w") as f:
-        f.write(PACK.format(scenario=os.path.join(SOURCE, "scenarios", "demo.toml")))
     out = os.path.join(scratch, "pack")
-    r = subprocess.run([tool, "compare", pack, "--out", out, "--no-curves", "--quiet"], capture_output=True, text=True, timeout=600)
-    assert r.returncode == 0, f"galena compare failed ({r.returncode}): {r.stderr}"
+    if os.environ.get("GALENA_PACK_PAGE_REUSE") == "1":
+        shutil.rmtree(os.path.join(scratch, "profile"), ignore_errors=True)
+    else:
+        shutil.rmtree(scratch, ignore_errors=True)
+        os.makedirs(scratch)
+        pack = os.path.join(scratch, "bleeders.toml")
+        with open(pack, "w") as f:
+            f.write(PACK.format(scenario=os.path.join(SOURCE, "scenarios", "demo.toml")))
+        r = subprocess.run([tool, "compare", pack, "--out", out, "--no-curves", "--quiet"], capture_output=True, text=True, timeout=600)
+        assert r.returncode == 0, f"galena compare failed ({r.returncode}): {r.stderr}"
     index = os.path.join(out, "index.html")
     html = open(index, encoding="utf-8").read()
 
