@@ -2,11 +2,13 @@
 
 #include "galena/audio_io.hpp"
 #include "galena/metrics.hpp"
+#include "galena/units.hpp"
 
 #include <algorithm>
 #include <cctype>
 #include <cmath>
 #include <fmt/format.h>
+#include <functional>
 #include <numeric>
 
 namespace galena {
@@ -156,38 +158,55 @@ listening_conclusions conclude(const std::vector<listening_measure>& m, const li
     const std::size_t n = m.size();
     c.summaries.resize(n);
     if (n == 0) return c;
-    // Greedy complete-linkage groups in variant order: a variant joins the first group it matches entirely.
-    for (std::size_t i = 0; i < n; ++i) {
-        bool placed = false;
-        for (auto& g : c.groups)
-            if (std::all_of(g.begin(), g.end(), [&](std::size_t j) { return compare_for_listening(m[i], m[j], t).indistinguishable(); })) {
-                g.push_back(i);
-                placed = true;
-                break;
-            }
-        if (!placed) c.groups.push_back({i});
-    }
-    std::size_t ref_group = 0;
-    for (std::size_t g = 1; g < c.groups.size(); ++g)
-        if (c.groups[g].size() > c.groups[ref_group].size()) ref_group = g;
-    c.reference = c.groups[ref_group][0];
-    const std::string& ref = m[c.reference].name;
     auto names_of = [&](const std::vector<std::size_t>& g) {
         std::vector<std::string> s;
         for (std::size_t i : g) s.push_back(m[i].name);
         return s;
     };
-
-    for (const auto& g : c.groups)
-        if (g.size() > 1)
-            c.sentences.push_back(fmt::format("{} sound the same (levels within {:g} dB, same tone colour).", join_names(names_of(g)),
-                                              t.same_level_db));
-    for (std::size_t g = 0; g < c.groups.size(); ++g) {
-        if (g == ref_group) continue;
-        const auto& grp = c.groups[g];
-        const pair_verdict v = compare_for_listening(m[grp[0]], m[c.reference], t);
-        // Names keep their own spelling, even at the start of a sentence.
-        c.sentences.push_back(fmt::format("{} {} {}.", join_names(names_of(grp)), grp.size() > 1 ? "are" : "is", describe(v, ref, t)));
+    // Contexts in order of first appearance; variants are grouped and compared within their own context only.
+    std::vector<std::string> contexts;
+    for (const auto& x : m)
+        if (std::find(contexts.begin(), contexts.end(), x.context) == contexts.end()) contexts.push_back(x.context);
+    c.reference_of.assign(n, 0);
+    std::vector<std::size_t> group_of(n, 0);
+    for (std::size_t ctx = 0; ctx < contexts.size(); ++ctx) {
+        const std::size_t first_group = c.groups.size();
+        // Greedy complete-linkage groups in variant order: a variant joins the first group it matches entirely.
+        for (std::size_t i = 0; i < n; ++i) {
+            if (m[i].context != contexts[ctx]) continue;
+            bool placed = false;
+            for (std::size_t g = first_group; g < c.groups.size() && !placed; ++g)
+                if (std::all_of(c.groups[g].begin(), c.groups[g].end(),
+                                [&](std::size_t j) { return compare_for_listening(m[i], m[j], t).indistinguishable(); })) {
+                    c.groups[g].push_back(i);
+                    placed = true;
+                }
+            if (!placed) c.groups.push_back({i});
+        }
+        std::size_t ref_group = first_group;
+        for (std::size_t g = first_group + 1; g < c.groups.size(); ++g)
+            if (c.groups[g].size() > c.groups[ref_group].size()) ref_group = g;
+        const std::size_t reference = c.groups[ref_group][0];
+        if (ctx == 0) c.reference = reference;
+        for (std::size_t g = first_group; g < c.groups.size(); ++g)
+            for (std::size_t i : c.groups[g]) {
+                c.reference_of[i] = reference;
+                group_of[i] = g;
+            }
+        std::string prefix = contexts[ctx].empty() ? std::string() : contexts[ctx] + ", ";
+        if (!prefix.empty()) prefix[0] = static_cast<char>(std::toupper(static_cast<unsigned char>(prefix[0])));
+        const std::string& ref = m[reference].name;
+        for (std::size_t g = first_group; g < c.groups.size(); ++g)
+            if (c.groups[g].size() > 1)
+                c.sentences.push_back(fmt::format("{}{} sound the same (levels within {:g} dB, same tone colour).", prefix,
+                                                  join_names(names_of(c.groups[g])), t.same_level_db));
+        for (std::size_t g = first_group; g < c.groups.size(); ++g) {
+            if (g == ref_group) continue;
+            const auto& grp = c.groups[g];
+            const pair_verdict v = compare_for_listening(m[grp[0]], m[reference], t);
+            // Names keep their own spelling, even at the start of a sentence.
+            c.sentences.push_back(fmt::format("{}{} {} {}.", prefix, join_names(names_of(grp)), grp.size() > 1 ? "are" : "is", describe(v, ref, t)));
+        }
     }
     std::size_t loud = 0, quiet = 0;
     for (std::size_t i = 1; i < n; ++i) {
@@ -220,18 +239,18 @@ listening_conclusions conclude(const std::vector<listening_measure>& m, const li
         t.same_level_db, t.spectral_jnd_db, t.band_floor_db, t.brightness_db, t.audible_thd_percent));
 
     for (std::size_t i = 0; i < n; ++i) {
-        const auto& grp = *std::find_if(c.groups.begin(), c.groups.end(),
-                                        [&](const auto& g) { return std::find(g.begin(), g.end(), i) != g.end(); });
+        const auto& grp = c.groups[group_of[i]];
+        const std::size_t reference = c.reference_of[i];
         std::string s;
         if (grp.size() > 1) {
             std::vector<std::string> others;
             for (std::size_t j : grp)
                 if (j != i) others.push_back(m[j].name);
             s = fmt::format("Sounds the same as {} (within {:g} dB, same tone colour)", join_names(others), t.same_level_db);
-        } else if (i == c.reference) {
+        } else if (i == reference) {
             s = "The reference the others are compared with";
         } else {
-            s = describe(compare_for_listening(m[i], m[c.reference], t), ref, t);
+            s = describe(compare_for_listening(m[i], m[reference], t), m[reference].name, t);
             s[0] = static_cast<char>(std::toupper(static_cast<unsigned char>(s[0])));
         }
         s += fmt::format("; {:.1f} dBFS RMS", m[i].rms_dbfs);
@@ -264,10 +283,17 @@ listening_measure measure_listening(const std::filesystem::path& wav, const std:
 std::vector<listening_measure> measure_listening(const sweep_result& sw)
 {
     std::vector<listening_measure> out;
+    std::vector<double> carriers;
+    for (const auto& r : sw.variants)
+        if (r.scene.tuner.layout == tuner_layout::bench) carriers.push_back(r.scene.am.carrier_peak_v);
+    // The generator's level sets what is comparable on the bench: a context per carrier level when they differ.
+    const bool by_carrier = carriers.size() == sw.variants.size() && std::adjacent_find(carriers.begin(), carriers.end(),
+                                                                                        std::not_equal_to<>()) != carriers.end();
     for (const auto& r : sw.variants) {
         double thd = std::numeric_limits<double>::quiet_NaN();
         if (r.metrics.contains("thd_percent") && r.metrics["thd_percent"].is_number()) thd = r.metrics["thd_percent"].get<double>();
         out.push_back(measure_listening(r.job.wav, r.spec.name, thd));
+        if (by_carrier) out.back().context = "at the " + format_quantity(r.scene.am.carrier_peak_v, unit::volt, 4, true) + " carrier";
     }
     return out;
 }

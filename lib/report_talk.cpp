@@ -19,6 +19,18 @@ double band_centre_hz(std::size_t i) { return 1000.0 * std::pow(10.0, (static_ca
 
 } // namespace
 
+std::size_t partner_of(const talk_data& d, std::size_t i)
+{
+    const std::size_t n = d.items.size();
+    const auto& ref = d.conclusions.reference_of;
+    if (n < 2) return i;
+    if (ref.size() != n) return i == 0 ? 1 : 0;
+    if (ref[i] != i) return ref[i];
+    for (std::size_t k = 1; k < n; ++k)  // the reference itself: the next variant of its context
+        if (ref[(i + k) % n] == i) return (i + k) % n;
+    return (i + 1) % n;
+}
+
 std::string talk_css()
 {
     return R"css(
@@ -86,7 +98,7 @@ std::string slide_svg(const talk_data& d, std::size_t i)
     const auto& m = d.measures;
     if (m.size() != d.items.size() || i >= m.size()) return {};
     const std::size_t n = m.size();
-    const std::size_t ref = d.conclusions.reference == i ? (n > 1 ? (i + 1) % n : i) : d.conclusions.reference;
+    const std::size_t ref = partner_of(d, i);
     const double row = 30.0, top = 56.0;
     const double height = std::max(300.0, top + row * static_cast<double>(n) + 50.0);
     std::string s = fmt::format("<svg xmlns=\"http://www.w3.org/2000/svg\" viewBox=\"0 0 1000 {:.0f}\" font-family=\"sans-serif\" "
@@ -184,7 +196,8 @@ std::string talk_script(const talk_data& d)
 {
     nlohmann::json j;
     j["seed"] = d.seed;
-    j["reference"] = d.conclusions.reference;
+    j["partners"] = nlohmann::json::array();
+    for (std::size_t i = 0; i < d.items.size(); ++i) j["partners"].push_back(partner_of(d, i));
     j["same_level_db"] = d.thresholds.same_level_db;
     j["spectral_jnd_db"] = d.thresholds.spectral_jnd_db;
     j["items"] = nlohmann::json::array();
@@ -211,7 +224,7 @@ std::string talk_script(const talk_data& d)
   // ---- presenter view ----
   const P = { open: false, i: 0, hearing: 'a', matched: false };
   const pa = $('p-audio-a'), pb = $('p-audio-b'), slides = Array.from(document.querySelectorAll('#presenter .slide'));
-  const partner = (i) => (i === D.reference ? (n > 1 ? (i + 1) % n : i) : D.reference);
+  const partner = (i) => D.partners[i];
   const src = (i, matched) => (matched && D.items[i].matched ? D.items[i].matched : D.items[i].wav);
   const active = () => (P.hearing === 'a' ? pa : pb);
   function setTime(el, t) {

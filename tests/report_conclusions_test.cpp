@@ -147,3 +147,18 @@ TEST_CASE("conclusions: equal levels but a different colour, all within 1 dB, no
     CHECK(has(c.sentences, "No variant distorts audibly (THD at or below 3 % wherever it was measured)."));
     CHECK(c.summaries[0] == "The reference the others are compared with; -20.0 dBFS RMS; THD 1.0 %.");
 }
+
+TEST_CASE("conclusions compare within a context only: the Schottky is quieter at the weak carrier, equal at the strong one")
+{
+    std::vector<listening_measure> m{flat("ge-weak", -48.0), flat("schottky-weak", -52.0, 2.0), flat("ge-strong", -28.0),
+                                     flat("schottky-strong", -28.4)};
+    m[0].context = m[1].context = "at the 150 mV carrier";
+    m[2].context = m[3].context = "at the 1.5 V carrier";
+    const auto c = conclude(m);
+    CHECK(has(c.sentences, "At the 150 mV carrier, schottky-weak is 4.0 dB quieter than ge-weak and brighter."));
+    CHECK(has(c.sentences, "At the 1.5 V carrier, ge-strong and schottky-strong sound the same (levels within 1 dB, same tone colour)."));
+    CHECK(c.reference_of == std::vector<std::size_t>{0, 0, 2, 2});
+    // Nothing compares the strong carrier with the weak one (20 dB apart).
+    for (const auto& s : c.sentences) CHECK(s.find("20.0 dB") == std::string::npos);
+    CHECK(c.summaries[3] == "Sounds the same as ge-strong (within 1 dB, same tone colour); -28.4 dBFS RMS.");
+}

@@ -30,6 +30,9 @@ struct listening_measure {
     double rms_dbfs = 0.0;                    ///< RMS of the level-consistent file, dB re full scale
     std::vector<double> band_db;              ///< band_levels_db of that file (same bands for every variant)
     double thd_percent = std::numeric_limits<double>::quiet_NaN(); ///< from the metrics when a tone was measured
+    /// What makes variants comparable ("at the 150 mV carrier"): conclusions compare variants of one context
+    /// only, and prefix their sentences with it. Empty: one context for the whole pack.
+    std::string context;
 };
 
 /// Thresholds of the conclusions and of the quiz note. The values are rules of thumb (common practice),
@@ -82,14 +85,17 @@ struct listening_conclusions {
     /// Groups of variants (indices, in variant order) that sound the same: every pair in a group is
     /// indistinguishable. Built greedily in variant order; single variants are groups of one.
     std::vector<std::vector<std::size_t>> groups;
-    std::size_t reference = 0;              ///< the variant others are described against (first of the largest group)
+    std::size_t reference = 0;              ///< the first context's reference (first variant of its largest group)
+    std::vector<std::size_t> reference_of;  ///< per variant: its context's reference, which it is described against
     std::vector<std::string> sentences;     ///< plain-language conclusions, the thresholds sentence last
     std::vector<std::string> summaries;     ///< one sentence per variant (the presenter view)
 };
 
-/// Conclusions from the measures (at least one). Sentences say which variants sound the same, how the
-/// others differ from the reference in level (dB, one decimal) and brightness, the loudest and quietest and
-/// their spread, and which distort audibly; every threshold used is stated in the last sentence.
+/// Conclusions from the measures. Within each context (in order of first appearance): which variants sound
+/// the same, how the others differ from the context's reference in level (dB, one decimal) and brightness.
+/// Then, over all: the loudest and quietest and their spread, and which distort audibly; every threshold
+/// used is stated in the last sentence. A context starts its sentence with a capital letter;
+/// names keep their own spelling.
 [[nodiscard]] listening_conclusions conclude(const std::vector<listening_measure>& m, const listening_thresholds& t = {});
 
 /// The measure of one WAV file (its level and band levels), named `name`. Throws audio_error.
@@ -97,7 +103,8 @@ struct listening_conclusions {
                                                   double thd_percent = std::numeric_limits<double>::quiet_NaN());
 
 /// measure_listening of every variant's level-consistent WAV, named by the variant, with its metrics'
-/// thd_percent (NaN where there is none). Throws audio_error.
+/// thd_percent (NaN where there is none); on the bench layout with differing generator levels, each
+/// variant's context is its carrier level. Throws audio_error.
 [[nodiscard]] std::vector<listening_measure> measure_listening(const sweep_result& sw);
 
 } // namespace galena

@@ -28,6 +28,9 @@ struct talk_data {
     std::uint32_t seed = 1;
 };
 
+/// The variant item i is compared with (B) in the presenter view: its context's reference, or for the
+/// reference itself the next variant of its context (else the next variant).
+[[nodiscard]] std::size_t partner_of(const talk_data& d, std::size_t i);
 /// CSS of the presenter overlay and the quiz.
 [[nodiscard]] std::string talk_css();
 /// The quiz section (heading, controls, players, answer, score), HTML.
