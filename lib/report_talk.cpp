@@ -100,7 +100,7 @@ std::string slide_svg(const talk_data& d, std::size_t i)
     const std::size_t n = m.size();
     const std::size_t ref = partner_of(d, i);
     const double row = 30.0, top = 56.0;
-    const double height = std::max(300.0, top + row * static_cast<double>(n) + 50.0);
+    const double height = std::max(320.0, top + row * static_cast<double>(n) + 100.0);
     std::string s = fmt::format("<svg xmlns=\"http://www.w3.org/2000/svg\" viewBox=\"0 0 1000 {:.0f}\" font-family=\"sans-serif\" "
                                 "role=\"img\" aria-label=\"levels and band spectrum of {}\">\n",
                                 height, html_escape(d.items[i].name));
@@ -110,19 +110,19 @@ std::string slide_svg(const talk_data& d, std::size_t i)
     lo = std::floor((lo - 3.0) / 10.0) * 10.0;
     hi = std::ceil((hi + 3.0) / 10.0) * 10.0;
     if (hi <= lo) hi = lo + 10.0;
-    const double x0 = 190.0, x1 = 470.0;
+    const double x0 = 270.0, x1 = 520.0;
     auto lx = [&](double v) { return x0 + (v - lo) / (hi - lo) * (x1 - x0); };
-    s += fmt::format("<text x=\"{:.0f}\" y=\"26\" font-size=\"22\" text-anchor=\"middle\">level, dBFS RMS</text>\n", (x0 + x1) / 2);
+    s += fmt::format("<text x=\"{:.0f}\" y=\"26\" font-size=\"24\" text-anchor=\"middle\">level, dBFS RMS</text>\n", (x0 + x1) / 2);
     const double y_axis = top + row * static_cast<double>(n);
     for (double t = lo; t <= hi + 1e-9; t += 10.0)
         s += fmt::format("<line x1=\"{0:.1f}\" x2=\"{0:.1f}\" y1=\"{1:.0f}\" y2=\"{2:.0f}\" stroke=\"#ccc\"/><text x=\"{0:.1f}\" y=\"{3:.0f}\" "
-                         "font-size=\"18\" text-anchor=\"middle\">{4:.0f}</text>\n",
+                         "font-size=\"20\" text-anchor=\"middle\">{4:.0f}</text>\n",
                          lx(t), top - 14.0, y_axis, y_axis + 24.0, t);
     for (std::size_t k = 0; k < n; ++k) {
         const double y = top + row * (static_cast<double>(k) + 0.5);
         const bool me = k == i, partner = k == ref && k != i;
         s += fmt::format("<text x=\"{:.0f}\" y=\"{:.1f}\" font-size=\"{}\" text-anchor=\"end\"{}>{}</text>\n", x0 - 12.0, y + 6.0,
-                         me ? 20 : 17, me ? " font-weight=\"bold\"" : "", html_escape(m[k].name));
+                         me ? 23 : 20, me ? " font-weight=\"bold\"" : "", html_escape(m[k].name));
         if (partner)
             s += fmt::format("<circle cx=\"{:.1f}\" cy=\"{:.1f}\" r=\"9\" fill=\"none\" stroke=\"{}\" stroke-width=\"3\"/>\n", lx(m[k].rms_dbfs), y,
                              ref_colour);
@@ -135,23 +135,23 @@ std::string slide_svg(const talk_data& d, std::size_t i)
     const auto& b = m[ref].band_db;
     const std::size_t nb = std::min(a.size(), b.size());
     if (nb >= 2) {
-        const double fx0 = 580.0, fx1 = 980.0, fy0 = top - 14.0, fy1 = y_axis;
+        const double fx0 = 640.0, fx1 = 985.0, fy0 = top - 14.0, fy1 = y_axis;
         double peak = -400.0;
         for (std::size_t k = 0; k < nb; ++k) peak = std::max({peak, a[k], b[k]});
         const double ytop = std::ceil((peak + 2.0) / 10.0) * 10.0, ybot = ytop - 60.0;
         const double f_lo = std::log10(band_centre_hz(0)), f_hi = std::log10(band_centre_hz(nb - 1));
         auto fx = [&](std::size_t k) { return fx0 + (std::log10(band_centre_hz(k)) - f_lo) / (f_hi - f_lo) * (fx1 - fx0); };
         auto fy = [&](double v) { return fy0 + (ytop - std::clamp(v, ybot, ytop)) / (ytop - ybot) * (fy1 - fy0); };
-        s += fmt::format("<text x=\"{:.0f}\" y=\"26\" font-size=\"22\" text-anchor=\"middle\">third-octave bands, dBFS</text>\n", (fx0 + fx1) / 2);
+        s += fmt::format("<text x=\"{:.0f}\" y=\"26\" font-size=\"24\" text-anchor=\"middle\">third-octave bands, dBFS</text>\n", (fx0 + fx1) / 2);
         for (double t = ybot; t <= ytop + 1e-9; t += 20.0)
             s += fmt::format("<line x1=\"{0:.0f}\" x2=\"{1:.0f}\" y1=\"{2:.1f}\" y2=\"{2:.1f}\" stroke=\"#ccc\"/><text x=\"{3:.0f}\" y=\"{4:.1f}\" "
-                             "font-size=\"18\" text-anchor=\"end\">{5:.0f}</text>\n",
+                             "font-size=\"20\" text-anchor=\"end\">{5:.0f}</text>\n",
                              fx0, fx1, fy(t), fx0 - 6.0, fy(t) + 6.0, t);
         for (std::size_t k = 0; k < nb; ++k) {
             const double f = band_centre_hz(k);
             const char* lab = std::abs(f / 100.0 - 1.0) < 0.02 ? "100 Hz" : std::abs(f / 1000.0 - 1.0) < 0.02 ? "1 kHz" : std::abs(f / 5011.9 - 1.0) < 0.02 ? "5 kHz" : nullptr;
             if (lab)
-                s += fmt::format("<text x=\"{:.1f}\" y=\"{:.0f}\" font-size=\"18\" text-anchor=\"middle\">{}</text>\n", fx(k), fy1 + 24.0, lab);
+                s += fmt::format("<text x=\"{:.1f}\" y=\"{:.0f}\" font-size=\"20\" text-anchor=\"middle\">{}</text>\n", fx(k), fy1 + 24.0, lab);
         }
         auto line = [&](const std::vector<double>& v, const char* colour, const char* extra) {
             std::string pts;
@@ -161,14 +161,14 @@ std::string slide_svg(const talk_data& d, std::size_t i)
         if (ref != i) s += line(b, ref_colour, " stroke-dasharray=\"10 6\"");
         s += line(a, this_colour, "");
         // Legend: the line styles carry the meaning as well as the colours.
-        const double ly = fy1 + 44.0;
+        const double ly = fy1 + 46.0;
         s += fmt::format("<line x1=\"{0:.0f}\" x2=\"{1:.0f}\" y1=\"{2:.0f}\" y2=\"{2:.0f}\" stroke=\"{3}\" stroke-width=\"4\"/>"
-                         "<text x=\"{4:.0f}\" y=\"{5:.0f}\" font-size=\"18\">A: {6}</text>\n",
+                         "<text x=\"{4:.0f}\" y=\"{5:.0f}\" font-size=\"20\">A: {6}</text>\n",
                          fx0, fx0 + 30.0, ly, this_colour, fx0 + 36.0, ly + 6.0, html_escape(m[i].name));
         if (ref != i)
             s += fmt::format("<line x1=\"{0:.0f}\" x2=\"{1:.0f}\" y1=\"{2:.0f}\" y2=\"{2:.0f}\" stroke=\"{3}\" stroke-width=\"4\" "
-                             "stroke-dasharray=\"10 6\"/><text x=\"{4:.0f}\" y=\"{5:.0f}\" font-size=\"18\">B: {6}</text>\n",
-                             fx0 + 200.0, fx0 + 230.0, ly, ref_colour, fx0 + 236.0, ly + 6.0, html_escape(m[ref].name));
+                             "stroke-dasharray=\"10 6\"/><text x=\"{4:.0f}\" y=\"{5:.0f}\" font-size=\"20\">B: {6}</text>\n",
+                             fx0, fx0 + 30.0, ly + 28.0, ref_colour, fx0 + 36.0, ly + 34.0, html_escape(m[ref].name));
     }
     return s + "</svg>";
 }
