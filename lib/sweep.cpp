@@ -644,4 +644,24 @@ void render_sweep(sweep_result& res, const fs::path& out_dir, const sweep_option
     write_text_atomic(res.markdown, table_markdown(res.variants));
 }
 
+std::string full_scale_text(const sweep_result& res)
+{
+    if (res.variants.empty()) return {};
+    double lo = std::numeric_limits<double>::infinity(), hi = 0.0, peak = 0.0;
+    bool all_auto = true;
+    for (const auto& r : res.variants) {
+        lo = std::min(lo, r.job.full_scale_v);
+        hi = std::max(hi, r.job.full_scale_v);
+        peak = std::max(peak, r.job.peak_audio_v);
+        all_auto = all_auto && r.job.full_scale_auto;
+    }
+    const std::string v = format_quantity(hi, unit::volt, 3, true);
+    if (lo != hi)
+        return fmt::format("full scale from {} to {} peak (set per variant in output.full_scale_v)", format_quantity(lo, unit::volt, 3, true), v);
+    const std::string headroom = peak > 0.0 ? fmt::format("headroom {:.1f} dB above the loudest peak", 20.0 * std::log10(hi / peak))
+                                            : std::string("all silent");
+    return fmt::format("full scale {} peak for every variant ({}; {})", v, all_auto ? "chosen automatically" : "output.full_scale_v",
+                       headroom);
+}
+
 } // namespace galena

@@ -311,8 +311,8 @@ TEST_CASE("levels: one automatic full scale for every variant with its headroom 
     // A weak and two stronger carriers: 20 dB and more apart at the earpiece.
     const auto res = run_sweep(fs::path(GALENA_SOURCE_DIR) / "scenarios/example.toml",
                                {"signal.carrier_hz=200k", "signal.duration_s=0.15", "output.full_scale_v=auto"},
-                               {{"weak", "", {"signal.carrier_peak_v=0.05"}}, {"mid", "", {"signal.carrier_peak_v=0.3"}},
-                                {"strong", "", {"signal.carrier_peak_v=1"}}},
+                               {{"weak", "", {"signal.carrier_peak_v=0.1"}, {}}, {"mid", "", {"signal.carrier_peak_v=0.3"}, {}},
+                                {"strong", "", {"signal.carrier_peak_v=1"}, {}}},
                                out, opt);
     REQUIRE(res.variants.size() == 3);
     const double fsv = res.variants[0].job.full_scale_v;
@@ -359,7 +359,7 @@ TEST_CASE("levels: an explicit full scale is kept, and a file below -60 dBFS RMS
     opt.threads = 1;
     const auto res = run_sweep(fs::path(GALENA_SOURCE_DIR) / "scenarios/example.toml",
                                {"signal.carrier_hz=200k", "signal.duration_s=0.15", "output.full_scale_v=2"},
-                               {{"weak", "", {"signal.carrier_peak_v=0.01"}}}, out, opt);
+                               {{"weak", "", {"signal.carrier_peak_v=0.01"}, {}}}, out, opt);
     const auto& r = res.variants.front();
     CHECK(r.job.full_scale_v == 2.0);
     CHECK_FALSE(r.metrics.at("full_scale_auto").get<bool>());

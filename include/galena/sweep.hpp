@@ -145,6 +145,10 @@ void render_sweep(sweep_result& res, const std::filesystem::path& dir, const swe
 /// Rewrites the result's paths from the staging folder to their published places.
 void relocate(sweep_result& res, const staged_output& staged);
 
+/// One line for a person about the calibration of a sweep's WAVs: "full scale 500 mV peak for every
+/// variant (chosen automatically; headroom 7.3 dB above the loudest peak)", or the explicit value(s).
+[[nodiscard]] std::string full_scale_text(const sweep_result& res);
+
 /// Table columns: key names of the metrics (in this order) shown in the CSV and Markdown tables.
 [[nodiscard]] const std::vector<std::string>& table_columns();
 /// The columns instead when any variant is a whole receiver (tuner.layout other than bench): the front
