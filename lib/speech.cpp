@@ -63,7 +63,10 @@ std::string whole_words(unsigned long long n)
             n %= size;
         }
     }
-    if (n > 0) t += (t.empty() ? "" : " ") + below_thousand(static_cast<unsigned>(n));
+    if (n > 0) {
+        if (!t.empty()) t += ' ';
+        t += below_thousand(static_cast<unsigned>(n));
+    }
     return t;
 }
 
@@ -144,6 +147,8 @@ std::string spoken_quantity(double value, std::string_view unit_word)
     if (std::isinf(value)) return "none";
     if (std::isnan(value)) return "not a number";
     if (value == 0.0) return "zero" + unit;
+    // A plain number below a thousand is read as a number ("zero point three"), not with a prefix.
+    if (unit_word.empty() && std::fabs(value) < 1000.0) return spoken_number(std::stod(fmt::format("{:.4g}", value)));
     static constexpr std::array<std::string_view, 8> prefixes{"pico", "nano", "micro", "milli", "", "k", "mega", "giga"};
     int e3 = static_cast<int>(std::floor(std::log10(std::fabs(value)) / 3.0)) * 3;
     e3 = std::clamp(e3, -12, 9);
@@ -267,7 +272,12 @@ std::string speakable_label(std::string_view label)
             }
             continue;
         }
-        if (c == ',' || c == ';' || c == '=' || c == ':' || c == '(' || c == ')' || c == '/') punct(',');
+        // A dot between two words joins a section and a key ("load.bleeder_ohm"): a space.
+        const bool joining_dot = c == '.' && i > 0 && i + 1 < n && is_word_byte(label[i - 1]) &&
+                                 std::isalpha(static_cast<unsigned char>(label[i + 1])) != 0;
+        if (joining_dot) {
+            if (!out.empty() && out.back() != ' ') out += ' ';
+        } else if (c == ',' || c == ';' || c == '=' || c == ':' || c == '(' || c == ')' || c == '/') punct(',');
         else if (c == '.' || c == '!' || c == '?') punct('.');
         else if (c == '-' || c == ' ' || c == '\t' || c == '+' || c == '.') {
             if (!out.empty() && out.back() != ' ') out += ' ';

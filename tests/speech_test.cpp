@@ -112,9 +112,10 @@ spread measure_spread(const std::vector<float>& x, std::size_t from, std::size_t
 /// Speech as the test means it. The long-term average speech spectrum spreads its energy over the whole
 /// 250-4000 Hz range within some 20-30 dB (Byrne et al., "An international comparison of long-term average
 /// speech spectra", J. Acoust. Soc. Am. 96(4), 1994; from memory). A tone puts nearly all of it in one band.
-/// Thresholds: at least 6 of 10 bands within 30 dB of the strongest, no band above 60 % of the energy, and
-/// a spectral flatness above 0.01 (a windowed sine measures below 1e-4 here; measured speech 0.05-0.2).
-bool speech_like(const spread& s) { return s.bands_within_30db >= 6 && s.strongest_share < 0.6 && s.flatness > 0.01; }
+/// Thresholds: at least 8 of 10 bands within 30 dB of the strongest, no band above 45 % of the energy, and
+/// a spectral flatness above 0.1. Measured here: espeak-ng's announcements 10 bands, share 0.19-0.27,
+/// flatness 0.26-0.41; the 880 Hz tone code 2 bands, share 0.99, flatness 3e-9.
+bool speech_like(const spread& s) { return s.bands_within_30db >= 8 && s.strongest_share < 0.45 && s.flatness > 0.1; }
 
 std::vector<fs::path> write_items(const fs::path& d, double fs, const std::vector<double>& amp, double seconds)
 {
@@ -156,6 +157,7 @@ TEST_CASE("numbers and quantities in words")
     CHECK(spoken_quantity(1e6, "hertz") == "one mega hertz");
     CHECK(spoken_quantity(2.2e5, "ohm") == "two hundred twenty k ohm");
     CHECK(spoken_quantity(0.3, "") == "zero point three");
+    CHECK(spoken_quantity(47000.0, "") == "forty-seven k");
     CHECK(spoken_quantity(1e-3, "volt") == "one milli volt");
     CHECK(spoken_quantity(999.96, "hertz") == "one k hertz");
     CHECK(spoken_quantity(std::numeric_limits<double>::infinity(), "ohm") == "none");
