@@ -196,10 +196,38 @@ std::string speakable_label(std::string_view label)
                 while (j < n && std::isdigit(static_cast<unsigned char>(label[j])) != 0) ++j;
             }
             const double v = std::strtod(std::string(label.substr(i, j - i)).c_str(), nullptr);
+            // A fraction of small whole numbers ("tap 1/2"): "one half", "one quarter", "two over three".
+            if (j + 1 < n && label[j] == '/' && std::isdigit(static_cast<unsigned char>(label[j + 1])) != 0 && v == std::floor(v)) {
+                std::size_t q = j + 1;
+                while (q < n && std::isdigit(static_cast<unsigned char>(label[q])) != 0) ++q;
+                const double den = std::strtod(std::string(label.substr(j + 1, q - j - 1)).c_str(), nullptr);
+                const bool plural = v != 1.0;
+                std::string t;
+                if (den == 2.0) t = fmt::format("{} half{}", spoken_number(v), plural ? "s" : "");
+                else if (den == 4.0) t = fmt::format("{} quarter{}", spoken_number(v), plural ? "s" : "");
+                else t = fmt::format("{} over {}", spoken_number(v), spoken_number(den));
+                emit(t);
+                i = q;
+                continue;
+            }
             // What is attached: prefix + unit, unit, or prefix.
             std::size_t k = j;
             while (k < n && is_word_byte(label[k])) ++k;
-            const std::string_view suffix = label.substr(j, k - j);
+            std::string_view suffix = label.substr(j, k - j);
+            // A unit after one space ("105.2 pF", "47 kΩ") belongs to the number too.
+            if (suffix.empty() && j + 1 < n && label[j] == ' ') {
+                std::size_t e = j + 1;
+                while (e < n && is_word_byte(label[e])) ++e;
+                const std::string_view next = label.substr(j + 1, e - j - 1);
+                bool is_unit = !unit_word_of(next).empty();
+                for (std::size_t plen : {std::size_t{1}, std::size_t{2}})
+                    if (!is_unit && next.size() > plen && prefix_factor(next.substr(0, plen)) != 0.0 && !unit_word_of(next.substr(plen)).empty())
+                        is_unit = true;
+                if (is_unit) {
+                    suffix = next;
+                    k = e;
+                }
+            }
             double factor = 1.0;
             std::string unit = pending_unit;
             bool understood = suffix.empty();

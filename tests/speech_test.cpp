@@ -173,6 +173,9 @@ TEST_CASE("labels are made readable aloud: values with their units, key names wi
     CHECK(speakable_label("10nF filter, 1MHz carrier, m = 0.3") == "ten nano farad filter, one mega hertz carrier, m, zero point three");
     CHECK(speakable_label("diode.preset = germanium-point-contact") == "diode preset, germanium point contact");
     CHECK(speakable_label("carrier_peak_v = 1m") == "carrier peak, one milli volt");
+    CHECK(speakable_label("coupling k = 0.028 (near critical), tap 1/2") == "coupling k, zero point zero two eight, near critical, tap one half");
+    CHECK(speakable_label("detector on 1/4 of the turns, dial 105.2 pF") == "detector on one quarter of the turns, dial one hundred five point two pico farad");
+    CHECK(speakable_label("3/4 and 2/3, 47 kΩ, 5 min") == "three quarters and two over three, forty-seven k ohm, five min");
 }
 
 TEST_CASE("the spoken playlist: speech in each announcement, programme where playlist.csv says, steps above 10 dB faded in")
