@@ -341,15 +341,10 @@ double choose_full_scale_v(double peak_v)
 {
     if (!(peak_v > 0.0) || !std::isfinite(peak_v)) return 1.0;
     const double need = peak_v * std::pow(10.0, auto_headroom_db / 20.0);
-    double decade = std::pow(10.0, std::floor(std::log10(need)));
-    for (;;) {
-        for (double step : {1.0, 2.0, 5.0}) {
-            const double v = step * decade;
-            // A relative tolerance so that an exact 1-2-5 value is itself chosen despite rounding in pow.
-            if (v >= need * (1.0 - 1e-12)) return std::clamp(v, 1e-9, 1e4);
-        }
-        decade *= 10.0;
-    }
+    // Rounded up to two significant digits, so the calibration reads as a short number (0.14 V, 2.7 mV).
+    const double unit = std::pow(10.0, std::floor(std::log10(need)) - 1.0);
+    const double v = std::ceil(need / unit * (1.0 - 1e-12)) * unit;
+    return std::clamp(std::stod(fmt::format("{:.2g}", v)), 1e-9, 1e4);
 }
 
 job_outcome render_job_unscaled(const scenario& s, const fs::path& out_dir, const job_options& opt, double analysis_limit_s)

@@ -301,9 +301,8 @@ std::pair<double, double> wav_rms_peak(const fs::path& p)
 TEST_CASE("levels: one automatic full scale for every variant with its headroom stated, no file below -60 dBFS, matched copies")
 {
     // dBFS here is 20 log10 of the RMS of the samples, full scale = 1 (a full-scale sine reads -3.01 dBFS;
-    // AES17 would add 3.01 dB). The 1-2-5 series is the common-practice round-number sequence of
-    // instrument ranges; the rule (smallest 1-2-5 value at least 6 dB above the loudest peak) is restated
-    // here on the WAVs' own samples.
+    // AES17 would add 3.01 dB). The rule (the loudest peak + 1 dB, rounded up to two significant digits;
+    // -1 dBFS peaks are common mastering practice) is restated here on the WAVs' own samples.
     const fs::path out = fs::path(GALENA_TEST_TMP) / "sweep-levels";
     fs::remove_all(out);
     sweep_options opt;
@@ -331,13 +330,12 @@ TEST_CASE("levels: one automatic full scale for every variant with its headroom 
         CHECK_FALSE(has_warning(r.warnings, warning_code::quiet_output));
         CHECK_FALSE(has_warning(r.warnings, warning_code::output_clipped));
     }
-    // The headroom: at least 6 dB, and the next smaller 1-2-5 value would have left less than 6 dB.
+    // The headroom: at least 1 dB, and one step less in the second significant digit would leave less.
     const double headroom = 20.0 * std::log10(fsv / loudest_v);
-    CHECK(headroom >= 6.0 - 0.01);
-    const double mant = fsv / std::pow(10.0, std::floor(std::log10(fsv) + 1e-9));
-    CHECK((std::fabs(mant - 1.0) < 1e-9 || std::fabs(mant - 2.0) < 1e-9 || std::fabs(mant - 5.0) < 1e-9));
-    const double smaller = std::fabs(mant - 1.0) < 1e-9 ? 0.5 * fsv : std::fabs(mant - 2.0) < 1e-9 ? 0.5 * fsv : 0.4 * fsv;
-    CHECK(20.0 * std::log10(smaller / loudest_v) < 6.0);
+    CHECK(headroom >= 1.0 - 0.01);
+    const double step = std::pow(10.0, std::floor(std::log10(fsv)) - 1.0);
+    CHECK(std::fabs(fsv / step - std::round(fsv / step)) < 1e-6); // two significant digits
+    CHECK(20.0 * std::log10((fsv - step) / loudest_v) < 1.0);
     const auto& strong = res.variants[2];
     CHECK(strong.metrics.at("headroom_db").get<double>() == doctest::Approx(headroom).epsilon(1e-3).scale(0));
     // Loudness-matched copies, as a pack has: every copy at -26 dBFS RMS (peaks permitting).

@@ -28,15 +28,17 @@ inline constexpr double long_render_limit_steps = 3.84e9;
 
 struct job_outcome;
 
-/// Headroom of the automatic full scale above the loudest peak of a command's renders, dB (at least).
-inline constexpr double auto_headroom_db = 6.0;
+/// Headroom of the automatic full scale above the loudest peak of a command's renders, dB (at least): the
+/// loudest peak lands at -1 dBFS or a little below, as in the normalised copy and the matched set.
+inline constexpr double auto_headroom_db = 1.0;
 /// A written WAV whose RMS lies below this, dBFS, raises a quiet_output warning (sine peak 0 dBFS = -3.01 dBFS).
 inline constexpr double quiet_output_dbfs = -60.0;
 
 /// The automatic full scale for renders whose loudest peak is `peak_v` (V, after fades): the smallest value
-/// of the 1-2-5 series (..., 0.1, 0.2, 0.5, 1, 2, ...) V at least auto_headroom_db above it, so the headroom
-/// is 6 to 14 dB and the calibration reads as a round number. 1 V for a silent render; clamped to
-/// [1e-9, 1e4] V, the range output.full_scale_v accepts.
+/// with two significant digits (0.14, 0.15, ..., 2.7 V) at least auto_headroom_db above it, so the headroom
+/// is 1 to 1.9 dB and the calibration reads as a short number. Every render is known before any WAV is
+/// written, so nothing can jump to full scale. 1 V for a silent render; clamped to [1e-9, 1e4] V, the
+/// range output.full_scale_v accepts.
 [[nodiscard]] double choose_full_scale_v(double peak_v);
 
 /// Options of a job.
