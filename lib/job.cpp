@@ -560,10 +560,13 @@ std::string summary_text(const job_outcome& o, const scenario& s)
         return o.metrics[key].get<double>();
     };
     auto volts = [](double v) { return format_quantity(v, unit::volt, 3, true); };
-    std::string t = fmt::format("wrote {}: {:.3g} s, {} {}, full scale {} peak\n", o.wav.string(),
+    std::string t = fmt::format("wrote {}: {:.3g} s, {} {}, full scale {} peak{}\n", o.wav.string(),
                                 static_cast<double>(o.render.samples) / o.render.audio_rate_hz,
                                 format_quantity(o.render.audio_rate_hz, unit::hertz, 4, true), to_string(s.output.format),
-                                volts(o.full_scale_v));
+                                volts(o.full_scale_v),
+                                o.full_scale_auto && std::isfinite(o.headroom_db)
+                                    ? fmt::format(" (chosen automatically: {:.1f} dB above the peak; {:.1f} dBFS RMS)", o.headroom_db, o.rms_dbfs)
+                                    : std::string());
     if (const auto rms = number("audio_rms_v")) {
         t += fmt::format("level: {} rms", volts(*rms));
         if (const auto a = number("a_weighted_dbv")) t += fmt::format(" ({:.1f} dBV A-weighted)", *a);
