@@ -220,7 +220,11 @@ const std::map<std::string, std::map<std::string, key_entry>>& key_table()
                                               return;
                                           }
                                       }
-                                      s.output.full_scale_v = as_number(n, f, w, unit::volt);
+                                      try {
+                                          s.output.full_scale_v = as_number(n, f, w, unit::volt);
+                                      } catch (const config_error& e) {
+                                          throw config_error(std::string(e.what()) + ", or \"auto\" (the default: chosen from the loudest peak)");
+                                      }
                                   },
                                   unit::volt, [](scenario& s) -> double& { return s.output.full_scale_v; })},
              {"format", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
