@@ -133,10 +133,9 @@ struct receiver::impl {
     std::optional<am_source> src;
     std::optional<detail::audio_chain> chain;
     std::unique_ptr<engine> eng;
-    biquad dc_block = biquad::butterworth_highpass(10.0, 48000.0);
-    bool dc_settled = false;
-    std::size_t total = 0, skip = 0, cycles_total = 0, cycles_per_chunk = 1;
-    std::size_t next_cycle = 0, produced = 0, delivered = 0;
+    detail::programme_delivery delivery;
+    std::size_t total = 0, cycles_total = 0, cycles_per_chunk = 1;
+    std::size_t next_cycle = 0;
     std::vector<double> raw;
     std::vector<double> ready_e, ready_a; // delivered to the queue, not yet handed out
     std::size_t ready_pos = 0;             // first queued sample not yet handed out
@@ -229,13 +228,12 @@ void receiver::impl::start()
     chain.emplace(fs, fc, audio_chain_warm_up_s(fs));
     total = static_cast<std::size_t>(std::llround(programme->duration_s() * fs));
     // Chain output n is simulated time n / fs; programme sample m is simulated time preroll + m / fs.
-    skip = static_cast<std::size_t>(std::llround(am.preroll_s * fs));
+    const auto skip = static_cast<std::size_t>(std::llround(am.preroll_s * fs));
     const double t_end = am.preroll_s + static_cast<double>(total) / fs + chain->latency_s() + 4.0 / fs;
     cycles_total = static_cast<std::size_t>(std::ceil(t_end * fc));
     cycles_per_chunk = std::max<std::size_t>(1, static_cast<std::size_t>(std::llround(s.chunk_s * fc)));
-    dc_block = biquad::butterworth_highpass(s.dc_block_hz, fs);
-    dc_settled = false;
-    next_cycle = produced = delivered = handed_out = ready_pos = 0;
+    delivery = detail::programme_delivery(skip, total, fs, s.dc_block_hz);
+    next_cycle = handed_out = ready_pos = 0;
     raw.clear();
     ready_e.clear();
     ready_a.clear();
@@ -267,20 +265,7 @@ void receiver::impl::run_chunk()
     eng->advance(c0, c1, *chain, raw);
     next_cycle = c1;
     // The chain's new outputs, programme-aligned, with the DC removed.
-    for (double v : raw) {
-        const std::size_t n = produced++;
-        if (n < skip || delivered >= total) continue;
-        if (!std::isfinite(v))
-            throw integration_error(fmt::format("the earpiece voltage became non-finite near t = {:.9g} s", tb), tb);
-        if (!dc_settled) {
-            dc_block.settle_to(v);
-            dc_settled = true;
-        }
-        ready_e.push_back(v);
-        ready_a.push_back(dc_block.process(v));
-        ++delivered;
-    }
-    raw.clear();
+    delivery.deliver(raw, tb, ready_e, ready_a);
 }
 
 receiver::receiver(const circuit_params& circuit, const am_params& am, modulation& programme, const render_settings& settings)
@@ -304,7 +289,7 @@ audio_block receiver::process(std::size_t max_samples)
         m.ready_e.clear();
         m.ready_a.clear();
         m.ready_pos = 0;
-        while (m.ready_e.empty() && m.next_cycle < m.cycles_total && m.delivered < m.total) {
+        while (m.ready_e.empty() && m.next_cycle < m.cycles_total && !m.delivery.complete()) {
             m.token.throw_if_requested();
             m.run_chunk();
         }
@@ -340,7 +325,7 @@ void receiver::set_progress(std::function<void(double)> progress) { m_impl->prog
 bool receiver::finished() const noexcept
 {
     const impl& m = *m_impl;
-    return m.ready_pos == m.ready_e.size() && (m.delivered >= m.total || m.next_cycle >= m.cycles_total);
+    return m.ready_pos == m.ready_e.size() && (m.delivery.complete() || m.next_cycle >= m.cycles_total);
 }
 
 std::size_t receiver::total_samples() const noexcept { return m_impl->total; }
@@ -352,8 +337,8 @@ render_result receiver::result() const
     m.eng->report(res);
     res.samples = m.handed_out;
     res.wall_s = m.wall_s;
-    if (finished() && m.delivered < m.total)
-        res.warnings.push_back({warning_code::samples_missing, fmt::format("only {} of {} samples were produced", m.delivered, m.total)});
+    if (finished() && !m.delivery.complete())
+        res.warnings.push_back({warning_code::samples_missing, fmt::format("only {} of {} samples were produced", m.delivery.delivered(), m.total)});
     return res;
 }
 

@@ -127,11 +127,9 @@ render_result render_receiver(const receiver_spec& spec, const render_settings& 
     const auto cycles_per_chunk = std::max<std::size_t>(1, static_cast<std::size_t>(std::llround(s.chunk_s * fc)));
     const auto preroll_cycles = static_cast<std::size_t>(std::ceil(preroll * fc));
 
-    biquad dc_block = biquad::butterworth_highpass(s.dc_block_hz, fs);
-    bool dc_settled = false;
+    detail::programme_delivery delivery(preroll_samples, total, fs, s.dc_block_hz);
     std::vector<double> raw, block_e, block_a;
-    std::size_t produced = 0, delivered = 0;
-    for (std::size_t c0 = 0; c0 < cycles_total && delivered < total; c0 += cycles_per_chunk) {
+    for (std::size_t c0 = 0; c0 < cycles_total && !delivery.complete(); c0 += cycles_per_chunk) {
         const std::size_t c1 = std::min(cycles_total, c0 + cycles_per_chunk);
         const double tb = static_cast<double>(c1) * period;
         for (const auto& st : spec.stations)
@@ -146,27 +144,15 @@ render_result render_receiver(const receiver_spec& spec, const render_settings& 
         }
         block_e.clear();
         block_a.clear();
-        const std::size_t first = delivered;
-        for (double v : raw) {
-            const std::size_t n = produced++;
-            if (n < preroll_samples || delivered >= total) continue;
-            if (!std::isfinite(v))
-                throw integration_error(fmt::format("the earpiece voltage became non-finite near t = {:.9g} s", tb), tb);
-            if (!dc_settled) {
-                dc_block.settle_to(v);
-                dc_settled = true;
-            }
-            block_e.push_back(v);
-            block_a.push_back(dc_block.process(v));
-            ++delivered;
-        }
-        raw.clear();
+        const std::size_t first = delivery.delivered();
+        delivery.deliver(raw, tb, block_e, block_a);
         if (!block_e.empty()) sink(audio_block{first, block_e, block_a});
     }
     const rf_stats& st = ig.stats();
     res.stats.accepted = st.steps;
     res.stats.newton_iterations = st.newton_iterations;
     res.simulated_s = ig.time_s();
+    const std::size_t delivered = delivery.delivered();
     res.samples = delivered;
     // Front-end figures with the detector's measured loading at the wanted carrier.
     fig.detector_rf_peak_v = ig.output_peak(det_k);

@@ -56,8 +56,9 @@ void send_error(httplib::Response& res, int status, const std::string& message)
     send_json(res, status, {{"error", detail::one_line(message)}});
 }
 
-/// Cancellation of one render, the one interface the session manager uses. Today it drives the render job's
-/// per-render stop flag (job_options::stop); the process-wide flag (Ctrl-C) is polled by the job as well.
+/// Cancellation of one render, the one interface the session manager uses: the render job's own
+/// cancel_token (job_options::cancel) with the reason it was asked; the job polls the process-wide flag
+/// (Ctrl-C) as well.
 class render_control {
 public:
     enum class reason : int { none = 0, superseded, timed_out, shutting_down };
@@ -65,15 +66,15 @@ public:
     {
         int expected = 0;
         m_reason.compare_exchange_strong(expected, static_cast<int>(r));
-        m_stop.store(true);
+        m_token.request();
     }
-    [[nodiscard]] bool cancelled() const noexcept { return m_stop.load(); }
+    [[nodiscard]] bool cancelled() const noexcept { return m_token.requested(); }
     [[nodiscard]] reason why() const noexcept { return static_cast<reason>(m_reason.load()); }
     /// Renders `s` into the existing folder `dir`; stops with cancelled_error once cancelled or past `timeout_s`.
     job_outcome render(const scenario& s, const fs::path& dir, double timeout_s)
     {
         job_options opt;
-        opt.stop = &m_stop;
+        opt.cancel = &m_token;
         const auto deadline = clock_type::now() + std::chrono::duration_cast<clock_type::duration>(std::chrono::duration<double>(timeout_s));
         opt.progress = [this, deadline](double) {
             if (clock_type::now() > deadline) cancel(reason::timed_out);
@@ -82,7 +83,7 @@ public:
     }
 
 private:
-    std::atomic<bool> m_stop{false};
+    cancel_token m_token;
     std::atomic<int> m_reason{0};
 };
 
@@ -562,6 +563,47 @@ struct workbench::impl {
         }
     }
 
+    /// Stores an upload's bytes as `<prefix><n>.<ext>` in the session's uploads folder, checks it with
+    /// `check(file)` (which throws http_refusal 400 with its reason; the file is then removed), and keeps
+    /// the last opt.max_uploads of its kind (`next` numbers them, `kept` lists them). Returns n.
+    template <typename Check>
+    unsigned store_upload(session& sess, const std::string& body, unsigned session::*next, std::deque<unsigned> session::*kept,
+                          const char* prefix, const char* ext, Check&& check)
+    {
+        unsigned n = 0;
+        {
+            std::lock_guard lock(mutex);
+            n = (sess.*next)++;
+        }
+        const fs::path folder = sess.dir / "uploads";
+        const auto name = [&](unsigned k) { return folder / fmt::format("{}{}.{}", prefix, k, ext); };
+        std::error_code ec;
+        fs::create_directories(folder, ec);
+        const fs::path file = name(n);
+        {
+            std::ofstream out(file, std::ios::binary | std::ios::trunc);
+            out.write(body.data(), static_cast<std::streamsize>(body.size()));
+            if (!out) {
+                fs::remove(file, ec);
+                throw http_refusal(500, "upload: cannot store the file");
+            }
+        }
+        try {
+            check(file);
+        } catch (...) {
+            fs::remove(file, ec);
+            throw;
+        }
+        std::lock_guard lock(mutex);
+        std::deque<unsigned>& list = sess.*kept;
+        list.push_back(n);
+        while (list.size() > std::max<std::size_t>(opt.max_uploads, 1)) {
+            fs::remove(name(list.front()), ec);
+            list.pop_front();
+        }
+        return n;
+    }
+
     void upload_handler(const httplib::Request& req, httplib::Response& res)
     {
         if (req.body.size() > opt.max_upload_bytes)
@@ -569,39 +611,15 @@ struct workbench::impl {
         if (req.body.empty()) throw http_refusal(400, "upload: the body is empty; send the WAV file's bytes");
         const auto held = lease(req);
         session& sess = *held->s;
-        unsigned n = 0;
-        {
-            std::lock_guard lock(mutex);
-            n = sess.next_upload++;
-        }
-        const fs::path folder = sess.dir / "uploads";
-        std::error_code ec;
-        fs::create_directories(folder, ec);
-        const fs::path file = folder / fmt::format("u{}.wav", n);
-        {
-            std::ofstream out(file, std::ios::binary | std::ios::trunc);
-            out.write(req.body.data(), static_cast<std::streamsize>(req.body.size()));
-            if (!out) {
-                fs::remove(file, ec);
-                throw http_refusal(500, "upload: cannot store the file");
-            }
-        }
         double seconds = 0.0;
-        try {
-            const wav_reader r(file);
-            seconds = static_cast<double>(r.frames()) / r.sample_rate_hz();
-        } catch (const std::exception& e) {
-            fs::remove(file, ec);
-            throw http_refusal(400, fmt::format("upload: not an audio file that can be read: {}", e.what()));
-        }
-        {
-            std::lock_guard lock(mutex);
-            sess.uploads.push_back(n);
-            while (sess.uploads.size() > std::max<std::size_t>(opt.max_uploads, 1)) {
-                fs::remove(folder / fmt::format("u{}.wav", sess.uploads.front()), ec);
-                sess.uploads.pop_front();
+        const unsigned n = store_upload(sess, req.body, &session::next_upload, &session::uploads, "u", "wav", [&](const fs::path& file) {
+            try {
+                const wav_reader r(file);
+                seconds = static_cast<double>(r.frames()) / r.sample_rate_hz();
+            } catch (const std::exception& e) {
+                throw http_refusal(400, fmt::format("upload: not an audio file that can be read: {}", e.what()));
             }
-        }
+        });
         send_json(res, 200, {{"clip", fmt::format("upload:{}", n)}, {"seconds", seconds}, {"session", sess.id}});
     }
 
@@ -612,34 +630,14 @@ struct workbench::impl {
             throw http_refusal(413, fmt::format("diode file: {} bytes, more than the {}-byte limit", req.body.size(), opt.max_body_bytes));
         const auto held = lease(req);
         session& sess = *held->s;
-        unsigned n = 0;
-        {
-            std::lock_guard lock(mutex);
-            n = sess.next_diode++;
-        }
-        const fs::path folder = sess.dir / "uploads";
-        std::error_code ec;
-        fs::create_directories(folder, ec);
-        const fs::path file = folder / fmt::format("d{}.toml", n);
-        {
-            std::ofstream out(file, std::ios::binary | std::ios::trunc);
-            out.write(req.body.data(), static_cast<std::streamsize>(req.body.size()));
-        }
         std::string name;
-        try {
-            name = load_scenario(opt.base_scenario, {"diode.file=" + toml_string(file.string())}).circuit.diode.name;
-        } catch (const config_error& e) {
-            fs::remove(file, ec);
-            throw http_refusal(400, fmt::format("diode file: {}", e.what()));
-        }
-        {
-            std::lock_guard lock(mutex);
-            sess.diode_uploads.push_back(n);
-            while (sess.diode_uploads.size() > std::max<std::size_t>(opt.max_uploads, 1)) {
-                fs::remove(folder / fmt::format("d{}.toml", sess.diode_uploads.front()), ec);
-                sess.diode_uploads.pop_front();
+        const unsigned n = store_upload(sess, req.body, &session::next_diode, &session::diode_uploads, "d", "toml", [&](const fs::path& file) {
+            try {
+                name = load_scenario(opt.base_scenario, {"diode.file=" + toml_string(file.string())}).circuit.diode.name;
+            } catch (const config_error& e) {
+                throw http_refusal(400, fmt::format("diode file: {}", e.what()));
             }
-        }
+        });
         send_json(res, 200, {{"diode", fmt::format("upload:d{}", n)}, {"name", name}, {"session", sess.id}});
     }
 

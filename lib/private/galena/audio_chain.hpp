@@ -3,9 +3,12 @@
 #pragma once
 
 #include "galena/dsp.hpp"
+#include "galena/error.hpp"
 
 #include <algorithm>
+#include <cmath>
 #include <cstddef>
+#include <fmt/format.h>
 #include <vector>
 
 namespace galena::detail {
@@ -61,6 +64,50 @@ private:
     double m_latency_s;
     double m_warm_up_s;
     std::vector<double> m_fine;
+};
+
+/// The chain's outputs handed to the programme, shared by the receiver and render_receiver: drops the
+/// outputs before the programme starts (the preroll), stops at the programme's length, refuses a non-finite
+/// value, and removes the DC with a Butterworth high-pass settled on the first delivered value (so the
+/// earpiece's bias does not ring through the filter).
+class programme_delivery {
+public:
+    programme_delivery() = default;
+    /// @param skip chain outputs before the programme's first sample; @param total programme samples;
+    /// @param fs audio rate, Hz; @param dc_block_hz the high-pass corner, Hz
+    programme_delivery(std::size_t skip, std::size_t total, double fs, double dc_block_hz)
+        : m_dc_block(biquad::butterworth_highpass(dc_block_hz, fs)), m_skip(skip), m_total(total)
+    {
+    }
+
+    /// Moves the programme's share of `raw` (then cleared) to `out_e` (earpiece voltage, V) and `out_a`
+    /// (the same with the DC removed, V). @param t_s simulated time at the end of `raw`, s (for the message)
+    void deliver(std::vector<double>& raw, double t_s, std::vector<double>& out_e, std::vector<double>& out_a)
+    {
+        for (double v : raw) {
+            const std::size_t n = m_produced++;
+            if (n < m_skip || m_delivered >= m_total) continue;
+            if (!std::isfinite(v))
+                throw integration_error(fmt::format("the earpiece voltage became non-finite near t = {:.9g} s", t_s), t_s);
+            if (!m_dc_settled) {
+                m_dc_block.settle_to(v);
+                m_dc_settled = true;
+            }
+            out_e.push_back(v);
+            out_a.push_back(m_dc_block.process(v));
+            ++m_delivered;
+        }
+        raw.clear();
+    }
+
+    [[nodiscard]] std::size_t delivered() const noexcept { return m_delivered; }
+    [[nodiscard]] std::size_t total() const noexcept { return m_total; }
+    [[nodiscard]] bool complete() const noexcept { return m_delivered >= m_total; }
+
+private:
+    biquad m_dc_block = biquad::butterworth_highpass(10.0, 48000.0);
+    bool m_dc_settled = false;
+    std::size_t m_skip = 0, m_total = 0, m_produced = 0, m_delivered = 0;
 };
 
 } // namespace galena::detail
