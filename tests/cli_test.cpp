@@ -276,6 +276,14 @@ TEST_CASE("compare: the pack page opens in headless Chromium with its players an
     // The pack's own playlist: the segment boundaries hold the variants' WAVs (16-bit, written twice).
     const auto segs = read_playlist_table(d / "pack/playlist.csv");
     REQUIRE(segs.size() == 2);
+    // Level rules of the pack's playlist (automatic full scale, the default): every item above -60 dBFS RMS,
+    // no neighbour step above 10 dB without a fade; items spoken when espeak-ng is there.
+    const bool speech = std::system("command -v espeak-ng > /dev/null 2>&1") == 0;
+    for (const auto& s : segs) {
+        CHECK(s.rms_dbfs > -60.0);
+        CHECK((s.fade_in_s > 0.0) == (std::fabs(s.step_db) > 10.0));
+        CHECK(s.spoken == speech);
+    }
     const auto pl = read_mono(d / "pack/playlist.wav");
     for (const auto& s : segs) {
         const auto x = read_mono(d / "pack" / s.name / "recovered.wav");
