@@ -252,6 +252,8 @@ state_space network::assemble() const
     }
     state_space ss;
     ss.port_linear_capacitance_f = m_port_c;
+    ss.basis = td;
+    ss.charge = e * td;
     if (nd > 0) {
         const Eigen::FullPivLU<Eigen::MatrixXd> lu1(e11);
         if (!lu1.isInvertible())
@@ -341,6 +343,17 @@ double network::dc_resistance_ohm(node_id a, node_id b) const
 {
     const double r = impedance(a, b, 0.0).real();
     return r > 1e11 ? std::numeric_limits<double>::infinity() : r;
+}
+
+Eigen::VectorXd carry_charge(const state_space& from, const Eigen::VectorXd& x, const state_space& to)
+{
+    if (from.charge.rows() != to.basis.rows() || from.charge.cols() != x.size() || to.basis.cols() != to.charge.cols())
+        throw config_error(fmt::format("carry_charge: networks with {} and {} unknowns ({} and {} states) are not the same circuit",
+                                       from.charge.rows(), to.basis.rows(), from.charge.cols(), to.charge.cols()));
+    if (to.basis.cols() == 0) return Eigen::VectorXd(0);
+    const Eigen::VectorXd q = from.charge * x;
+    const Eigen::MatrixXd e11 = to.basis.transpose() * to.charge;
+    return e11.partialPivLu().solve(to.basis.transpose() * q);
 }
 
 std::vector<double> time_constants_s(const state_space& ss)

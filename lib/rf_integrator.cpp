@@ -34,7 +34,28 @@ rf_integrator::rf_integrator(const state_space& ss, int input, const junction_la
     m_block = std::min(m_n, max_block_steps);
     m_c_lin = ss.port_linear_capacitance_f;
     m_charge = junction.cj0_f > 0.0;
+    for (std::size_t s = 0; s < stations.size(); ++s) {
+        m_ratio.push_back(stations.station(s).params().carrier_hz / reference_hz);
+        m_wh.push_back(two_pi * stations.station(s).params().carrier_hz * m_h);
+    }
+    set_network(ss, input);
     const int n = ss.states();
+    m_env.assign(4 * stations.size(), 0.0);
+    for (int k = 1; k <= m_n; ++k) m_ref_phasor.push_back(std::polar(1.0, -two_pi * static_cast<double>(k) / m_n));
+    m_prev.assign(static_cast<std::size_t>(m_n), phase_point{});
+    m_x = Eigen::VectorXd::Zero(n);
+    m_z = Eigen::VectorXd::Zero(n + 8 * static_cast<Eigen::Index>(stations.size()));
+    m_jb = Eigen::VectorXd::Zero(m_block + 1);
+    m_free = Eigen::VectorXd::Zero(m_block);
+    m_y = Eigen::VectorXd::Zero(m_block);
+}
+
+void rf_integrator::set_network(const state_space& ss, int input)
+{
+    if (input < 0 || input >= ss.b.cols()) throw config_error(fmt::format("rf_integrator: input {} does not exist", input));
+    const int n = ss.states();
+    m_w0.clear();
+    m_w1.clear();
     // Augmented exponential for the junction current, linear over the step: [A b_j 0; 0 0 1/h; 0 0 0].
     {
         Eigen::MatrixXd m = Eigen::MatrixXd::Zero(n + 2, n + 2);
@@ -49,8 +70,8 @@ rf_integrator::rf_integrator(const state_space& ss, int input, const junction_la
         m_g1 = gam1;
     }
     // Per station: [A B 0; 0 jw 1; 0 0 jw] gives W0 and W1 (see the header).
-    for (std::size_t s = 0; s < stations.size(); ++s) {
-        const double w = two_pi * stations.station(s).params().carrier_hz;
+    for (std::size_t s = 0; s < m_src->size(); ++s) {
+        const double w = two_pi * m_src->station(s).params().carrier_hz;
         Eigen::MatrixXcd m = Eigen::MatrixXcd::Zero(n + 2, n + 2);
         m.topLeftCorner(n, n) = ss.a.cast<std::complex<double>>();
         m.block(0, n, n, 1) = ss.b.col(input).cast<std::complex<double>>();
@@ -60,8 +81,6 @@ rf_integrator::rf_integrator(const state_space& ss, int input, const junction_la
         const Eigen::MatrixXcd e = (m * std::complex<double>(m_h, 0.0)).exp();
         m_w0.emplace_back(e.block(0, n, n, 1));
         m_w1.emplace_back(e.block(0, n + 1, n, 1));
-        m_ratio.push_back(stations.station(s).params().carrier_hz / reference_hz);
-        m_wh.push_back(w * m_h);
     }
     // The port, and the state after a whole block and after the cycle's last (possibly shorter) block.
     m_port = tabulate(ss.port_c, Eigen::VectorXd::Constant(1, ss.port_d(input)), Eigen::VectorXd::Constant(1, ss.port_dj), m_block, false);
@@ -70,14 +89,22 @@ rf_integrator::rf_integrator(const state_space& ss, int input, const junction_la
     m_end = tabulate(eye, zero, zero, m_block, true);
     const int last = m_n - (m_n - 1) / m_block * m_block;
     m_end_last = last == m_block ? m_end : tabulate(eye, zero, zero, last, true);
-    m_env.assign(4 * stations.size(), 0.0);
-    for (int k = 1; k <= m_n; ++k) m_ref_phasor.push_back(std::polar(1.0, -two_pi * static_cast<double>(k) / m_n));
-    m_prev.assign(static_cast<std::size_t>(m_n), phase_point{});
-    m_x = Eigen::VectorXd::Zero(n);
-    m_z = Eigen::VectorXd::Zero(n + 8 * static_cast<Eigen::Index>(stations.size()));
-    m_jb = Eigen::VectorXd::Zero(m_block + 1);
-    m_free = Eigen::VectorXd::Zero(m_block);
-    m_y = Eigen::VectorXd::Zero(m_block);
+}
+
+void rf_integrator::retune(const state_space& ss, int input, const Eigen::VectorXd& x, std::span<const output_row> outputs)
+{
+    if (ss.states() != m_x.size() || x.size() != m_x.size())
+        throw config_error(fmt::format("rf_integrator::retune: a network of {} states and a state of {} entries for an integrator of {}",
+                                       ss.states(), x.size(), m_x.size()));
+    if (outputs.size() != m_outs.size())
+        throw config_error(fmt::format("rf_integrator::retune: {} output rows for {} outputs", outputs.size(), m_outs.size()));
+    if (ss.port_linear_capacitance_f != m_c_lin)
+        throw config_error("rf_integrator::retune: the junction's linear capacitance changed");
+    set_network(ss, input);
+    for (std::size_t o = 0; o < outputs.size(); ++o)
+        m_outs[o] = tabulate(outputs[o].c, Eigen::VectorXd::Constant(1, outputs[o].d_u), Eigen::VectorXd::Constant(1, outputs[o].d_j),
+                             m_block, false);
+    m_x = x;
 }
 
 rf_integrator::row_tables rf_integrator::tabulate(const Eigen::MatrixXd& c, const Eigen::VectorXd& d_u, const Eigen::VectorXd& d_j,

@@ -25,6 +25,12 @@ import time
 
 # (file, exact text that occurs once, replacement, what the fault means)
 MUTANTS = [
+    ("lib/network.cpp", "return e11.partialPivLu().solve(to.basis.transpose() * q);", "(void)q; (void)e11; return x;",
+     "a moved capacitor keeps its voltage (C dv/dt), not its charge"),
+    ("lib/dial.cpp", "p.tuned_hz = dial_frequency(path, tuning, t_centre);", "p.tuned_hz = dial_frequency(path, tuning, t_centre + 1e-3);",
+     "dial trace: the dial position recorded 1 ms late"),
+    ("lib/dial.cpp", "p.level_v.push_back(2.0 * std::hypot(acc_re[k], acc_im[k]) / wsum);",
+     "p.level_v.push_back(1.9 * std::hypot(acc_re[k], acc_im[k]) / wsum);", "dial trace: station level 5 % low"),
     ("lib/components.cpp", "std::exp((ratio - 1.0) * energy_gap_ev / nvt)", "std::exp(-(ratio - 1.0) * energy_gap_ev / nvt)",
      "band-gap term of Is(T) with the wrong sign"),
     ("lib/components.cpp", "std::pow(ratio, saturation_current_exponent / emission_coefficient)",

@@ -1,6 +1,7 @@
 // galena command-line tool: argument parsing and exit codes only; all work is done by the library.
 #include "galena/cancel.hpp"
 #include "galena/components.hpp"
+#include "galena/dial_report.hpp"
 #include "galena/diode_report.hpp"
 #include "galena/error.hpp"
 #include "galena/job.hpp"
@@ -268,6 +269,32 @@ int main(int argc, char** argv)
     demo->add_flag("--overwrite", overwrite, "replace existing output files");
     demo->add_flag("--quiet,-q", quiet, "no progress output");
 
+    // Turning the dial (issue 16).
+    std::string dl_scenario, dl_band, dl_out, dl_law = "frequency";
+    std::vector<std::string> dl_sets;
+    double dl_from = 0.0, dl_to = 0.0, dl_glide = 0.0, dl_dwell = -1.0, dl_retune = 2e-3, dl_window = 8e-3;
+    bool dl_stops = false;
+    int dl_steps = 32;
+    auto* dial = app.add_subcommand("dial", "sweep a set's tuning capacitor across a band: DIR/dial.wav, dial map, band survey");
+    dial->add_option("scenario", dl_scenario, "a whole-receiver scenario (single-coil or coupled; its stations are replaced)")->required();
+    dial->add_option("--band,-b", dl_band, "band file: [band], [dial], [[station]] (e.g. scenarios/demo-band.toml)")->required();
+    dial->add_option("--out,-o", dl_out, "output directory")->required();
+    dial->add_option("--set,-s", dl_sets, "override the scenario: section.key=value (repeatable)");
+    dial->add_option("--from", dl_from, "start of the glide, Hz (band file's [dial] unless given)")->transform(engineering(galena::unit::hertz));
+    dial->add_option("--to", dl_to, "end of the glide, Hz")->transform(engineering(galena::unit::hertz));
+    dial->add_option("--glide", dl_glide, "length of the glide (or of each glide between stops), s")->transform(engineering(galena::unit::second));
+    dial->add_option("--law", dl_law, "frequency (tuned frequency linear in time) or capacitance (capacitor linear in time)")
+        ->check(CLI::IsMember({"frequency", "capacitance"}));
+    dial->add_flag("--stop-on-stations", dl_stops, "dwell on every station's carrier, gliding between them");
+    dial->add_option("--dwell", dl_dwell, "time on each stop, s (with --stop-on-stations)")->transform(engineering(galena::unit::second));
+    dial->add_option("--retune-interval", dl_retune, "simulated time between capacitor updates, s")
+        ->capture_default_str()->transform(engineering(galena::unit::second));
+    dial->add_option("--level-window", dl_window, "each station's level is measured over windows of this length, s")
+        ->capture_default_str()->transform(engineering(galena::unit::second));
+    dial->add_option("--steps-per-cycle", dl_steps, "steps per cycle of the highest dial frequency (even, 8-4096)")->capture_default_str();
+    dial->add_flag("--overwrite", overwrite, "replace existing output files");
+    dial->add_flag("--quiet,-q", quiet, "no progress output");
+
     // Measured diodes (issue 15): fit-diode and rank-diodes.
     std::string fd_points, fd_out;
     std::optional<double> fd_temperature;
@@ -367,6 +394,37 @@ int main(int argc, char** argv)
             fmt::print("{}\nwrote {}, {} and {}\n", galena::ranking_markdown(o), o.csv.string(), o.markdown.string(), o.pack.page.string());
             std::fflush(stdout);
             for (const auto& w : o.pack.warnings) std::fprintf(stderr, "galena: warning: %s\n", w.message.c_str());
+            return exit_ok;
+        }
+        if (*dial) {
+            galena::dial_job_options dopt;
+            dopt.overwrite = overwrite;
+            dopt.retune_interval_s = dl_retune;
+            dopt.level_window_s = dl_window;
+            dopt.steps_per_cycle = dl_steps;
+            galena::dial_path path = galena::load_band(dl_band).dial;
+            const bool any = dl_from > 0.0 || dl_to > 0.0 || dl_glide > 0.0 || dl_dwell >= 0.0 || dl_stops || dial->count("--law") > 0;
+            if (dl_from > 0.0) path.start_hz = dl_from;
+            if (dl_to > 0.0) path.end_hz = dl_to;
+            if (dl_glide > 0.0) path.glide_s = dl_glide;
+            if (dl_dwell >= 0.0) path.dwell_s = dl_dwell;
+            if (dial->count("--law") > 0) path.law = dl_law == "capacitance" ? galena::dial_law::capacitance : galena::dial_law::frequency;
+            if (dl_stops && path.stops_hz.empty()) {
+                for (const auto& st : galena::load_band(dl_band).stations) path.stops_hz.push_back(st.params.carrier_hz);
+                std::sort(path.stops_hz.begin(), path.stops_hz.end());
+                if (dl_glide <= 0.0) path.glide_s = 1.0;
+            }
+            if (any) dopt.path = path;
+            bool drew = false;
+            dopt.progress = render_progress(quiet, drew);
+            const auto o = galena::run_dial_job(dl_scenario, dl_sets, dl_band, dl_out, dopt);
+            if (drew && isatty(fileno(stderr)) != 0) std::fprintf(stderr, "\n");
+            fmt::print("{}", galena::survey_markdown(o.survey, galena::load_band(dl_band).title));
+            fmt::print("\nswept {:.1f} s of dial in {:.1f} s wall ({:.2f} s per simulated s; {} retunes took {:.2f} s); wrote {}\n",
+                       o.dial.simulated_s, o.dial.wall_s, o.dial.wall_s / o.dial.simulated_s, o.dial.retunes, o.dial.retune_wall_s,
+                       o.wav.string());
+            std::fflush(stdout);
+            for (const auto& w : o.warnings) std::fprintf(stderr, "galena: warning: %s\n", w.message.c_str());
             return exit_ok;
         }
         if (*check) {

@@ -36,6 +36,11 @@ struct state_space {
     /// Capacitance the network itself places across the port, F (the linear part of the junction's charge
     /// that network::set_junction was given); the integrator adds only q(v) - C_lin v as nonlinear charge.
     double port_linear_capacitance_f = 0.0;
+    /// T_d: the MNA unknowns (node voltages, inductor currents, source currents) per unit of each state.
+    Eigen::MatrixXd basis;
+    /// E T_d: the charge (C) on each node's capacitors and the flux (Wb) of each inductor per unit of each
+    /// state (source rows zero). basis^T charge is the states' capacitance and inductance matrix E11.
+    Eigen::MatrixXd charge;
 
     [[nodiscard]] int states() const noexcept { return static_cast<int>(a.rows()); }
     /// Row of C (with D and d_j) for node n; node 0 (ground) is all zeros.
@@ -126,6 +131,13 @@ private:
     node_id m_cathode = -1;
     double m_port_c = 0.0;
 };
+
+/// The state of network `to` that holds the same node charges and inductor fluxes as state `x` of network
+/// `from`: the two are the same circuit with different element values (a tuning capacitor turned), and at
+/// the instant of the change every node's charge and every coil's flux is conserved (the current into a
+/// capacitor is d(C v)/dt: charge, not voltage, is continuous when C jumps). Solves
+/// E11_to x_to = basis_to^T (charge_from x). Throws config_error when the two have different unknowns.
+[[nodiscard]] Eigen::VectorXd carry_charge(const state_space& from, const Eigen::VectorXd& x, const state_space& to);
 
 /// Eigenvalues of A turned into time constants -1/Re(lambda), s, slowest first (modes with Re >= 0 skipped).
 [[nodiscard]] std::vector<double> time_constants_s(const state_space& ss);

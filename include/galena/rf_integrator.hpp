@@ -90,6 +90,19 @@ public:
     /// Adds an output: a linear combination of the state, the EMF and the junction current (e.g. a node
     /// voltage: ss.node_c(n), ss.node_d(n)(input), ss.node_dj(n)). Returns its index.
     int add_output(const Eigen::RowVectorXd& c, double d_u, double d_j);
+    /// An output's row: value = c x + d_u u + d_j j (see add_output).
+    struct output_row {
+        Eigen::RowVectorXd c;
+        double d_u = 0.0;
+        double d_j = 0.0;
+    };
+    /// Replaces the network between two cycles by another with the same states (the same circuit with other
+    /// element values: a tuning capacitor turned), continuing from state `x` of the new network (carry_charge
+    /// maps the old state so that charges are conserved) with the junction, time, envelope and outputs'
+    /// running values kept. `outputs` gives every added output's row in the new network, in add_output order.
+    /// Re-tabulates everything (about one matrix exponential per station plus the block tables: measured in
+    /// DEVELOPERS.md), so call it every many cycles, not every cycle. Throws config_error on a mismatch.
+    void retune(const state_space& ss, int input, const Eigen::VectorXd& x, std::span<const output_row> outputs);
     /// Mean of output k over the last cycle (trapezoidal rule over its N + 1 step values), V.
     [[nodiscard]] double output_mean(int k) const noexcept { return m_out_mean[static_cast<std::size_t>(k)]; }
     /// Largest |value| of output k at a step end since the last reset_peaks(), V.
@@ -119,6 +132,8 @@ private:
     };
     /// Tables of the rows c (with d_u, d_j) at every local step end 1..length (c one row), or, with
     /// last_only, of every row of c at step end `length` only.
+    /// Discretises `ss` (step exponentials, the stations' W0 and W1, the port and end-state tables).
+    void set_network(const state_space& ss, int input);
     [[nodiscard]] row_tables tabulate(const Eigen::MatrixXd& c, const Eigen::VectorXd& d_u, const Eigen::VectorXd& d_j,
                                       int length, bool last_only) const;
     [[nodiscard]] double envelope_at_cycle(std::size_t station, long long c) const noexcept;
