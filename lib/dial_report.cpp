@@ -3,6 +3,7 @@
 #include "galena/audio_io.hpp"
 #include "galena/cancel.hpp"
 #include "galena/error.hpp"
+#include "galena/job.hpp"
 #include "galena/report_plots.hpp"
 #include "galena/staged_output.hpp"
 #include "galena/text_table.hpp"
@@ -168,15 +169,17 @@ dial_outcome run_dial_into(const scenario& s, const band_spec& band, const fs::p
     }
     o.survey = band_survey(o.dial);
     o.wav = dir / "dial.wav";
-    transcode(raw_path, o.wav, fs, s.output.format, s.output.full_scale_v, 1e3);
-    if (o.peak_audio_v > s.output.full_scale_v) {
-        const double gain = s.output.full_scale_v * std::pow(10.0, -1.0 / 20.0) / o.peak_audio_v;
+    // output.full_scale_v = "auto" (0, the default): chosen from this sweep's own peak (job.hpp).
+    const double full_scale_v = s.output.full_scale_v == 0.0 ? choose_full_scale_v(o.peak_audio_v) : s.output.full_scale_v;
+    transcode(raw_path, o.wav, fs, s.output.format, full_scale_v, 1e3);
+    if (o.peak_audio_v > full_scale_v) {
+        const double gain = full_scale_v * std::pow(10.0, -1.0 / 20.0) / o.peak_audio_v;
         o.normalised_wav = dir / "dial-normalised.wav";
-        transcode(raw_path, o.normalised_wav, fs, s.output.format, s.output.full_scale_v, 1e3 * gain);
+        transcode(raw_path, o.normalised_wav, fs, s.output.format, full_scale_v, 1e3 * gain);
         o.warnings.push_back({warning_code::output_clipped,
                               fmt::format("the sweep's audio peaks at {:.3g} V, above the {:.3g} V full scale; dial-normalised.wav is a "
                                           "copy with {:.1f} dB gain",
-                                          o.peak_audio_v, s.output.full_scale_v, 20.0 * std::log10(gain))});
+                                          o.peak_audio_v, full_scale_v, 20.0 * std::log10(gain))});
     }
     write_text_atomic(dir / "dial-map.csv", dial_map_csv(o.dial));
     write_text_atomic(dir / "survey.csv", survey_csv(o.survey));
