@@ -89,6 +89,31 @@ TEST_CASE("pack text: every mistake names the file and line")
     CHECK(p.variants[0].overrides == std::vector<std::string>{"load.bleeder_ohm=1e3"});
 }
 
+TEST_CASE("pack text: band sweeps ([[dial_sweep]]) with their file and line")
+{
+    const std::string head = "[pack]\nscenario = \"a.toml\"\n[[variant]]\nname = \"v\"\n";
+    const auto p = parse_pack(head + "[[dial_sweep]]\nname = \"d\"\nband = \"b.toml\"\nfrom_hz = \"960k\"\nto_hz = \"1.03MHz\"\n"
+                                     "glide_s = 2\nset = [\"tuner.coupling=0.02\"]\n",
+                              "dir/p.toml");
+    REQUIRE(p.dial_sweeps.size() == 1);
+    const auto& d = p.dial_sweeps[0];
+    CHECK(d.label == "d");
+    CHECK(d.band == fs::path("dir/b.toml"));
+    CHECK(d.start_hz == 960e3);
+    CHECK(d.end_hz == 1.03e6);
+    CHECK(d.glide_s == 2.0);
+    CHECK(d.overrides == std::vector<std::string>{"tuner.coupling=0.02"});
+    CHECK(p.variants.size() == 1); // the variants are kept beside the sweep
+    CHECK_THROWS_WITH_AS(parse_pack(head + "[[dial_sweep]]\nname = \"d\"\nband = \"b.toml\"\nspeed = 2\n", "p.toml"),
+                         doctest::Contains("p.toml:9: dial_sweep 1: speed: unknown key"), config_error);
+    CHECK_THROWS_WITH_AS(parse_pack(head + "[[dial_sweep]]\nname = \"d\"\nband = \"b.toml\"\nfrom_hz = \"96k\"\n", "p.toml"),
+                         doctest::Contains("p.toml:9: from_hz = 96000: must be in [100 kHz, 30 MHz]"), config_error);
+    CHECK_THROWS_WITH_AS(parse_pack(head + "[[dial_sweep]]\nname = \"d\"\n", "p.toml"),
+                         doctest::Contains("dial_sweep 1: band: missing"), config_error);
+    CHECK_THROWS_WITH_AS(parse_pack(head + "[[dial_sweep]]\nname = \"d\"\nband = \"b.toml\"\n[[dial_sweep]]\nname = \"d\"\nband = \"b.toml\"\n", "p.toml"),
+                         doctest::Contains("name = \"d\": used twice"), config_error);
+}
+
 TEST_CASE("engineering values in axes, labels and pack files; the pack's default measurement tone")
 {
     // log: ranges and lists take prefixes and the key's unit; labels and names write them back.

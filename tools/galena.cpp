@@ -489,6 +489,7 @@ int main(int argc, char** argv)
                 po.sweep.measure_duration_s = cmp_tone_s_opt->count() > 0 ? cmp_tone_s : pack.measure_duration_s;
                 po.note = fmt::format("Made by galena from {}.", input.filename().string());
                 po.protect.push_back(input);
+                galena::add_pack_dial_sweeps(po, pack, sets);
             } else {
                 base = input;
                 variants = collect_variants(cmp_vary, cmp_variants);
