@@ -254,7 +254,9 @@ void add_pack_dial_sweeps(pack_options& po, const pack_spec& pack, const std::ve
     po.extra_outputs.push_back("dial");
     auto before = po.extras;
     po.extras = [before, sweeps, opt](sweep_result& sw, const fs::path& dir) {
-        std::string html = before ? before(sw, dir) : std::string();
+        pack_extras extra = before ? before(sw, dir) : pack_extras();
+        std::string& html = extra.html;
+        const scenario* calibration = sw.variants.empty() ? nullptr : &sw.variants.front().scene;
         html += "<h2 id=\"dial\">Turning the dial</h2>\n<p>The set's tuning capacitor turned across a band of invented stations "
                 "(charge kept as the capacitor moves). The map shows the tuned frequency and each station's level at the detector; "
                 "the survey says which stations the set separates (the strongest other station at least " +
@@ -265,7 +267,14 @@ void add_pack_dial_sweeps(pack_options& po, const pack_spec& pack, const std::ve
             fs::create_directories(sub);
             dial_job_options o = opt;
             o.path = p.path;
-            const dial_outcome out = run_dial_into(p.scene, p.band, sub, o);
+            // The variants' calibration (their common full scale, automatic or set), so that the sweep joins the
+            // level-consistent playlist at its true level.
+            scenario scene = p.scene;
+            if (calibration != nullptr) scene.output.full_scale_v = calibration->output.full_scale_v;
+            const dial_outcome out = run_dial_into(scene, p.band, sub, o);
+            const bool joins = calibration != nullptr && out.normalised_wav.empty() &&
+                               scene.render.audio_rate_hz == calibration->render.audio_rate_hz && scene.output.format == calibration->output.format;
+            if (joins) extra.playlist_items.push_back({out.wav, "dial-" + p.spec.name, p.spec.label});
             const std::string rel = "dial/" + p.spec.name + "/";
             html += fmt::format("<h3>{}</h3>\n<p>{:.0f} to {:.0f} kHz in {:.3g} s.</p>\n<audio controls preload=\"none\" src=\"{}\"></audio>\n",
                                 html_escape(p.spec.label), p.path.start_hz / 1e3, p.path.end_hz / 1e3, p.path.duration_s(),
@@ -284,8 +293,10 @@ void add_pack_dial_sweeps(pack_options& po, const pack_spec& pack, const std::ve
                                     r.separated ? "yes" : "no");
             html += "</table>\n";
             for (const auto& w : out.warnings) html += "<p class=\"warn\">" + html_escape(w.message) + "</p>\n";
+            html += joins ? "<p>It closes both playlists, at the variants' calibration.</p>\n"
+                          : "<p>It is not in the playlists: its audio rate, format or level does not fit the variants' calibration.</p>\n";
         }
-        return html;
+        return extra;
     };
 }
 

@@ -42,14 +42,20 @@ pack_outcome make_pack(const fs::path& base_file, const std::vector<std::string>
     o.playlist_csv = dir / "playlist.csv";
     with_described_errors(staged, [&] {
         render_sweep(o.sweep, dir, opt.sweep);
-        std::string extra_html;
-        if (opt.extras) extra_html = opt.extras(o.sweep, dir);
+        pack_extras extra;
+        if (opt.extras) extra = opt.extras(o.sweep, dir);
+        std::string extra_html = std::move(extra.html);
         std::vector<fs::path> wavs;
         std::vector<std::string> names, labels;
         for (const auto& r : vs) {
             wavs.push_back(r.job.wav);
             names.push_back(r.spec.name);
             labels.push_back(r.spec.label);
+        }
+        for (const auto& it : extra.playlist_items) {
+            wavs.push_back(it.wav);
+            names.push_back(it.name);
+            labels.push_back(it.label);
         }
         const wav_format fmt_ = vs[0].scene.output.format;
         throw_if_cancelled();
