@@ -251,11 +251,11 @@ void add_pack_dial_sweeps(pack_options& po, const pack_spec& pack, const std::ve
             if (!st.audio.empty()) po.protect.push_back(st.audio);
         sweeps->push_back(std::move(p));
     }
-    po.extra_outputs.push_back("dial");
+    po.extra_outputs.push_back("dial/");
     auto before = po.extras;
     po.extras = [before, sweeps, opt](sweep_result& sw, const fs::path& dir) {
         pack_extras extra = before ? before(sw, dir) : pack_extras();
-        std::string& html = extra.html;
+        std::string& html = extra.section_html;
         const scenario* calibration = sw.variants.empty() ? nullptr : &sw.variants.front().scene;
         html += "<h2 id=\"dial\">Turning the dial</h2>\n<p>The set's tuning capacitor turned across a band of invented stations "
                 "(charge kept as the capacitor moves). The map shows the tuned frequency and each station's level at the detector; "

@@ -33,6 +33,10 @@ pack_outcome make_pack(const fs::path& base_file, const std::vector<std::string>
     staged.owns("matched");
     staged.owns("plots");
     for (const auto& f : opt.extra_outputs) {
+        if (!f.empty() && f.back() == '/') { // a folder of the output set (like plots/)
+            staged.owns(f.substr(0, f.size() - 1));
+            continue;
+        }
         staged.check(f);
         staged.owns(f);
     }
@@ -74,6 +78,7 @@ pack_outcome make_pack(const fs::path& base_file, const std::vector<std::string>
         page.title = opt.title;
         page.note = opt.note;
         page.extra_html = extra_html;
+        page.section_html = std::move(extra.section_html);
         page.dir = dir;
         page.sweep = &o.sweep;
         page.playlist = o.playlist;

@@ -128,6 +128,7 @@ std::string render_page(const pack_page& p)
                  segment_table(p.playlist, true);
         }
     }
+    h += p.section_html;
     h += detail::quiz_html(talk);
     h += "<h2>Variants</h2>\n<table><tr><th>#</th><th class=l>variant</th><th class=l>label</th><th>level-consistent</th>";
     if (!p.matched.empty()) h += "<th>loudness-matched</th><th>gain, dB</th>";

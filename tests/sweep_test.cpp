@@ -105,9 +105,9 @@ TEST_CASE("pack text: band sweeps ([[dial_sweep]]) with their file and line")
     CHECK(d.overrides == std::vector<std::string>{"tuner.coupling=0.02"});
     CHECK(p.variants.size() == 1); // the variants are kept beside the sweep
     CHECK_THROWS_WITH_AS(parse_pack(head + "[[dial_sweep]]\nname = \"d\"\nband = \"b.toml\"\nspeed = 2\n", "p.toml"),
-                         doctest::Contains("p.toml:9: dial_sweep 1: speed: unknown key"), config_error);
+                         doctest::Contains("p.toml:8: dial_sweep 1: speed: unknown key"), config_error);
     CHECK_THROWS_WITH_AS(parse_pack(head + "[[dial_sweep]]\nname = \"d\"\nband = \"b.toml\"\nfrom_hz = \"96k\"\n", "p.toml"),
-                         doctest::Contains("p.toml:9: from_hz = 96000: must be in [100 kHz, 30 MHz]"), config_error);
+                         doctest::Contains("p.toml:8: from_hz = 96000: must be in [100 kHz, 30 MHz]"), config_error);
     CHECK_THROWS_WITH_AS(parse_pack(head + "[[dial_sweep]]\nname = \"d\"\n", "p.toml"),
                          doctest::Contains("dial_sweep 1: band: missing"), config_error);
     CHECK_THROWS_WITH_AS(parse_pack(head + "[[dial_sweep]]\nname = \"d\"\nband = \"b.toml\"\n[[dial_sweep]]\nname = \"d\"\nband = \"b.toml\"\n", "p.toml"),

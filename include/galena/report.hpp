@@ -24,7 +24,8 @@ struct pack_extra_item {
 
 /// What a pack's extras give the pack: HTML for the page (under the note) and playlist items.
 struct pack_extras {
-    std::string html;
+    std::string html;                           ///< under the note
+    std::string section_html;                   ///< after the playlists
     std::vector<pack_extra_item> playlist_items;
     pack_extras() = default;
     pack_extras(std::string h) : html(std::move(h)) {} // NOLINT(google-explicit-constructor): extras may return HTML only
@@ -41,7 +42,7 @@ struct pack_options {
     /// Optional: called after the variants are rendered with the sweep and the staging folder, before the
     /// page is written; what it writes there is published with the pack, the HTML it returns goes on the
     /// page under the note, and its playlist items follow the variants in both playlists. `extra_outputs`
-    /// (relative names) are checked for clashes before rendering.
+    /// (relative names; a name ending in '/' is a folder) are checked for clashes before rendering.
     std::function<pack_extras(sweep_result&, const std::filesystem::path& staged_dir)> extras;
     std::vector<std::string> extra_outputs;
 };

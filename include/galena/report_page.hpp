@@ -31,6 +31,7 @@ struct pack_page {
     std::vector<std::string> plot_stems;        ///< SVGs in dir/plots, inlined
     std::string note;                           ///< free text under the title
     std::string extra_html;                     ///< HTML placed under the note (e.g. a ranking); trusted
+    std::string section_html;                   ///< HTML placed after the playlists (e.g. band sweeps); trusted
 };
 
 /// The page as HTML, in this order: title and note, plain-language conclusions (from `listening`), the
