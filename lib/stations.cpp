@@ -62,14 +62,22 @@ double quiet_rural_noise_field_density() noexcept
 }
 
 band_noise::band_noise(double density, double half_band_hz, std::uint64_t seed)
-    : m_density(density), m_half_band(half_band_hz), m_rate(2.0 * half_band_hz), m_seed(seed)
+    : m_density(density), m_half_band(half_band_hz), m_seed(seed)
 {
     detail::require_range("noise density", density, 0.0, 1e3, "V per sqrt(Hz)");
     detail::require_above("noise half band", half_band_hz, 0.0, 1e9, "Hz");
-    // White samples of variance 1 at rate B through a unit-DC-gain interpolator: two-sided density 1/B.
-    m_scale = density * std::sqrt(m_rate);
     static const std::shared_ptr<const std::vector<double>> kernel = make_kernel();
     m_kernel = kernel;
+    // White samples of variance 1 at rate r through a unit-DC-gain interpolator k: two-sided density 1/r in
+    // the pass band, variance int k^2 (in sample units; 1 for the ideal sinc). The rate is chosen so that the
+    // noise-equivalent width r int k^2 is B: variance D^2 B exactly, pass-band density D^2.
+    static const double energy = [] {
+        double e = 0.0;
+        for (double v : *kernel) e += v * v;
+        return e / kernel_table_per_unit;
+    }();
+    m_rate = 2.0 * half_band_hz / energy;
+    m_scale = density * std::sqrt(m_rate);
 }
 
 double band_noise::gaussian(std::uint64_t seed, long long n, int channel) noexcept
@@ -84,6 +92,17 @@ double band_noise::gaussian(std::uint64_t seed, long long n, int channel) noexce
 std::complex<double> band_noise::envelope(double t) const noexcept
 {
     if (m_density == 0.0) return {};
+    // The integrator asks for each cycle boundary four times (cycles c-1 .. c+2 of cycle c): keep the last few.
+    for (const auto& [tm, v] : m_recent)
+        if (tm == t) return v;
+    const std::complex<double> v = evaluate(t);
+    m_recent[m_next] = {t, v};
+    m_next = (m_next + 1) % m_recent.size();
+    return v;
+}
+
+std::complex<double> band_noise::evaluate(double t) const noexcept
+{
     const double x = t * m_rate;
     const double fl = std::floor(x);
     const auto n0 = static_cast<long long>(fl);

@@ -5,10 +5,12 @@
 
 #include "galena/signal.hpp"
 
+#include <array>
 #include <complex>
 #include <cstdint>
 #include <memory>
 #include <string>
+#include <utility>
 #include <variant>
 #include <vector>
 
@@ -44,11 +46,12 @@ struct antenna_noise_params {
 
 /// Band-limited Gaussian noise as a complex envelope I(t) + j Q(t) around a carrier: EMF =
 /// Re((I + jQ) e^{j w t}) = I cos(w t) - Q sin(w t). I and Q are independent, each white Gaussian samples
-/// at the rate B = 2 x half_band (seeded counter-based generator: sample n of the I or Q channel depends only
-/// on the seed and n) interpolated by a Kaiser-windowed sinc (32 samples each side, beta = 8) of unit DC gain.
-/// So each has the two-sided density D^2 for |f| < B/2 (D the one-sided EMF density): the EMF has the
-/// one-sided density D^2 over carrier +- B/2 and variance D^2 B (the windowed sinc's transition straddles
-/// the band edge; its noise-equivalent width is B to within the measured figure in DEVELOPERS.md).
+/// at a rate r (seeded counter-based generator: sample n of the I or Q channel depends only on the seed and
+/// n) interpolated by a Kaiser-windowed sinc k (32 samples each side, beta = 8) of unit DC gain. So each has
+/// the two-sided density D^2 in the pass band (D the one-sided EMF density), and r is set so that the
+/// noise-equivalent width r int k^2 is B = 2 x half_band: the EMF has the one-sided density D^2 over
+/// carrier +- B/2 and variance D^2 B (the windowed sinc's transition straddles the band edge r/2, a little
+/// above B/2).
 /// Outside the band there is no noise: a single tuned circuit of -3 dB bandwidth b would pass a further
 /// fraction (2/pi) atan(b / B) of a flat density from outside (at b = 10 kHz, B = 80 kHz: 7.9 %, -0.36 dB
 /// of RF noise power), but that part beats with the carrier above the audio band.
@@ -70,6 +73,9 @@ private:
     // The samples around the last evaluation: index m_first .. m_first + size - 1 (I and Q interleaved).
     mutable std::vector<double> m_cache;
     mutable long long m_first = 0;
+    mutable std::array<std::pair<double, std::complex<double>>, 4> m_recent{{{-1e300, {}}, {-1e300, {}}, {-1e300, {}}, {-1e300, {}}}};
+    mutable std::size_t m_next = 0;
+    [[nodiscard]] std::complex<double> evaluate(double t_s) const noexcept;
 };
 
 /// The antenna EMF: the sum of the stations' waves. Holds the sources by value (each am_source points at
