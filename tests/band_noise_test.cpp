@@ -2,6 +2,7 @@
 // noise voltage it leaves across a linear network, determinism, the scenario keys and noise-off renders.
 // Sources beside each check.
 #include "galena/error.hpp"
+#include "galena/dial.hpp"
 #include "galena/front_end.hpp"
 #include "galena/network.hpp"
 #include "galena/render.hpp"
@@ -281,4 +282,50 @@ TEST_CASE("antenna noise keys: engineering values, the named default, round trip
                          doctest::Contains("antenna.noise_half_band_hz = 600000: must be at most 0.45 x the wanted carrier"), config_error);
     CHECK_THROWS_WITH_AS(parse_scenario(untuned_text, "n.toml", {"antenna.noise_seed=1.5"}),
                          doctest::Contains("antenna.noise_seed = 1.5: must be a whole number"), config_error);
+}
+
+TEST_CASE("antenna noise in galena dial: tiled across the dial, seeded, levels traced for the stations only")
+{
+    // A coupled set (as dial_test's) swept +-2 % around 1 MHz in 40 ms past one weak unmodulated station.
+    auto sweep = [](double density, std::uint64_t seed) {
+        tone_modulation prog({1000.0}, {1.0}, 0.0);
+        receiver_spec spec;
+        spec.antenna.effective_height_m = 4.0;
+        spec.tuner.layout = tuner_layout::coupled;
+        spec.tuner.coil_h = 240e-6;
+        spec.tuner.coil_q = 150.0;
+        spec.tuner.tuned_hz = 1.0e6;
+        spec.tuner.detector_tap = 0.5;
+        spec.tuner.antenna_coil_h = 20e-6;
+        spec.tuner.antenna_coil_q = 100.0;
+        spec.tuner.coupling = 0.1;
+        spec.circuit.load.bleeder_ohm = 68e3;
+        spec.circuit.load.filter_capacitance_f = 1e-9;
+        receiver_station st;
+        st.params.name = "Invented Weak";
+        st.params.carrier_hz = 1.0e6;
+        st.params.field_v_per_m = 1e-3;
+        st.params.modulation_index = 0.0;
+        st.programme = &prog;
+        spec.stations.push_back(st);
+        spec.noise.field_density = density;
+        spec.noise.seed = seed;
+        dial_path path;
+        path.start_hz = 0.98e6;
+        path.end_hz = 1.02e6;
+        path.glide_s = 0.04;
+        dial_settings ds;
+        ds.retune_interval_s = 2e-3;
+        ds.steps_per_cycle = 16;
+        std::vector<double> audio;
+        const dial_result r = render_dial(spec, path, ds, [&](const audio_block& b) { audio.insert(audio.end(), b.audio_v.begin(), b.audio_v.end()); });
+        CHECK(r.names.size() == 1);
+        for (const auto& p : r.trace) CHECK(p.level_v.size() == 1);
+        return audio;
+    };
+    const auto quiet = sweep(0.0, 1), a = sweep(0.2e-6, 1), b = sweep(0.2e-6, 1), c = sweep(0.2e-6, 2);
+    REQUIRE(!quiet.empty());
+    CHECK(identical(a, b));
+    CHECK(!identical(a, c));
+    CHECK(!identical(a, quiet));
 }
