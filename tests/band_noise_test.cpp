@@ -258,6 +258,14 @@ TEST_CASE("antenna noise in a render: off by default, seeded renders byte-identi
     CHECK(identical(n1, n2));
     CHECK(!identical(n1, n3));
     CHECK(!identical(n1, off));
+    // The noise field becomes EMF through the effective height as the stations' field does (EMF = field x
+    // effective height, the definition of effective height): halving the height while doubling every field
+    // (station and noise; exact in binary) renders the same audio, byte for byte.
+    scenario half = noisy;
+    half.antenna.effective_height_m = noisy.antenna.effective_height_m / 2.0;
+    half.noise.field_density = 2.0 * noisy.noise.field_density;
+    for (auto& st : half.stations) st.params.field_v_per_m *= 2.0;
+    CHECK(identical(render_audio(half), n3));
     // Noise off explicitly (density 0) is the default render, byte for byte.
     scenario zero = parse_scenario(untuned_text, "n.toml", {"antenna.noise_field_density=0", "antenna.noise_seed=9"});
     CHECK(identical(render_audio(zero), off));
