@@ -3,8 +3,10 @@
 
 #include "galena/constants.hpp"
 #include "galena/error.hpp"
+#include "galena/filter_by_response.hpp"
 #include "galena/integrator.hpp"
 #include "galena/signal.hpp"
+#include "galena/transducer.hpp"
 
 #include <algorithm>
 #include <cmath>
@@ -269,6 +271,13 @@ carrier_ripple measure_carrier_ripple(const circuit_params& circuit, double fc, 
     return r;
 }
 
+std::vector<double> diaphragm_drive_n(const earpiece_params& e, std::span<const double> v, double fs)
+{
+    if (!(fs > 0.0) || !std::isfinite(fs)) throw config_error(fmt::format("diaphragm drive: fs = {} Hz: must be > 0", fs));
+    if (!has_diaphragm_drive(e)) return std::vector<double>(v.size(), 0.0);
+    return detail::filter_by_response(v, fs, [&](double f) { return diaphragm_drive_per_volt(e, f); });
+}
+
 render_metrics measure_render(std::span<const double> ev, double fs, const circuit_params& circuit, const am_params& am,
                               const metrics_request& q)
 {
@@ -319,6 +328,20 @@ render_metrics measure_render(std::span<const double> ev, double fs, const circu
         for (auto& w : clipping_warnings(rm.clipping)) rm.warnings.push_back(std::move(w));
     }
     nlohmann::json extra;
+    // The diaphragm drive (transducer.hpp): what the ear follows, comparable across earpiece kinds.
+    if (has_diaphragm_drive(circuit.earpiece)) {
+        const std::vector<double> drive = diaphragm_drive_n(circuit.earpiece, ev, fs);
+        const level_metrics dl = measure_levels(std::span<const double>(drive).subspan(skip), fs, lo, hi);
+        rm.diaphragm_drive_rms_n = dl.audio_rms_v;
+        extra["diaphragm_drive_rms_n"] = num(dl.audio_rms_v);
+        extra["diaphragm_drive_db_re_1mn"] = dl.audio_rms_v > 0.0 ? num(20.0 * std::log10(dl.audio_rms_v / 1e-3)) : nlohmann::json(nullptr);
+        extra["diaphragm_drive_quantity"] = std::string(diaphragm_drive_quantity(circuit.earpiece));
+    } else {
+        rm.diaphragm_drive_rms_n = nan_v;
+        extra["diaphragm_drive_rms_n"] = nullptr;
+        extra["diaphragm_drive_db_re_1mn"] = nullptr;
+        extra["diaphragm_drive_quantity"] = nullptr;
+    }
     extra["carrier_hz"] = num(am.carrier_hz);
     extra["carrier_peak_v"] = num(am.carrier_peak_v);
     extra["modulation_index"] = num(am.modulation_index);

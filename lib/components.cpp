@@ -193,11 +193,13 @@ const earpiece_params& earpiece_params::validate() const
             require_range("earpiece.motional_resistance_ohm", motional_resistance_ohm, 0.0, 1e9, "ohm");
             require_above("earpiece.motional_capacitance_f", motional_capacitance_f, 0.0, 1e-5, "F");
         }
+        require_above("earpiece.piezo_force_factor_n_per_volt", piezo_force_factor_n_per_volt, 0.0, 1e3, "N/V");
         break;
     case earpiece_kind::magnetic:
         require_above("earpiece.resistance_ohm", resistance_ohm, 0.0, 1e9, "ohm");
         require_above("earpiece.inductance_h", inductance_h, 0.0, 1e3, "H");
         require_above("earpiece.loss_resistance_ohm", loss_resistance_ohm, 0.0, inf, "ohm");
+        require_above("earpiece.magnetic_force_factor_tm", magnetic_force_factor_tm, 0.0, 1e4, "T m");
         break;
     case earpiece_kind::resistor:
         require_above("earpiece.resistance_ohm", resistance_ohm, 0.0, 1e12, "ohm");

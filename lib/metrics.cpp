@@ -1,4 +1,5 @@
 #include "galena/metrics.hpp"
+#include "galena/filter_by_response.hpp"
 
 #include "galena/constants.hpp"
 #include "galena/error.hpp"
@@ -16,6 +17,7 @@
 #include <cmath>
 #include <mutex>
 #include <complex>
+#include <functional>
 #include <fmt/format.h>
 #include <limits>
 
@@ -188,6 +190,24 @@ std::vector<double> make_window(spectrum_window w, std::size_t size)
     // The widely used 5-term flat-top (the same coefficients as scipy.signal.windows.flattop; common practice).
     case spectrum_window::flat_top: cosine_sum({0.21557895, 0.41663158, 0.277263158, 0.083578947, 0.006947368}); break;
     }
+    return out;
+}
+
+std::vector<double> detail::filter_by_response(std::span<const double> x, double fs, const std::function<std::complex<double>(double)>& h)
+{
+    check_rate(fs, "filter_by_response");
+    std::vector<double> out(x.size(), 0.0);
+    if (x.empty()) return out;
+    std::size_t m = 2;
+    while (m < 2 * x.size()) m <<= 1;
+    cvec spec = forward_fft(x, m);
+    for (std::size_t k = 0; k <= m / 2; ++k) {
+        const std::complex<double> g = h(static_cast<double>(k) * fs / static_cast<double>(m));
+        spec[k] *= (k == m / 2) ? std::complex<double>(g.real(), 0.0) : g;
+        if (k > 0 && k < m / 2) spec[m - k] *= std::conj(g);
+    }
+    const cvec y = inverse_fft(spec);
+    for (std::size_t i = 0; i < x.size(); ++i) out[i] = y[i].real();
     return out;
 }
 

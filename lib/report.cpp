@@ -54,12 +54,13 @@ pack_outcome make_pack(const fs::path& base_file, const std::vector<std::string>
         const wav_format fmt_ = vs[0].scene.output.format;
         throw_if_cancelled();
         o.playlist = write_playlist(wavs, names, labels, o.playlist_wav, o.playlist_csv, fmt_);
+        std::vector<playlist_segment> matched_playlist;
         if (opt.loudness_matched) {
             throw_if_cancelled();
             o.matched = write_loudness_matched(wavs, names, dir / "matched", fmt_);
             std::vector<fs::path> mw;
             for (const auto& g : o.matched) mw.push_back(g.wav);
-            (void)write_playlist(mw, names, labels, dir / "playlist-matched.wav", dir / "playlist-matched.csv", fmt_);
+            matched_playlist = write_playlist(mw, names, labels, dir / "playlist-matched.wav", dir / "playlist-matched.csv", fmt_);
         }
         pack_page page;
         page.title = opt.title;
@@ -70,6 +71,9 @@ pack_outcome make_pack(const fs::path& base_file, const std::vector<std::string>
         page.playlist = o.playlist;
         page.playlist_wav = o.playlist_wav;
         page.matched = o.matched;
+        page.matched_playlist = std::move(matched_playlist);
+        if (!page.matched_playlist.empty()) page.matched_playlist_wav = dir / "playlist-matched.wav";
+        page.listening = measure_listening(o.sweep);
         pack_plots plots = draw_pack_plots(o.sweep, dir / "plots", opt.curves);
         page.plot_stems = std::move(plots.stems);
         o.warnings = std::move(plots.warnings);

@@ -204,6 +204,8 @@ const std::map<std::string, std::map<std::string, key_entry>>& key_table()
              {"resistance_ohm", quantity(unit::ohm, [](scenario& s) -> double& { return s.circuit.earpiece.resistance_ohm; })},
              {"inductance_h", quantity(unit::henry, [](scenario& s) -> double& { return s.circuit.earpiece.inductance_h; })},
              {"loss_resistance_ohm", quantity(unit::ohm, [](scenario& s) -> double& { return s.circuit.earpiece.loss_resistance_ohm; })},
+             {"piezo_force_factor_n_per_volt", quantity(unit::none, [](scenario& s) -> double& { return s.circuit.earpiece.piezo_force_factor_n_per_volt; })},
+             {"magnetic_force_factor_tm", quantity(unit::none, [](scenario& s) -> double& { return s.circuit.earpiece.magnetic_force_factor_tm; })},
          }},
         {"output",
          {
@@ -1065,10 +1067,11 @@ std::string to_toml(const scenario& s)
     o += fmt::format("\n[load]\nbleeder_ohm = {}\nfilter_capacitance_f = {}\nstray_capacitance_f = {}\n", num(s.circuit.load.bleeder_ohm),
                      num(s.circuit.load.filter_capacitance_f), num(s.circuit.load.stray_capacitance_f));
     o += fmt::format("\n[earpiece]\nkind = \"{}\"\ncapacitance_f = {}\nleakage_ohm = {}\nmotional_resistance_ohm = {}\n"
-                     "motional_inductance_h = {}\nmotional_capacitance_f = {}\nresistance_ohm = {}\ninductance_h = {}\nloss_resistance_ohm = {}\n",
+                     "motional_inductance_h = {}\nmotional_capacitance_f = {}\nresistance_ohm = {}\ninductance_h = {}\nloss_resistance_ohm = {}\n"
+                     "piezo_force_factor_n_per_volt = {}\nmagnetic_force_factor_tm = {}\n",
                      to_string(e.kind), num(e.capacitance_f), num(e.leakage_ohm), num(e.motional_resistance_ohm),
                      num(e.motional_inductance_h), num(e.motional_capacitance_f), num(e.resistance_ohm), num(e.inductance_h),
-                     num(e.loss_resistance_ohm));
+                     num(e.loss_resistance_ohm), num(e.piezo_force_factor_n_per_volt), num(e.magnetic_force_factor_tm));
     o += fmt::format("\n[output]\nsample_rate_hz = {}\nformat = \"{}\"\nfull_scale_v = {}\n", num(s.render.audio_rate_hz),
                      to_string(s.output.format), num(s.output.full_scale_v));
     o += fmt::format("\n[solver]\nmethod = \"{}\"\nsteps_per_cycle = {}\ndc_tolerance = {}\nnewton_tolerance = {}\n"

@@ -300,9 +300,10 @@ TEST_CASE("compare: the pack page opens in headless Chromium with its players an
         for (auto at = dom.find(needle); at != std::string::npos; at = dom.find(needle, at + 1)) ++n;
         return n;
     };
-    CHECK(count("<audio") == 1 + 2 * 2); // the playlist, and each variant level-consistent and matched
-    CHECK(count("<svg") >= 6);           // zoom, spectrum, thd, level, transfer, response
-    CHECK(count("<figure") == 6);
+    // Both playlists, each variant level-consistent and matched, the quiz's A, B and X, the presenter's A and B.
+    CHECK(count("<audio") == 2 + 2 * 2 + 3 + 2);
+    CHECK(count("<svg") >= 7);           // zoom, spectrum, thd, level, transfer, response, diode_levels
+    CHECK(count("<figure") == 7);        // the two variants differ only in the diode: level against carrier too
     REQUIRE(std::system((flags + "--screenshot='" + (d / "shot.png").string() + "' --window-size=1280,2000 '" + url +
                          "' > /dev/null 2>&1").c_str()) == 0);
     REQUIRE(fs::is_regular_file(d / "shot.png"));

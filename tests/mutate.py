@@ -85,6 +85,14 @@ MUTANTS = [
     ("include/galena/constants.hpp", "1.380649e-23", "1.380649e-22", "Boltzmann constant a decade off"),
     ("lib/cycle_integrator.cpp", "return ya + m_cb * (m_u[i] - m_v[i]) * m_inv_r;", "return ya - m_cb * (m_u[i] - m_v[i]) * m_inv_r;",
      "output slope: source term with the wrong sign"),
+    ("lib/transducer.cpp", "c(1.0 - w * w * e.motional_inductance_h * e.motional_capacitance_f,",
+     "c(1.0 + w * w * e.motional_inductance_h * e.motional_capacitance_f,", "BVD drive: the motional inductance's term with the wrong sign"),
+    ("lib/transducer.cpp", "c(e.resistance_ohm, w * e.inductance_h * (1.0 + e.resistance_ohm * gp))",
+     "c(e.resistance_ohm, w * e.inductance_h)", "magnetic drive: the loss resistance's share of the current ignored"),
+    ("lib/report_plots.cpp", "if (score[w] >= 0.95 * best) return", "if (score[w] <= 0.95 * best) return",
+     "zoom window: the smallest departure (near-silence) chosen"),
+    ("lib/report_plots.cpp", "const std::vector<double> ac = detrended(v);", "const std::vector<double> ac(v.begin(), v.end());",
+     "spectrum: DC and drift left in before the window"),
 ]
 
 

@@ -106,6 +106,12 @@ struct carrier_ripple {
 [[nodiscard]] carrier_ripple measure_carrier_ripple(const circuit_params& circuit, double carrier_hz, double carrier_peak_v,
                                                     int cycles = 200, const step_settings& stepper = {});
 
+/// The earpiece's diaphragm drive force waveform, N (transducer.hpp: piezo N v, BVD N q_m / C_m, magnetic
+/// Bl i_L), from its terminal voltage samples `terminal_v` (V, DC included, at fs_hz > 0, from rest as renders
+/// start): diaphragm_drive_per_volt applied per FFT bin (exact at every frequency; zero-padded so that the
+/// branch's response does not wrap). All zeros for the resistor. Throws config_error for a bad rate.
+[[nodiscard]] std::vector<double> diaphragm_drive_n(const earpiece_params& e, std::span<const double> terminal_v, double fs_hz);
+
 /// What the programme of a render was, for measure_render().
 struct metrics_request {
     double tone_hz = 0.0;           ///< > 0: the programme is one tone at this frequency (tone analysis)
@@ -133,9 +139,13 @@ struct render_metrics {
     fidelity_metrics fidelity;
     bool has_clipping = false;
     clipping_diagnosis clipping;
+    /// RMS in the audio band of the earpiece's diaphragm drive force (transducer.hpp), N; NaN for the
+    /// resistor load. The quantity each earpiece kind's drive is computed from: diaphragm_drive_quantity().
+    double diaphragm_drive_rms_n = 0.0;
     std::vector<warning> warnings;
     /// Flat keys: every key of the metrics to_json() helpers present above, plus carrier_hz, carrier_peak_v,
-    /// modulation_index, detection_efficiency, analysed_s, warnings and warning_codes.
+    /// modulation_index, detection_efficiency, analysed_s, diaphragm_drive_rms_n, diaphragm_drive_db_re_1mn,
+    /// diaphragm_drive_quantity (null for the resistor load), warnings and warning_codes.
     nlohmann::json json;
 };
 

@@ -173,6 +173,12 @@ struct earpiece_params {
     double resistance_ohm = 2000.0;          ///< magnetic DC resistance, or resistor value, ohm; > 0
     double inductance_h = 1.5;               ///< magnetic inductance, H; > 0
     double loss_resistance_ohm = 50e3;       ///< magnetic core/eddy loss in parallel with L, ohm; > 0, inf = none
+    /// Piezo transduction ratio N: diaphragm force per volt across the motional branch, N/V; (0, 1e3].
+    /// The default 0.02 N/V is a typical order of magnitude from memory, not a measured value.
+    double piezo_force_factor_n_per_volt = 0.02;
+    /// Magnetic phones' force factor Bl: diaphragm force per ampere through the winding's inductance, T m
+    /// (= N/A); (0, 1e4]. The default 5 T m is a typical order of magnitude from memory, not a measured value.
+    double magnetic_force_factor_tm = 5.0;
 
     /// Throws config_error naming the first field that breaks its range.
     const earpiece_params& validate() const;
