@@ -281,14 +281,14 @@ TEST_CASE("antenna noise keys: engineering values, the named default, round trip
     CHECK(parse_scenario(untuned_text, "n.toml", {"antenna.noise_half_band_hz=\"30k\""}).noise.half_band_hz == 30e3);
     std::string bad = untuned_text;
     bad.replace(bad.find("effective_height_m = 4"), 22, "effective_height_m = 4\nnoise_field_density = -1e-9");
-    CHECK_THROWS_WITH_AS(parse_scenario(bad, "n.toml"), doctest::Contains("n.toml:6: antenna.noise_field_density = -1e-09"), config_error);
+    CHECK_THROWS_WITH_AS((void)parse_scenario(bad, "n.toml"), doctest::Contains("n.toml:6: antenna.noise_field_density = -1e-09"), config_error);
     std::string word = untuned_text;
     word.replace(word.find("effective_height_m = 4"), 22, "effective_height_m = 4\nnoise_field_density = \"loud-city\"");
-    CHECK_THROWS_WITH_AS(parse_scenario(word, "n.toml"), doctest::Contains("n.toml:6: antenna.noise_field_density = 'loud-city': must be a number"),
+    CHECK_THROWS_WITH_AS((void)parse_scenario(word, "n.toml"), doctest::Contains("n.toml:6: antenna.noise_field_density = 'loud-city': must be a number"),
                          config_error);
-    CHECK_THROWS_WITH_AS(parse_scenario(untuned_text, "n.toml", {"antenna.noise_field_density=1n", "antenna.noise_half_band_hz=600k"}),
+    CHECK_THROWS_WITH_AS((void)parse_scenario(untuned_text, "n.toml", {"antenna.noise_field_density=1n", "antenna.noise_half_band_hz=600k"}),
                          doctest::Contains("antenna.noise_half_band_hz = 600000: must be at most 0.45 x the wanted carrier"), config_error);
-    CHECK_THROWS_WITH_AS(parse_scenario(untuned_text, "n.toml", {"antenna.noise_seed=1.5"}),
+    CHECK_THROWS_WITH_AS((void)parse_scenario(untuned_text, "n.toml", {"antenna.noise_seed=1.5"}),
                          doctest::Contains("antenna.noise_seed = 1.5: must be a whole number"), config_error);
 }
 
