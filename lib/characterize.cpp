@@ -374,7 +374,11 @@ nlohmann::json to_json(const clipping_diagnosis& d)
     j["ac_load_ohm"] = num(d.ac_load_ohm);
     j["negative_peak_m_max"] = num(d.negative_peak_m_max);
     j["combined_clip_m_max"] = num(d.combined_m_max);
-    j["exceeds_diagonal_clip"] = d.exceeds_diagonal;
+    // The formula's limit is information (with its tone frequency); what the render shows is diagonal_clipping.
+    j["diagonal_clip_tone_hz"] = num(d.tone_hz);
+    j["m_above_diagonal_formula"] = d.exceeds_diagonal;
+    j["diagonal_clipping"] = diagonal_clipping_status(d);
+    j["clipping_notes"] = clipping_notes(d);
     j["exceeds_negative_peak_clip"] = d.exceeds_negative_peak;
     j["failure_to_follow_fraction"] = d.observation_available ? num(d.free_discharge_fraction) : nlohmann::json(nullptr);
     j["failure_to_follow_observed"] = d.observed_failure_to_follow;

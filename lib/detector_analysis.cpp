@@ -107,23 +107,53 @@ void observe_failure_to_follow(clipping_diagnosis& d, const detector_network& ne
     d.observed_failure_to_follow = d.free_discharge_fraction > 0.02;
 }
 
+namespace {
+std::string diagonal_formula_text(const clipping_diagnosis& d)
+{
+    return fmt::format("the diagonal-clipping formula 1/sqrt(1+(wm R C)^2) gives m <= {:.3g} for a full-depth tone at {:.0f} Hz "
+                       "(R = {:.4g} ohm, C = {:.4g} F)",
+                       d.diagonal_m_max, d.tone_hz, d.dc_load_ohm, d.node_capacitance_f);
+}
+} // namespace
+
+std::string diagonal_clipping_status(const clipping_diagnosis& d)
+{
+    if (d.observation_available) return d.observed_failure_to_follow ? "observed" : "not observed";
+    return d.exceeds_diagonal ? "predicted, not checked" : "not predicted";
+}
+
 std::vector<warning> clipping_warnings(const clipping_diagnosis& d)
 {
     std::vector<warning> w;
-    if (d.exceeds_diagonal)
-        w.push_back({warning_code::diagonal_clipping, fmt::format("modulation index {:.3g} exceeds the diagonal-clipping limit {:.3g} for a full-depth tone at {:.0f} Hz "
-                                "(1/sqrt(1+(wm R C)^2), R = {:.4g} ohm, C = {:.4g} F)",
-                                d.modulation_index, d.diagonal_m_max, d.tone_hz, d.dc_load_ohm, d.node_capacitance_f)});
-    if (d.exceeds_negative_peak)
-        w.push_back({warning_code::negative_peak_clipping,
-                     fmt::format("modulation index {:.3g} exceeds the negative-peak clipping limit R_ac/R_dc = {:.3g}",
-                                 d.modulation_index, d.negative_peak_m_max)});
+    // Observed when it is observed: one warning, with the formula's limit as context.
     if (d.observed_failure_to_follow)
         w.push_back({warning_code::failure_to_follow,
-                     fmt::format("the detector fails to follow the envelope: the output falls at the free-discharge rate in "
-                                 "{:.1f} % of samples",
-                                 100.0 * d.free_discharge_fraction)});
+                     fmt::format("diagonal clipping observed: the detector fails to follow the envelope (the output falls at the "
+                                 "free-discharge rate in {:.1f} % of samples); m = {:.3g}, and {}",
+                                 100.0 * d.free_discharge_fraction, d.modulation_index, diagonal_formula_text(d))});
+    // The formula alone is a warning only where the waveform cannot be checked (earpiece states).
+    if (d.exceeds_diagonal && !d.observation_available)
+        w.push_back({warning_code::diagonal_clipping,
+                     fmt::format("modulation index {:.3g} exceeds the diagonal-clipping limit {:.3g} for a full-depth tone at {:.0f} Hz "
+                                 "(1/sqrt(1+(wm R C)^2), R = {:.4g} ohm, C = {:.4g} F); predicted, not checked on the waveform "
+                                 "(the free-discharge check needs a load without earpiece states)",
+                                 d.modulation_index, d.diagonal_m_max, d.tone_hz, d.dc_load_ohm, d.node_capacitance_f)});
+    if (d.exceeds_negative_peak)
+        w.push_back({warning_code::negative_peak_clipping,
+                     fmt::format("modulation index {:.3g} exceeds the negative-peak clipping limit R_ac/R_dc = {:.3g} at {:.0f} Hz",
+                                 d.modulation_index, d.negative_peak_m_max, d.tone_hz)});
     return w;
+}
+
+std::vector<std::string> clipping_notes(const clipping_diagnosis& d)
+{
+    std::vector<std::string> n;
+    if (d.exceeds_diagonal && d.observation_available && !d.observed_failure_to_follow)
+        n.push_back(fmt::format("information: m = {:.3g} is above the formula's limit, but the render measures clean (free discharge "
+                                "in {:.2f} % of samples, 2 % counts as clipping): {}; the formula assumes a full-depth tone at "
+                                "that frequency, and the programme's energy there is lower",
+                                d.modulation_index, 100.0 * d.free_discharge_fraction, diagonal_formula_text(d)));
+    return n;
 }
 
 } // namespace galena

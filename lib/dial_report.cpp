@@ -3,6 +3,8 @@
 #include "galena/audio_io.hpp"
 #include "galena/cancel.hpp"
 #include "galena/error.hpp"
+#include "galena/job.hpp"
+#include "galena/report_page.hpp"
 #include "galena/report_plots.hpp"
 #include "galena/staged_output.hpp"
 #include "galena/text_table.hpp"
@@ -10,6 +12,7 @@
 #include <algorithm>
 #include <cmath>
 #include <fmt/format.h>
+#include <memory>
 
 namespace galena {
 
@@ -169,15 +172,17 @@ dial_outcome run_dial_into(const scenario& s, const band_spec& band, const fs::p
     }
     o.survey = band_survey(o.dial);
     o.wav = dir / "dial.wav";
-    transcode(raw_path, o.wav, fs, s.output.format, s.output.full_scale_v, 1e3);
-    if (o.peak_audio_v > s.output.full_scale_v) {
-        const double gain = s.output.full_scale_v * std::pow(10.0, -1.0 / 20.0) / o.peak_audio_v;
+    // output.full_scale_v = "auto" (0, the default): chosen from this sweep's own peak (job.hpp).
+    const double full_scale_v = s.output.full_scale_v == 0.0 ? choose_full_scale_v(o.peak_audio_v) : s.output.full_scale_v;
+    transcode(raw_path, o.wav, fs, s.output.format, full_scale_v, 1e3);
+    if (o.peak_audio_v > full_scale_v) {
+        const double gain = full_scale_v * std::pow(10.0, -1.0 / 20.0) / o.peak_audio_v;
         o.normalised_wav = dir / "dial-normalised.wav";
-        transcode(raw_path, o.normalised_wav, fs, s.output.format, s.output.full_scale_v, 1e3 * gain);
+        transcode(raw_path, o.normalised_wav, fs, s.output.format, full_scale_v, 1e3 * gain);
         o.warnings.push_back({warning_code::output_clipped,
                               fmt::format("the sweep's audio peaks at {:.3g} V, above the {:.3g} V full scale; dial-normalised.wav is a "
                                           "copy with {:.1f} dB gain",
-                                          o.peak_audio_v, s.output.full_scale_v, 20.0 * std::log10(gain))});
+                                          o.peak_audio_v, full_scale_v, 20.0 * std::log10(gain))});
     }
     write_text_atomic(dir / "dial-map.csv", dial_map_csv(o.dial));
     write_text_atomic(dir / "survey.csv", survey_csv(o.survey));
@@ -213,6 +218,87 @@ dial_outcome run_dial_job(const fs::path& scenario_file, const std::vector<std::
     o.wav = staged.published(o.wav);
     if (!o.normalised_wav.empty()) o.normalised_wav = staged.published(o.normalised_wav);
     return o;
+}
+
+void add_pack_dial_sweeps(pack_options& po, const pack_spec& pack, const std::vector<std::string>& base_overrides, const dial_job_options& opt)
+{
+    if (pack.dial_sweeps.empty()) return;
+    struct prepared {
+        pack_dial_sweep spec;
+        scenario scene;
+        band_spec band;
+        dial_path path;
+    };
+    auto sweeps = std::make_shared<std::vector<prepared>>();
+    for (const auto& d : pack.dial_sweeps) {
+        std::vector<std::string> sets = base_overrides;
+        sets.insert(sets.end(), d.overrides.begin(), d.overrides.end());
+        prepared p{d, load_scenario(pack.scenario, sets), load_band(d.band), {}};
+        p.path = p.band.dial;
+        if (d.start_hz) p.path.start_hz = *d.start_hz;
+        if (d.end_hz) p.path.end_hz = *d.end_hz;
+        if (d.glide_s) p.path.glide_s = *d.glide_s;
+        try {
+            p.path.validate();
+        } catch (const config_error& e) {
+            throw config_error(fmt::format("{}: dial_sweep {}: {}", pack.file.string(), d.name, e.what()));
+        }
+        if (p.scene.tuner.layout != tuner_layout::single_coil && p.scene.tuner.layout != tuner_layout::coupled)
+            throw config_error(fmt::format("{}: dial_sweep {}: tuner.layout = \"{}\": the dial turns the tuning capacitor of a single-coil "
+                                           "or coupled set",
+                                           pack.file.string(), d.name, to_string(p.scene.tuner.layout)));
+        po.protect.push_back(d.band);
+        for (const auto& st : p.band.stations)
+            if (!st.audio.empty()) po.protect.push_back(st.audio);
+        sweeps->push_back(std::move(p));
+    }
+    po.extra_outputs.push_back("dial");
+    auto before = po.extras;
+    po.extras = [before, sweeps, opt](sweep_result& sw, const fs::path& dir) {
+        pack_extras extra = before ? before(sw, dir) : pack_extras();
+        std::string& html = extra.html;
+        const scenario* calibration = sw.variants.empty() ? nullptr : &sw.variants.front().scene;
+        html += "<h2 id=\"dial\">Turning the dial</h2>\n<p>The set's tuning capacitor turned across a band of invented stations "
+                "(charge kept as the capacitor moves). The map shows the tuned frequency and each station's level at the detector; "
+                "the survey says which stations the set separates (the strongest other station at least " +
+                fmt::format("{:.0f}", survey_separation_db) + " dB down where the station peaks).</p>\n";
+        for (const auto& p : *sweeps) {
+            throw_if_cancelled();
+            const fs::path sub = dir / "dial" / p.spec.name;
+            fs::create_directories(sub);
+            dial_job_options o = opt;
+            o.path = p.path;
+            // The variants' calibration (their common full scale, automatic or set), so that the sweep joins the
+            // level-consistent playlist at its true level.
+            scenario scene = p.scene;
+            if (calibration != nullptr) scene.output.full_scale_v = calibration->output.full_scale_v;
+            const dial_outcome out = run_dial_into(scene, p.band, sub, o);
+            const bool joins = calibration != nullptr && out.normalised_wav.empty() &&
+                               scene.render.audio_rate_hz == calibration->render.audio_rate_hz && scene.output.format == calibration->output.format;
+            if (joins) extra.playlist_items.push_back({out.wav, "dial-" + p.spec.name, p.spec.label});
+            const std::string rel = "dial/" + p.spec.name + "/";
+            html += fmt::format("<h3>{}</h3>\n<p>{:.0f} to {:.0f} kHz in {:.3g} s.</p>\n<audio controls preload=\"none\" src=\"{}\"></audio>\n",
+                                html_escape(p.spec.label), p.path.start_hz / 1e3, p.path.end_hz / 1e3, p.path.duration_s(),
+                                html_escape(rel + (out.normalised_wav.empty() ? "dial.wav" : "dial-normalised.wav")));
+            if (fs::exists(sub / "dial-map.svg"))
+                html += fmt::format("<figure><img src=\"{}dial-map.svg\" alt=\"dial map: tuned frequency and station levels against time\">"
+                                    "<figcaption>dial map</figcaption></figure>\n",
+                                    html_escape(rel));
+            html += "<table><tr><th class=l>station</th><th>carrier kHz</th><th>peak level at the detector, dBV</th><th>dial at the peak, kHz</th>"
+                    "<th class=l>strongest other station there</th><th>separation, dB</th><th>separated</th></tr>\n";
+            for (const auto& r : out.survey)
+                html += fmt::format("<tr><td class=l>{}</td><td>{:.1f}</td><td>{:.1f}</td><td>{:.1f}</td><td class=l>{}</td><td>{}</td><td>{}</td></tr>\n",
+                                    html_escape(r.name), r.carrier_hz / 1e3, dbv(r.peak_level_v), r.peak_dial_hz / 1e3,
+                                    r.neighbour.empty() ? "-" : html_escape(r.neighbour),
+                                    std::isfinite(r.separation_db) ? fmt::format("{:.1f}", r.separation_db) : std::string("-"),
+                                    r.separated ? "yes" : "no");
+            html += "</table>\n";
+            for (const auto& w : out.warnings) html += "<p class=\"warn\">" + html_escape(w.message) + "</p>\n";
+            html += joins ? "<p>It closes both playlists, at the variants' calibration.</p>\n"
+                          : "<p>It is not in the playlists: its audio rate, format or level does not fit the variants' calibration.</p>\n";
+        }
+        return extra;
+    };
 }
 
 } // namespace galena

@@ -337,7 +337,17 @@ job_outcome run_render_job(const scenario& s, const fs::path& out_dir, const job
     return o;
 }
 
-job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const job_options& opt, double analysis_limit_s)
+double choose_full_scale_v(double peak_v)
+{
+    if (!(peak_v > 0.0) || !std::isfinite(peak_v)) return 1.0;
+    const double need = peak_v * std::pow(10.0, auto_headroom_db / 20.0);
+    // Rounded up to two significant digits, so the calibration reads as a short number (0.14 V, 2.7 mV).
+    const double unit = std::pow(10.0, std::floor(std::log10(need)) - 1.0);
+    const double v = std::ceil(need / unit * (1.0 - 1e-12)) * unit;
+    return std::clamp(std::stod(fmt::format("{:.2g}", v)), 1e-9, 1e4);
+}
+
+job_outcome render_job_unscaled(const scenario& s, const fs::path& out_dir, const job_options& opt, double analysis_limit_s)
 {
     std::error_code ec;
     job_outcome o;
@@ -377,14 +387,18 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
 
     // Unclipped float intermediate (unit scale = 1 V), hidden in the output directory; removed on exit.
     const fs::path raw_path = out_dir / ".recovered.unclipped.wav";
+    // Removed here on a failure; on success finish_job removes it after writing the WAVs.
     struct remover {
         fs::path p;
+        bool keep = false;
         ~remover()
         {
+            if (keep) return;
             std::error_code e;
             fs::remove(p, e);
         }
     } cleanup{raw_path};
+    double sum_sq = 0.0;
     try {
         wav_writer raw(raw_path, fs_hz, wav_format::float32, 1.0e3, true);
         std::vector<double> faded;
@@ -398,7 +412,7 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
                 // The peak of what the WAV holds (after the fade), so the normalised copy peaks where it says.
                 faded[i] *= fade_gain(b.first_sample + i, total, fs_hz, opt.fade_s);
                 o.peak_audio_v = std::max(o.peak_audio_v, std::fabs(faded[i]));
-                if (std::fabs(faded[i]) > s.output.full_scale_v) ++o.clipped_samples;
+                sum_sq += faded[i] * faded[i];
             }
             raw.write_volts(faded);
             for (std::size_t i = 0; i < b.earpiece_v.size() && o.analysis_v.size() < keep; ++i)
@@ -430,28 +444,80 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
         throw config_error(fmt::format("{}: {}", s.file.string(), e.what()));
     }
     o.metrics["peak_audio_v"] = o.peak_audio_v;
+    o.audio_rms_v = total > 0 ? std::sqrt(sum_sq / static_cast<double>(total)) : 0.0;
+    o.unscaled = raw_path;
+    o.pending_warnings = std::move(analysis.warnings);
+    cleanup.keep = true;
+    return o;
+}
+
+void finish_job(job_outcome& o, const scenario& s, double full_scale_v, bool automatic, const job_options& opt)
+{
+    if (o.unscaled.empty()) throw audio_error("finish_job: the render is already finished (programmer error)");
+    const fs::path raw_path = o.unscaled;
+    struct remover {
+        fs::path p;
+        ~remover()
+        {
+            std::error_code e;
+            fs::remove(p, e);
+        }
+    } cleanup{raw_path};
+    o.unscaled.clear();
+    const double fs_hz = s.render.audio_rate_hz;
+    const fs::path norm_path = o.wav.parent_path() / "recovered-normalised.wav";
+    o.full_scale_v = full_scale_v;
+    o.full_scale_auto = automatic;
+    o.headroom_db = o.peak_audio_v > 0.0 ? 20.0 * std::log10(full_scale_v / o.peak_audio_v) : std::numeric_limits<double>::infinity();
+    o.rms_dbfs = o.audio_rms_v > 0.0 ? 20.0 * std::log10(o.audio_rms_v / full_scale_v) : -std::numeric_limits<double>::infinity();
+    o.clipped_samples = 0;
+    if (o.peak_audio_v > full_scale_v) {
+        // Exact count: read the unclipped intermediate back (volts / 1000).
+        wav_reader r(raw_path);
+        std::vector<float> buf(65536);
+        while (std::size_t n = r.read(buf))
+            for (std::size_t i = 0; i < n; ++i)
+                if (std::fabs(1e3 * static_cast<double>(buf[i])) > full_scale_v) ++o.clipped_samples;
+    }
+    auto number_or_null = [](double x) { return std::isfinite(x) ? nlohmann::json(x) : nlohmann::json(nullptr); };
     o.metrics["clipped_samples"] = o.clipped_samples;
     o.metrics["full_scale_v"] = o.full_scale_v;
+    o.metrics["full_scale_auto"] = o.full_scale_auto;
+    o.metrics["headroom_db"] = number_or_null(o.headroom_db);
+    o.metrics["rms_dbfs"] = number_or_null(o.rms_dbfs);
     // The intermediate holds volts / 1000; scale back while transcoding.
-    transcode(raw_path, o.wav, fs_hz, s.output.format, s.output.full_scale_v, 1e3, opt.overwrite);
-    if (o.peak_audio_v > s.output.full_scale_v) {
-        // Exact count of clipped samples, and a normalised copy peaking at -1 dBFS.
-        const double target = s.output.full_scale_v * std::pow(10.0, -1.0 / 20.0);
+    transcode(raw_path, o.wav, fs_hz, s.output.format, full_scale_v, 1e3, opt.overwrite);
+    if (o.peak_audio_v > full_scale_v) {
+        // A normalised copy peaking at -1 dBFS.
+        const double target = full_scale_v * std::pow(10.0, -1.0 / 20.0);
         const double gain = target / o.peak_audio_v;
         o.normalised_gain_db = 20.0 * std::log10(gain);
         o.normalised_wav = norm_path;
-        transcode(raw_path, norm_path, fs_hz, s.output.format, s.output.full_scale_v, 1e3 * gain, opt.overwrite);
+        transcode(raw_path, norm_path, fs_hz, s.output.format, full_scale_v, 1e3 * gain, opt.overwrite);
         o.warnings.push_back({warning_code::output_clipped,
                               fmt::format("the earpiece audio peaks at {:.3g} V, above the {:.3g} V full scale: {} clips; "
                                           "{} is a copy with {:.1f} dB gain",
-                                          o.peak_audio_v, s.output.full_scale_v, o.wav.filename().string(),
+                                          o.peak_audio_v, full_scale_v, o.wav.filename().string(),
                                           norm_path.filename().string(), o.normalised_gain_db)});
     }
-    o.warnings.insert(o.warnings.end(), analysis.warnings.begin(), analysis.warnings.end());
+    if (o.rms_dbfs < quiet_output_dbfs)
+        o.warnings.push_back({warning_code::quiet_output,
+                              fmt::format("{} sits at {:.1f} dBFS RMS, below {:.0f} dBFS: nearly silent at a normal volume; "
+                                          "{}",
+                                          o.wav.filename().string(), o.rms_dbfs, quiet_output_dbfs,
+                                          automatic ? "another render of this command is much louder (one full scale for all)"
+                                                    : fmt::format("output.full_scale_v = {} V was chosen explicitly; lower it, or "
+                                                                  "leave it out for the automatic choice",
+                                                                  detail::format_value(full_scale_v)))});
+    o.warnings.insert(o.warnings.end(), o.pending_warnings.begin(), o.pending_warnings.end());
+    o.pending_warnings.clear();
     set_warnings(o.metrics, o.warnings);
     nlohmann::ordered_json j;
     j["wav"] = o.wav.filename().string();
     j["full_scale_v"] = o.full_scale_v;
+    j["full_scale_auto"] = o.full_scale_auto;
+    j["headroom_db"] = number_or_null(o.headroom_db);
+    j["rms_dbfs"] = number_or_null(o.rms_dbfs);
     j["sample_rate_hz"] = fs_hz;
     j["format"] = std::string(to_string(s.output.format));
     j["samples"] = o.render.samples;
@@ -474,6 +540,13 @@ job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const jo
     j["warning_codes"] = warning_code_names(o.warnings);
     write_text_atomic(o.sidecar, j.dump(2) + "\n");
     write_text_atomic(o.metrics_file, o.metrics.dump(2) + "\n");
+}
+
+job_outcome render_job_into(const scenario& s, const fs::path& out_dir, const job_options& opt, double analysis_limit_s)
+{
+    job_outcome o = render_job_unscaled(s, out_dir, opt, analysis_limit_s);
+    const bool automatic = s.output.full_scale_v == 0.0;
+    finish_job(o, s, automatic ? choose_full_scale_v(o.peak_audio_v) : s.output.full_scale_v, automatic, opt);
     return o;
 }
 
@@ -488,10 +561,13 @@ std::string summary_text(const job_outcome& o, const scenario& s)
         return o.metrics[key].get<double>();
     };
     auto volts = [](double v) { return format_quantity(v, unit::volt, 3, true); };
-    std::string t = fmt::format("wrote {}: {:.3g} s, {} {}, full scale {} peak\n", o.wav.string(),
+    std::string t = fmt::format("wrote {}: {:.3g} s, {} {}, full scale {} peak{}\n", o.wav.string(),
                                 static_cast<double>(o.render.samples) / o.render.audio_rate_hz,
                                 format_quantity(o.render.audio_rate_hz, unit::hertz, 4, true), to_string(s.output.format),
-                                volts(o.full_scale_v));
+                                volts(o.full_scale_v),
+                                o.full_scale_auto && std::isfinite(o.headroom_db)
+                                    ? fmt::format(" (chosen automatically: {:.1f} dB above the peak; {:.1f} dBFS RMS)", o.headroom_db, o.rms_dbfs)
+                                    : std::string());
     if (const auto rms = number("audio_rms_v")) {
         t += fmt::format("level: {} rms", volts(*rms));
         if (const auto a = number("a_weighted_dbv")) t += fmt::format(" ({:.1f} dBV A-weighted)", *a);

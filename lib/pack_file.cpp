@@ -97,8 +97,9 @@ pack_spec parse_pack(const std::string& text, const fs::path& file)
     p.file = file;
     for (const auto& [k, v] : root) {
         const std::string key(k.str());
-        if (key != "pack" && key != "variant")
-            throw config_error(fmt::format("{}: {}: unknown section (a pack file holds [pack] and [[variant]])", pack_where(v, file), key));
+        if (key != "pack" && key != "variant" && key != "dial_sweep")
+            throw config_error(fmt::format("{}: {}: unknown section (a pack file holds [pack], [[variant]] and [[dial_sweep]])",
+                                           pack_where(v, file), key));
     }
     const auto* pack = root["pack"].as_table();
     if (pack == nullptr) throw config_error(fmt::format("{}: [pack]: missing section, or not a table (needs pack.scenario)", file.string()));
@@ -127,6 +128,19 @@ pack_spec parse_pack(const std::string& text, const fs::path& file)
         throw config_error(fmt::format("{}: [[variant]]: at least one variant is needed", file.string()));
     if (arr->size() > sweep_hard_limit)
         throw config_error(fmt::format("{}: [[variant]]: {} variants: must be at most {}", file.string(), arr->size(), sweep_hard_limit));
+    // A table's `set` list: "section.key=value" texts (paths made relative to this file), with their file:line.
+    const auto read_set = [&](const toml::table& t, const std::string& what, std::vector<std::string>& out, std::vector<std::string>* origins) {
+        const toml::node* set = t.get("set");
+        if (set == nullptr) return;
+        const auto* list = set->as_array();
+        if (list == nullptr) throw config_error(fmt::format("{}: {}: set: must be a list of strings \"section.key=value\"", pack_where(*set, file), what));
+        for (const auto& e : *list) {
+            const auto s = e.value_exact<std::string>();
+            if (!s) throw config_error(fmt::format("{}: {}: set: must be a list of strings \"section.key=value\"", pack_where(e, file), what));
+            out.push_back(pack_relative(*s, file, pack_where(e, file)));
+            if (origins != nullptr) origins->push_back(pack_where(e, file));
+        }
+    };
     for (std::size_t i = 0; i < arr->size(); ++i) {
         const auto* t = (*arr)[i].as_table();
         const std::string where = fmt::format("{}: variant {}", pack_where((*arr)[i], file), i + 1);
@@ -142,17 +156,48 @@ pack_spec parse_pack(const std::string& text, const fs::path& file)
             throw config_error(fmt::format("{}: name = \"{}\": needs letters, digits, '-', '_' or '.' only", where, v.name));
         v.label = pack_string(*t, "label", "label", file);
         if (v.label.empty()) v.label = v.name;
-        if (const toml::node* set = t->get("set")) {
-            const auto* list = set->as_array();
-            if (list == nullptr) throw config_error(fmt::format("{}: variant {}: set: must be a list of strings \"section.key=value\"", pack_where(*set, file), i + 1));
-            for (const auto& e : *list) {
-                const auto s = e.value_exact<std::string>();
-                if (!s) throw config_error(fmt::format("{}: variant {}: set: must be a list of strings \"section.key=value\"", pack_where(e, file), i + 1));
-                v.overrides.push_back(pack_relative(*s, file, pack_where(e, file)));
-                v.origins.push_back(pack_where(e, file));
-            }
-        }
+        read_set(*t, fmt::format("variant {}", i + 1), v.overrides, &v.origins);
         p.variants.push_back(std::move(v));
+    }
+    if (const toml::node* dn = root.get("dial_sweep")) {
+        const auto* darr = dn->as_array();
+        if (darr == nullptr) throw config_error(fmt::format("{}: dial_sweep: must be tables [[dial_sweep]]", pack_where(*dn, file)));
+        if (darr->size() > 8)
+            throw config_error(fmt::format("{}: [[dial_sweep]]: {} sweeps: must be at most 8", pack_where(*dn, file), darr->size()));
+        for (std::size_t i = 0; i < darr->size(); ++i) {
+            const auto* t = (*darr)[i].as_table();
+            const std::string where = fmt::format("{}: dial_sweep {}", pack_where((*darr)[i], file), i + 1);
+            if (t == nullptr) throw config_error(where + ": must be a table [[dial_sweep]]");
+            for (const auto& [k, v] : *t) {
+                const std::string key(k.str());
+                if (key != "name" && key != "label" && key != "band" && key != "set" && key != "from_hz" && key != "to_hz" && key != "glide_s")
+                    throw config_error(fmt::format("{}: dial_sweep {}: {}: unknown key (known: name, label, band, set, from_hz, to_hz, glide_s)",
+                                                   pack_where(v, file), i + 1, key));
+            }
+            pack_dial_sweep d;
+            d.name = pack_string(*t, "name", "name", file);
+            if (!is_variant_name(d.name))
+                throw config_error(fmt::format("{}: name = \"{}\": needs letters, digits, '-', '_' or '.' only", where, d.name));
+            for (const auto& other : p.dial_sweeps)
+                if (other.name == d.name) throw config_error(fmt::format("{}: name = \"{}\": used twice", where, d.name));
+            d.label = pack_string(*t, "label", "label", file);
+            if (d.label.empty()) d.label = d.name;
+            const std::string band = pack_string(*t, "band", "band", file);
+            if (band.empty()) throw config_error(where + ": band: missing (the band file: [band], [dial], [[station]])");
+            d.band = fs::path(band).is_absolute() ? fs::path(band) : file.parent_path() / band;
+            read_set(*t, fmt::format("dial_sweep {}", i + 1), d.overrides, nullptr);
+            d.start_hz = pack_number(*t, "from_hz", "from_hz", file, unit::hertz);
+            d.end_hz = pack_number(*t, "to_hz", "to_hz", file, unit::hertz);
+            d.glide_s = pack_number(*t, "glide_s", "glide_s", file, unit::second);
+            for (const auto& [key, value] : {std::pair{"from_hz", d.start_hz}, std::pair{"to_hz", d.end_hz}})
+                if (value && !(*value >= 100e3 && *value <= 30e6))
+                    throw config_error(fmt::format("{}: {} = {}: must be in [100 kHz, 30 MHz]", pack_where(*t->get(key), file), key,
+                                                   detail::format_value(*value)));
+            if (d.glide_s && !(*d.glide_s > 0.0 && *d.glide_s <= 600.0))
+                throw config_error(fmt::format("{}: glide_s = {}: must be in (0, 600] s", pack_where(*t->get("glide_s"), file),
+                                               detail::format_value(*d.glide_s)));
+            p.dial_sweeps.push_back(std::move(d));
+        }
     }
     return p;
 }
@@ -176,7 +221,7 @@ bool is_pack_file(const fs::path& file)
     }
     try {
         const toml::table root = toml::parse(text, file.string());
-        return root.contains("pack") || root.contains("variant");
+        return root.contains("pack") || root.contains("variant") || root.contains("dial_sweep");
     } catch (const toml::parse_error&) {
         return false;
     }

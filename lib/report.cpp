@@ -42,8 +42,9 @@ pack_outcome make_pack(const fs::path& base_file, const std::vector<std::string>
     o.playlist_csv = dir / "playlist.csv";
     with_described_errors(staged, [&] {
         render_sweep(o.sweep, dir, opt.sweep);
-        std::string extra_html;
-        if (opt.extras) extra_html = opt.extras(o.sweep, dir);
+        pack_extras extra;
+        if (opt.extras) extra = opt.extras(o.sweep, dir);
+        std::string extra_html = std::move(extra.html);
         std::vector<fs::path> wavs;
         std::vector<std::string> names, labels;
         for (const auto& r : vs) {
@@ -51,16 +52,23 @@ pack_outcome make_pack(const fs::path& base_file, const std::vector<std::string>
             names.push_back(r.spec.name);
             labels.push_back(r.spec.label);
         }
+        for (const auto& it : extra.playlist_items) {
+            wavs.push_back(it.wav);
+            names.push_back(it.name);
+            labels.push_back(it.label);
+        }
         const wav_format fmt_ = vs[0].scene.output.format;
         throw_if_cancelled();
-        o.playlist = write_playlist(wavs, names, labels, o.playlist_wav, o.playlist_csv, fmt_);
+        std::vector<warning> playlist_warnings;
+        o.playlist = write_playlist(wavs, names, labels, o.playlist_wav, o.playlist_csv, fmt_, {}, &playlist_warnings);
         std::vector<playlist_segment> matched_playlist;
         if (opt.loudness_matched) {
             throw_if_cancelled();
             o.matched = write_loudness_matched(wavs, names, dir / "matched", fmt_);
             std::vector<fs::path> mw;
             for (const auto& g : o.matched) mw.push_back(g.wav);
-            matched_playlist = write_playlist(mw, names, labels, dir / "playlist-matched.wav", dir / "playlist-matched.csv", fmt_);
+            std::vector<warning> unused; // the same speech as above: its warning is already there
+            matched_playlist = write_playlist(mw, names, labels, dir / "playlist-matched.wav", dir / "playlist-matched.csv", fmt_, {}, &unused);
         }
         pack_page page;
         page.title = opt.title;
@@ -77,6 +85,7 @@ pack_outcome make_pack(const fs::path& base_file, const std::vector<std::string>
         pack_plots plots = draw_pack_plots(o.sweep, dir / "plots", opt.curves);
         page.plot_stems = std::move(plots.stems);
         o.warnings = std::move(plots.warnings);
+        o.warnings.insert(o.warnings.end(), playlist_warnings.begin(), playlist_warnings.end());
         write_text_atomic(o.page, render_page(page));
         throw_if_cancelled();
         staged.publish();

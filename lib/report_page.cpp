@@ -69,7 +69,7 @@ std::string render_page(const pack_page& p)
 
     // Playlists: the loudness-matched one first (safe at one volume setting), then the level-consistent one.
     auto segment_table = [&](const std::vector<playlist_segment>& segs, bool levels) {
-        std::string t = "<table><tr><th>#</th><th class=l>variant</th><th class=l>label</th><th>code starts, s</th>"
+        std::string t = "<table><tr><th>#</th><th class=l>variant</th><th class=l>label</th><th>announcement starts, s</th>"
                         "<th>audio starts, s</th><th>audio ends, s</th>";
         t += levels ? "<th>level, dBFS RMS</th><th>step from previous, dB</th></tr>\n" : "<th>gain, dB</th></tr>\n";
         for (std::size_t k = 0; k < segs.size(); ++k) {
@@ -79,9 +79,10 @@ std::string render_page(const pack_page& p)
             const std::size_t v = static_cast<std::size_t>(std::max(1, s.number)) - 1;
             if (levels && v < p.listening.size()) {
                 const std::size_t pv = k > 0 ? static_cast<std::size_t>(std::max(1, segs[k - 1].number)) - 1 : v;
-                t += fmt::format("<td>{:.1f}</td><td>{}</td></tr>\n", p.listening[v].rms_dbfs,
+                t += fmt::format("<td>{:.1f}</td><td>{}{}</td></tr>\n", p.listening[v].rms_dbfs,
                                  k > 0 && pv < p.listening.size() ? fmt::format("{:+.1f}", p.listening[v].rms_dbfs - p.listening[pv].rms_dbfs)
-                                                                  : std::string("-"));
+                                                                  : std::string("-"),
+                                 s.fade_in_s > 0.0 ? fmt::format(" (announced, faded in over {:.3g} s)", s.fade_in_s) : std::string());
             } else if (levels) {
                 t += "<td>-</td><td>-</td></tr>\n";
             } else {
@@ -92,8 +93,12 @@ std::string render_page(const pack_page& p)
         return t + "</table>\n";
     };
     if (!p.playlist_wav.empty() || !p.matched_playlist_wav.empty()) {
-        h += "<h2 id=\"playlists\">Playlists</h2>\n<p>Each variant is announced by beeps: one long beep counts five, one short "
-             "beep counts one (variant 7 = long, short, short).</p>\n";
+        const auto& any = !p.playlist.empty() ? p.playlist : p.matched_playlist;
+        const bool spoken = !any.empty() && std::all_of(any.begin(), any.end(), [](const playlist_segment& g) { return g.spoken; });
+        h += spoken ? "<h2 id=\"playlists\">Playlists</h2>\n<p>Each variant is announced in synthesized speech (its number "
+                      "and label). A step of more than 10 dB from the item before is announced too, and the item fades in.</p>\n"
+                    : "<h2 id=\"playlists\">Playlists</h2>\n<p>Each variant is announced by beeps (speech synthesis was not "
+                      "available): one long beep counts five, one short beep counts one (variant 7 = long, short, short).</p>\n";
         int number = 0;
         if (!p.matched_playlist_wav.empty()) {
             h += fmt::format("<h3 id=\"playlist-matched\">{}. Loudness-matched playlist: start here</h3>\n<p>Every variant scaled to "

@@ -6,6 +6,7 @@
 #include "galena/validate.hpp"
 
 #include <algorithm>
+#include <cctype>
 #include <cerrno>
 #include <cmath>
 #include <cstdint>
@@ -210,7 +211,24 @@ const std::map<std::string, std::map<std::string, key_entry>>& key_table()
         {"output",
          {
              {"sample_rate_hz", quantity(unit::hertz, [](scenario& s) -> double& { return s.render.audio_rate_hz; })},
-             {"full_scale_v", quantity(unit::volt, [](scenario& s) -> double& { return s.output.full_scale_v; })},
+             // "auto" (any case) or 0: the automatic full scale; otherwise a voltage.
+             {"full_scale_v", key_entry(
+                                  [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
+                                      if (n.is_string()) {
+                                          std::string t(*n.value<std::string>());
+                                          for (char& c : t) c = static_cast<char>(std::tolower(static_cast<unsigned char>(c)));
+                                          if (t == "auto") {
+                                              s.output.full_scale_v = 0.0;
+                                              return;
+                                          }
+                                      }
+                                      try {
+                                          s.output.full_scale_v = as_number(n, f, w, unit::volt);
+                                      } catch (const config_error& e) {
+                                          throw config_error(std::string(e.what()) + ", or \"auto\" (the default: chosen from the loudest peak)");
+                                      }
+                                  },
+                                  unit::volt, [](scenario& s) -> double& { return s.output.full_scale_v; })},
              {"format", [](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
                   try {
                       s.output.format = parse_wav_format(as_string(n, f, w));
@@ -566,7 +584,8 @@ void validate_scenario(const scenario& s)
         detail::require_above("signal.sweep_stop_hz", p.sweep_stop_hz, p.sweep_start_hz, nyq, "Hz");
     }
     // 1 nV floor: a subnormal full scale passes "> 0" but its inverse overflows at write time.
-    detail::require_range("output.full_scale_v", s.output.full_scale_v, 1e-9, 1e4, "V");
+    if (s.output.full_scale_v != 0.0) // 0: automatic
+        detail::require_range("output.full_scale_v", s.output.full_scale_v, 1e-9, 1e4, "V");
     detail::require_range("solver.relative_tolerance", s.render.stepper.relative_tolerance, 1e-10, 1e-1);
     detail::require_above("solver.absolute_tolerance_v", s.render.stepper.absolute_tolerance_v, 0.0, 1.0, "V");
     // -1 (the default, written by to_toml) asks for the automatic preroll; any other value is a duration.
@@ -1073,7 +1092,7 @@ std::string to_toml(const scenario& s)
                      num(e.motional_inductance_h), num(e.motional_capacitance_f), num(e.resistance_ohm), num(e.inductance_h),
                      num(e.loss_resistance_ohm), num(e.piezo_force_factor_n_per_volt), num(e.magnetic_force_factor_tm));
     o += fmt::format("\n[output]\nsample_rate_hz = {}\nformat = \"{}\"\nfull_scale_v = {}\n", num(s.render.audio_rate_hz),
-                     to_string(s.output.format), num(s.output.full_scale_v));
+                     to_string(s.output.format), s.output.full_scale_v == 0.0 ? std::string("\"auto\"") : num(s.output.full_scale_v));
     o += fmt::format("\n[solver]\nmethod = \"{}\"\nsteps_per_cycle = {}\ndc_tolerance = {}\nnewton_tolerance = {}\n"
                      "relative_tolerance = {}\nabsolute_tolerance_v = {}\npreroll_s = {}\ndc_block_hz = {}\ncarrier_steps_floor = {}\n",
                      to_string(s.render.method), s.render.steps_per_cycle, num(s.render.dc_tolerance), num(s.render.newton_tolerance),

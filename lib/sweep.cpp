@@ -440,6 +440,7 @@ void relocate(sweep_result& res, const staged_output& staged)
     for (auto& r : res.variants) {
         r.dir = staged.published(r.dir);
         relocate(r.job, staged);
+        if (r.measured_separately) relocate(r.measure, staged);
     }
     res.csv = staged.published(res.csv);
     res.markdown = staged.published(res.markdown);
@@ -451,12 +452,24 @@ sweep_result run_sweep(const fs::path& base_file, const std::vector<std::string>
     sweep_result res = prepare_sweep(base_file, base_overrides, variants, opt);
     staged_output staged(out_dir, opt.overwrite, res.inputs);
     check_sweep_outputs(res, staged);
+    staged.check("matched");
+    staged.owns("matched");
     with_described_errors(staged, [&] {
         render_sweep(res, staged.dir(), opt);
+        throw_if_cancelled();
+        // Loudness-matched copies, as a pack has: each variant's WAV at one RMS, for listening side by side.
+        std::vector<fs::path> wavs;
+        std::vector<std::string> names;
+        for (const auto& r : res.variants) {
+            wavs.push_back(r.job.wav);
+            names.push_back(r.spec.name);
+        }
+        res.matched = write_loudness_matched(wavs, names, staged.dir() / "matched", res.variants.front().scene.output.format);
         throw_if_cancelled();
         staged.publish();
     });
     relocate(res, staged);
+    for (auto& g : res.matched) g.wav = staged.published(g.wav);
     for (auto& r : res.variants) {
         for (auto& w : r.job.warnings) w.message = staged.describe(w.message);
         for (auto& w : r.warnings) w.message = staged.describe(w.message);
@@ -527,31 +540,14 @@ void render_sweep(sweep_result& res, const fs::path& out_dir, const sweep_option
                 jo.stop = &failed;
                 jo.cancel = opt.cancel;
                 if (opt.progress) jo.progress = [&, i](double f) { tick(i, f * main_s[i]); };
-                r.job = render_job_into(r.scene, r.dir, jo);
-                r.metrics = r.job.metrics;
-                r.warnings = r.job.warnings;
+                // The calibrated files wait for the common full scale (below), chosen once every render is known.
+                r.job = render_job_unscaled(r.scene, r.dir, jo);
                 if (r.measured_separately) {
                     fs::create_directories(r.dir / "measure", ec);
                     if (opt.progress) jo.progress = [&, i](double f) { tick(i, main_s[i] + f * measure_s[i]); };
-                    job_outcome mo = render_job_into(r.measure_scene, r.dir / "measure", jo);
-                    r.measure_earpiece_v = std::move(mo.analysis_v);
-                    // Levels of the programme itself; distortion figures from the tone.
-                    nlohmann::json merged = mo.metrics;
-                    for (const char* k : {"dc_v", "audio_rms_v", "audio_peak_v", "a_weighted_rms_v", "a_weighted_dbv", "peak_audio_v",
-                                          "clipped_samples"})
-                        if (r.job.metrics.contains(k)) merged[k] = r.job.metrics[k];
-                    merged["measure_dc_v"] = mo.metrics["dc_v"];
-                    merged["measure_audio_rms_v"] = mo.metrics["audio_rms_v"];
-                    r.warnings.clear();
-                    for (const auto& x : r.job.warnings)
-                        if (x.code != warning_code::no_distortion_figures) r.warnings.push_back(x);
-                    for (const auto& x : mo.warnings) r.warnings.push_back(with_context("tone measurement: ", x));
-                    set_warnings(merged, r.warnings);
-                    merged["distortion_from"] = fmt::format("{:.6g} Hz tone render in measure/", opt.measure_tone_hz);
-                    r.metrics = merged;
+                    r.measure = render_job_unscaled(r.measure_scene, r.dir / "measure", jo);
+                    r.measure_earpiece_v = std::move(r.measure.analysis_v);
                 }
-                write_text_atomic(r.dir / "variant.json",
-                                  nlohmann::json{{"name", r.spec.name}, {"label", r.spec.label}, {"set", r.spec.overrides}}.dump(2) + "\n");
                 std::lock_guard<std::mutex> lk(m);
                 done[i] = 1;
                 if (opt.progress) {
@@ -596,8 +592,76 @@ void render_sweep(sweep_result& res, const fs::path& out_dir, const sweep_option
     }
     throw_if_cancelled();
     if (opt.cancel != nullptr) opt.cancel->throw_if_requested();
+    // One full scale for every variant that asks for the automatic one: from the loudest peak of them all
+    // (their tone measurements included), so the files keep their relative loudness.
+    double loudest = 0.0;
+    for (const auto& r : res.variants) {
+        if (r.scene.output.full_scale_v != 0.0) continue;
+        loudest = std::max(loudest, r.job.peak_audio_v);
+        if (r.measured_separately) loudest = std::max(loudest, r.measure.peak_audio_v);
+    }
+    const double common_v = choose_full_scale_v(loudest);
+    job_options fo;
+    fo.overwrite = opt.overwrite;
+    for (auto& r : res.variants) {
+        throw_if_cancelled();
+        const bool automatic = r.scene.output.full_scale_v == 0.0;
+        const double fsv = automatic ? common_v : r.scene.output.full_scale_v;
+        try {
+            finish_job(r.job, r.scene, fsv, automatic, fo);
+            r.metrics = r.job.metrics;
+            r.warnings = r.job.warnings;
+            if (r.measured_separately) {
+                finish_job(r.measure, r.measure_scene, fsv, automatic, fo);
+                const job_outcome& mo = r.measure;
+                // Levels of the programme itself; distortion figures from the tone.
+                nlohmann::json merged = mo.metrics;
+                for (const char* k : {"dc_v", "audio_rms_v", "audio_peak_v", "a_weighted_rms_v", "a_weighted_dbv", "peak_audio_v",
+                                      "clipped_samples", "headroom_db", "rms_dbfs"})
+                    if (r.job.metrics.contains(k)) merged[k] = r.job.metrics[k];
+                merged["measure_dc_v"] = mo.metrics["dc_v"];
+                merged["measure_audio_rms_v"] = mo.metrics["audio_rms_v"];
+                r.warnings.clear();
+                for (const auto& x : r.job.warnings)
+                    if (x.code != warning_code::no_distortion_figures) r.warnings.push_back(x);
+                for (const auto& x : mo.warnings) r.warnings.push_back(with_context("tone measurement: ", x));
+                set_warnings(merged, r.warnings);
+                merged["distortion_from"] = fmt::format("{:.6g} Hz tone render in measure/", opt.measure_tone_hz);
+                r.metrics = merged;
+            }
+            write_text_atomic(r.dir / "variant.json",
+                              nlohmann::json{{"name", r.spec.name}, {"label", r.spec.label}, {"set", r.spec.overrides}}.dump(2) + "\n");
+        } catch (const audio_error& e) {
+            throw audio_error(fmt::format("variant {}: {}", r.spec.name, e.what()));
+        }
+        // The scene as rendered: the chosen full scale (the page and tables read it from here).
+        if (automatic) {
+            r.scene.output.full_scale_v = fsv;
+            r.measure_scene.output.full_scale_v = fsv;
+        }
+    }
     write_text_atomic(res.csv, table_csv(res.variants));
     write_text_atomic(res.markdown, table_markdown(res.variants));
+}
+
+std::string full_scale_text(const sweep_result& res)
+{
+    if (res.variants.empty()) return {};
+    double lo = std::numeric_limits<double>::infinity(), hi = 0.0, peak = 0.0;
+    bool all_auto = true;
+    for (const auto& r : res.variants) {
+        lo = std::min(lo, r.job.full_scale_v);
+        hi = std::max(hi, r.job.full_scale_v);
+        peak = std::max(peak, r.job.peak_audio_v);
+        all_auto = all_auto && r.job.full_scale_auto;
+    }
+    const std::string v = format_quantity(hi, unit::volt, 3, true);
+    if (lo != hi)
+        return fmt::format("full scale from {} to {} peak (set per variant in output.full_scale_v)", format_quantity(lo, unit::volt, 3, true), v);
+    const std::string headroom = peak > 0.0 ? fmt::format("headroom {:.1f} dB above the loudest peak", 20.0 * std::log10(hi / peak))
+                                            : std::string("all silent");
+    return fmt::format("full scale {} peak for every variant ({}; {})", v, all_auto ? "chosen automatically" : "output.full_scale_v",
+                       headroom);
 }
 
 } // namespace galena

@@ -8,7 +8,7 @@ namespace galena {
 
 namespace {
 // One table: code and stable name, in declaration order.
-constexpr std::array<std::pair<warning_code, std::string_view>, 16> names{{
+constexpr std::array<std::pair<warning_code, std::string_view>, 18> names{{
     {warning_code::adaptive_fallback, "adaptive-fallback"},
     {warning_code::coarse_step_floor, "coarse-step-floor"},
     {warning_code::step_count_fallback, "step-count-fallback"},
@@ -25,6 +25,8 @@ constexpr std::array<std::pair<warning_code, std::string_view>, 16> names{{
     {warning_code::station_tone_unmeasured, "station-tone-unmeasured"},
     {warning_code::transfer_one_region, "transfer-one-region"},
     {warning_code::plots_left_out, "plots-left-out"},
+    {warning_code::quiet_output, "quiet-output"},
+    {warning_code::speech_unavailable, "speech-unavailable"},
 }};
 } // namespace
 

@@ -44,7 +44,7 @@ if grep -E ": warning: |CMake Warning" "$logs/run-1.log" "$logs/run-2.log"; then
   echo "fresh-clone: the build printed warnings (above)" >&2
   exit 1
 fi
-for f in demo-out/index.html demo-out/table.csv demo-out/playlist.wav; do
+for f in demo-out/index.html demo-out/table.csv demo-out/playlist.wav demo-out/dial/dial-960k-1030k/dial.wav demo-out/dial/dial-960k-1030k/survey.csv; do
   [ -s "$f" ] || { echo "fresh-clone: $f is missing after the set-up" >&2; exit 1; }
 done
 if [ -n "$(git status --porcelain --untracked-files=no)" ]; then

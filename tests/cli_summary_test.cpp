@@ -51,7 +51,9 @@ const std::string example = q(src_dir / "scenarios/example.toml");
 TEST_CASE("render prints a short summary; --verbose prints every figure; metrics.json always holds them")
 {
     const fs::path d = fresh("summary");
-    const auto r = galena_cli("render " + example + " --out " + q(d / "out") + " --set signal.carrier_hz=200k --set signal.duration_s=0.3", d);
+    const auto r = galena_cli("render " + example + " --out " + q(d / "out") +
+                                  " --set signal.carrier_hz=200k --set signal.duration_s=0.3 --set output.full_scale_v=2",
+                              d);
     REQUIRE_MESSAGE(r.rc == 0, r.err);
     CHECK(r.out.find("wrote " + (d / "out/recovered.wav").string() + ": 0.3 s, 48 kHz pcm24, full scale 2 V peak\n") != std::string::npos);
     CHECK(r.out.find("\nlevel: ") != std::string::npos);
@@ -72,6 +74,9 @@ TEST_CASE("render prints a short summary; --verbose prints every figure; metrics
     CHECK(v.out.find("thd_percent") != std::string::npos);
     CHECK(v.out.find("detection_efficiency") != std::string::npos);
     CHECK(v.out.find("steps per carrier cycle") != std::string::npos);
+    // The automatic full scale (the default) says so, with the headroom.
+    CHECK(v.out.find(" peak (chosen automatically: ") != std::string::npos);
+    CHECK(v.out.find("full_scale_auto") != std::string::npos);
     CHECK(lines(v.out) > 20);
     // No warning line in the figures: each warning is printed once, on stderr.
     CHECK(v.out.find("warning") == std::string::npos);

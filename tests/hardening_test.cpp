@@ -442,7 +442,9 @@ TEST_CASE("fades: the WAV starts and ends with a 10 ms raised-cosine fade, and n
     // Raised-cosine (Hann half-window) fade, gain 0.5 (1 - cos(pi t / T)): common practice for click-free
     // edges. The same scenario is rendered without a fade and with the default one, via the library.
     const fs::path d = fresh("fades");
-    const galena::scenario s = galena::parse_scenario("[output]\nformat = \"float\"\n" + quick_scenario().substr(9), d / "s.toml");
+    galena::scenario s = galena::parse_scenario("[output]\nformat = \"float\"\n" + quick_scenario().substr(9), d / "s.toml");
+    // One explicit calibration for both (the automatic one follows each render's own peak).
+    s.output.full_scale_v = 2.0;
     for (const char* leaf : {"plain", "faded"}) fs::create_directories(d / leaf);
     galena::job_options plain;
     plain.fade_s = 0.0;

@@ -3,11 +3,15 @@
 #include "galena/error.hpp"
 #include "galena/pack_file.hpp"
 #include "galena/sweep.hpp"
+#include "galena/audio_io.hpp"
+#include "galena/warning.hpp"
 
 #include <doctest/doctest.h>
 #include <fmt/format.h>
 
+#include <algorithm>
 #include <cmath>
+#include <utility>
 
 #include <filesystem>
 #include <string>
@@ -83,6 +87,31 @@ TEST_CASE("pack text: every mistake names the file and line")
     REQUIRE(p.variants.size() == 1);
     CHECK(p.variants[0].label == "v-1");
     CHECK(p.variants[0].overrides == std::vector<std::string>{"load.bleeder_ohm=1e3"});
+}
+
+TEST_CASE("pack text: band sweeps ([[dial_sweep]]) with their file and line")
+{
+    const std::string head = "[pack]\nscenario = \"a.toml\"\n[[variant]]\nname = \"v\"\n";
+    const auto p = parse_pack(head + "[[dial_sweep]]\nname = \"d\"\nband = \"b.toml\"\nfrom_hz = \"960k\"\nto_hz = \"1.03MHz\"\n"
+                                     "glide_s = 2\nset = [\"tuner.coupling=0.02\"]\n",
+                              "dir/p.toml");
+    REQUIRE(p.dial_sweeps.size() == 1);
+    const auto& d = p.dial_sweeps[0];
+    CHECK(d.label == "d");
+    CHECK(d.band == fs::path("dir/b.toml"));
+    CHECK(d.start_hz == 960e3);
+    CHECK(d.end_hz == 1.03e6);
+    CHECK(d.glide_s == 2.0);
+    CHECK(d.overrides == std::vector<std::string>{"tuner.coupling=0.02"});
+    CHECK(p.variants.size() == 1); // the variants are kept beside the sweep
+    CHECK_THROWS_WITH_AS(parse_pack(head + "[[dial_sweep]]\nname = \"d\"\nband = \"b.toml\"\nspeed = 2\n", "p.toml"),
+                         doctest::Contains("p.toml:9: dial_sweep 1: speed: unknown key"), config_error);
+    CHECK_THROWS_WITH_AS(parse_pack(head + "[[dial_sweep]]\nname = \"d\"\nband = \"b.toml\"\nfrom_hz = \"96k\"\n", "p.toml"),
+                         doctest::Contains("p.toml:9: from_hz = 96000: must be in [100 kHz, 30 MHz]"), config_error);
+    CHECK_THROWS_WITH_AS(parse_pack(head + "[[dial_sweep]]\nname = \"d\"\n", "p.toml"),
+                         doctest::Contains("dial_sweep 1: band: missing"), config_error);
+    CHECK_THROWS_WITH_AS(parse_pack(head + "[[dial_sweep]]\nname = \"d\"\nband = \"b.toml\"\n[[dial_sweep]]\nname = \"d\"\nband = \"b.toml\"\n", "p.toml"),
+                         doctest::Contains("name = \"d\": used twice"), config_error);
 }
 
 TEST_CASE("engineering values in axes, labels and pack files; the pack's default measurement tone")
@@ -278,4 +307,87 @@ TEST_CASE("a sweep's own cancel token stops that sweep before it finishes, leave
     CHECK(ticks >= 1);
     CHECK_FALSE(fs::exists(out));
     CHECK_FALSE(cancel_requested());
+}
+
+namespace {
+/// RMS and peak of a WAV's samples (digital full scale = 1), read through libsndfile by read_mono.
+std::pair<double, double> wav_rms_peak(const fs::path& p)
+{
+    const auto x = read_mono(p);
+    double ss = 0.0, pk = 0.0;
+    for (float v : x) {
+        ss += static_cast<double>(v) * v;
+        pk = std::max(pk, static_cast<double>(std::fabs(v)));
+    }
+    return {std::sqrt(ss / static_cast<double>(x.size())), pk};
+}
+} // namespace
+
+TEST_CASE("levels: one automatic full scale for every variant with its headroom stated, no file below -60 dBFS, matched copies")
+{
+    // dBFS here is 20 log10 of the RMS of the samples, full scale = 1 (a full-scale sine reads -3.01 dBFS;
+    // AES17 would add 3.01 dB). The rule (the loudest peak + 1 dB, rounded up to two significant digits;
+    // -1 dBFS peaks are common mastering practice) is restated here on the WAVs' own samples.
+    const fs::path out = fs::path(GALENA_TEST_TMP) / "sweep-levels";
+    fs::remove_all(out);
+    sweep_options opt;
+    opt.threads = 2;
+    // A weak and two stronger carriers: 20 dB and more apart at the earpiece.
+    const auto res = run_sweep(fs::path(GALENA_SOURCE_DIR) / "scenarios/example.toml",
+                               {"signal.carrier_hz=200k", "signal.duration_s=0.15", "output.full_scale_v=auto"},
+                               {{"weak", "", {"signal.carrier_peak_v=0.1"}, {}}, {"mid", "", {"signal.carrier_peak_v=0.3"}, {}},
+                                {"strong", "", {"signal.carrier_peak_v=1"}, {}}},
+                               out, opt);
+    REQUIRE(res.variants.size() == 3);
+    const double fsv = res.variants[0].job.full_scale_v;
+    double loudest_v = 0.0;
+    for (const auto& r : res.variants) {
+        CAPTURE(r.spec.name);
+        CHECK(r.job.full_scale_v == fsv); // one calibration for the command
+        CHECK(r.metrics.at("full_scale_auto").get<bool>());
+        CHECK(r.scene.output.full_scale_v == fsv);
+        const auto [rms, pk] = wav_rms_peak(r.job.wav);
+        loudest_v = std::max(loudest_v, pk * fsv);
+        const double rms_dbfs = 20.0 * std::log10(rms);
+        MESSAGE(r.spec.name << ": " << rms_dbfs << " dBFS RMS, full scale " << fsv << " V");
+        CHECK(rms_dbfs > -60.0);
+        CHECK(std::fabs(r.metrics.at("rms_dbfs").get<double>() - rms_dbfs) < 0.01);
+        CHECK_FALSE(has_warning(r.warnings, warning_code::quiet_output));
+        CHECK_FALSE(has_warning(r.warnings, warning_code::output_clipped));
+    }
+    // The headroom: at least 1 dB, and one step less in the second significant digit would leave less.
+    const double headroom = 20.0 * std::log10(fsv / loudest_v);
+    CHECK(headroom >= 1.0 - 0.01);
+    const double step = std::pow(10.0, std::floor(std::log10(fsv)) - 1.0);
+    CHECK(std::fabs(fsv / step - std::round(fsv / step)) < 1e-6); // two significant digits
+    CHECK(20.0 * std::log10((fsv - step) / loudest_v) < 1.0);
+    const auto& strong = res.variants[2];
+    CHECK(strong.metrics.at("headroom_db").get<double>() == doctest::Approx(headroom).epsilon(1e-3).scale(0));
+    // Loudness-matched copies, as a pack has: every copy at -26 dBFS RMS (peaks permitting).
+    REQUIRE(res.matched.size() == 3);
+    CHECK(fs::is_regular_file(out / "matched/gains.csv"));
+    for (const auto& g : res.matched) {
+        CAPTURE(g.name);
+        const auto [rms, pk] = wav_rms_peak(g.wav);
+        if (!g.peak_limited) CHECK(20.0 * std::log10(rms) == doctest::Approx(-26.0).epsilon(0.0005).scale(0));
+        CHECK(pk <= std::pow(10.0, -1.0 / 20.0) + 1e-4);
+    }
+}
+
+TEST_CASE("levels: an explicit full scale is kept, and a file below -60 dBFS RMS says so")
+{
+    const fs::path out = fs::path(GALENA_TEST_TMP) / "sweep-quiet";
+    fs::remove_all(out);
+    sweep_options opt;
+    opt.threads = 1;
+    const auto res = run_sweep(fs::path(GALENA_SOURCE_DIR) / "scenarios/example.toml",
+                               {"signal.carrier_hz=200k", "signal.duration_s=0.15", "output.full_scale_v=2"},
+                               {{"weak", "", {"signal.carrier_peak_v=0.01"}, {}}}, out, opt);
+    const auto& r = res.variants.front();
+    CHECK(r.job.full_scale_v == 2.0);
+    CHECK_FALSE(r.metrics.at("full_scale_auto").get<bool>());
+    const auto [rms, pk] = wav_rms_peak(r.job.wav);
+    MESSAGE("10 mV carrier at 2 V full scale: " << 20.0 * std::log10(rms) << " dBFS RMS");
+    REQUIRE(20.0 * std::log10(rms) < -60.0);
+    CHECK(has_warning(r.warnings, warning_code::quiet_output));
 }

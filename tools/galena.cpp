@@ -166,6 +166,7 @@ void print_pack(const galena::pack_outcome& o, const std::string& out_dir, doubl
     fmt::print("{}", galena::table_markdown(o.sweep.variants));
     fmt::print("\nwrote {} ({} variants, playlist {}); {:.1f} s wall\n", (std::filesystem::path(out_dir) / "index.html").string(),
                o.sweep.variants.size(), o.playlist_wav.string(), wall_s);
+    fmt::print("{}\n", galena::full_scale_text(o.sweep));
     std::fflush(stdout);
     for (const auto& w : o.warnings) std::fprintf(stderr, "galena: warning: %s\n", w.message.c_str());
 }
@@ -453,7 +454,8 @@ int main(int argc, char** argv)
             so.allow_long = allow_long;
             so.allow_large = allow_large;
             const auto r = galena::run_sweep(sw_scenario, sw_sets, collect_variants(sw_vary, sw_variants), sw_out, so);
-            fmt::print("{}\nwrote {} and {}\n", galena::table_markdown(r.variants), r.csv.string(), r.markdown.string());
+            fmt::print("{}\nwrote {} and {}, loudness-matched copies in {}\n{}\n", galena::table_markdown(r.variants), r.csv.string(),
+                       r.markdown.string(), (std::filesystem::path(sw_out) / "matched").string(), galena::full_scale_text(r));
             return exit_ok;
         }
         if (*compare || *demo) {
@@ -487,6 +489,7 @@ int main(int argc, char** argv)
                 po.sweep.measure_duration_s = cmp_tone_s_opt->count() > 0 ? cmp_tone_s : pack.measure_duration_s;
                 po.note = fmt::format("Made by galena from {}.", input.filename().string());
                 po.protect.push_back(input);
+                galena::add_pack_dial_sweeps(po, pack, sets);
             } else {
                 base = input;
                 variants = collect_variants(cmp_vary, cmp_variants);

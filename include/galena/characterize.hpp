@@ -160,8 +160,9 @@ struct render_metrics {
 /// Flat keys: settle_s, settle_basis, output_tau_s, charge_tau_s, earpiece_tau_s.
 [[nodiscard]] nlohmann::json to_json(const settling_window& w);
 /// Flat keys: clip_dc_load_ohm, clip_node_capacitance_f, diagonal_clip_m_max, ac_coupled_load, ac_load_ohm,
-/// negative_peak_m_max, combined_clip_m_max, exceeds_diagonal_clip, exceeds_negative_peak_clip,
-/// failure_to_follow_fraction (null when not observed), failure_to_follow_observed.
+/// negative_peak_m_max, combined_clip_m_max, diagonal_clip_tone_hz (the tone the limits apply to),
+/// m_above_diagonal_formula (information), diagonal_clipping (diagonal_clipping_status), clipping_notes,
+/// exceeds_negative_peak_clip, failure_to_follow_fraction (null when not observed), failure_to_follow_observed.
 [[nodiscard]] nlohmann::json to_json(const clipping_diagnosis& d);
 /// Keys: transfer_tone_hz, transfer_modulation_index, transfer_low_slope_db_per_db, transfer_high_slope_db_per_db,
 /// transfer_transition_v, and arrays transfer_carrier_peak_v, transfer_audio_v, transfer_dc_v, transfer_h2_ratio.

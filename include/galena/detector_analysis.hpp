@@ -66,8 +66,20 @@ struct clipping_diagnosis {
 void observe_failure_to_follow(clipping_diagnosis& d, const detector_network& net, std::span<const double> earpiece_v,
                                double fs_hz);
 
-/// The warnings a render's metrics should carry for this tone: one per exceeded or observed clipping limit
-/// (codes diagonal_clipping, negative_peak_clipping, failure_to_follow).
+/// The warnings a render's metrics should carry for this tone. Clipping is reported as observed when the
+/// waveform check observed it (failure_to_follow: "diagonal clipping observed", with the formula's limit
+/// and its frequency as context). The diagonal formula alone warns (diagonal_clipping, "predicted, not
+/// checked") only when the check is not available for this load; when the check ran and found the render
+/// clean, the formula's limit is information (clipping_notes), not a warning. negative_peak_clipping when
+/// m exceeds R_ac / R_dc (a formula for AC-coupled loads, where the check does not apply).
 [[nodiscard]] std::vector<warning> clipping_warnings(const clipping_diagnosis& d);
+
+/// Information for a person, not warnings: today the diagonal formula's limit with its tone frequency when
+/// m is above it but the render measures clean.
+[[nodiscard]] std::vector<std::string> clipping_notes(const clipping_diagnosis& d);
+
+/// "observed", "not observed" (the check ran), "predicted, not checked" (no check for this load, m above
+/// the formula's limit) or "not predicted".
+[[nodiscard]] std::string diagonal_clipping_status(const clipping_diagnosis& d);
 
 } // namespace galena

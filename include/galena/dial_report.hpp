@@ -5,6 +5,8 @@
 
 #include "galena/band_file.hpp"
 #include "galena/dial.hpp"
+#include "galena/pack_file.hpp"
+#include "galena/report.hpp"
 #include "galena/warning.hpp"
 
 #include <filesystem>
@@ -46,6 +48,14 @@ dial_outcome run_dial_into(const scenario& s, const band_spec& band, const std::
 /// Throws config_error, audio_error, integration_error, cancelled_error.
 dial_outcome run_dial_job(const std::filesystem::path& scenario_file, const std::vector<std::string>& overrides,
                           const std::filesystem::path& band_file, const std::filesystem::path& out_dir, const dial_job_options& opt);
+
+/// Adds a pack's band sweeps ([[dial_sweep]]) to `po`: after the variants, each is rendered by
+/// run_dial_into into OUT/dial/<name>/ (the pack's scenario with `base_overrides` and the sweep's own set),
+/// and the page gets a "Turning the dial" section: each sweep's audio player, dial map and band survey. The
+/// sweep's audio has its own automatic full scale (it is not in the level-consistent playlist). Nothing is
+/// added when the pack has no sweeps. Band files are loaded here (config_error with file:line).
+void add_pack_dial_sweeps(pack_options& po, const pack_spec& pack, const std::vector<std::string>& base_overrides,
+                          const dial_job_options& opt = {});
 
 /// The survey as CSV (header + one record per station) and as a Markdown table with the threshold stated.
 [[nodiscard]] std::string survey_csv(const std::vector<survey_row>& rows);

@@ -28,6 +28,19 @@ inline constexpr double long_render_limit_steps = 3.84e9;
 
 struct job_outcome;
 
+/// Headroom of the automatic full scale above the loudest peak of a command's renders, dB (at least): the
+/// loudest peak lands at -1 dBFS or a little below, as in the normalised copy and the matched set.
+inline constexpr double auto_headroom_db = 1.0;
+/// A written WAV whose RMS lies below this, dBFS, raises a quiet_output warning (sine peak 0 dBFS = -3.01 dBFS).
+inline constexpr double quiet_output_dbfs = -60.0;
+
+/// The automatic full scale for renders whose loudest peak is `peak_v` (V, after fades): the smallest value
+/// with two significant digits (0.14, 0.15, ..., 2.7 V) at least auto_headroom_db above it, so the headroom
+/// is 1 to 1.9 dB and the calibration reads as a short number. Every render is known before any WAV is
+/// written, so nothing can jump to full scale. 1 V for a silent render; clamped to [1e-9, 1e4] V, the
+/// range output.full_scale_v accepts.
+[[nodiscard]] double choose_full_scale_v(double peak_v);
+
 /// Options of a job.
 struct job_options {
     bool overwrite = false;         ///< replace existing output files
@@ -50,7 +63,11 @@ struct job_outcome {
     std::filesystem::path wav;             ///< the calibrated WAV
     std::filesystem::path normalised_wav;  ///< empty unless the calibrated WAV clipped
     std::filesystem::path sidecar;         ///< JSON with the calibration and solver figures
-    double full_scale_v = 0.0;
+    double full_scale_v = 0.0;             ///< volts at digital full scale of the written WAVs
+    bool full_scale_auto = false;          ///< full_scale_v was chosen automatically (output.full_scale_v = "auto")
+    double headroom_db = 0.0;              ///< 20 log10(full_scale_v / peak_audio_v), dB (inf for silence)
+    double rms_dbfs = 0.0;                 ///< RMS of the calibrated WAV, dBFS (-inf for silence)
+    double audio_rms_v = 0.0;              ///< RMS of the audio written (DC removed, fades applied), V
     double peak_audio_v = 0.0;             ///< largest |audio| written (DC removed, fades applied), V
     std::size_t clipped_samples = 0;       ///< in the calibrated WAV
     double normalised_gain_db = 0.0;       ///< gain applied in the normalised copy, dB
@@ -59,7 +76,11 @@ struct job_outcome {
     std::vector<float> analysis_v;         ///< the earpiece voltage (DC included) for metrics; bounded
     std::filesystem::path metrics_file;    ///< DIR/metrics.json
     nlohmann::json metrics;                ///< what metrics.json holds (flat keys, SI units)
-    std::vector<warning> warnings;         ///< the job's (clip input, output clipping), then the render's and the analysis's
+    std::vector<warning> warnings;         ///< the job's (clip input, output clipping, quiet output), then the render's and the analysis's
+    /// Between render_job_unscaled and finish_job: the hidden unscaled intermediate (float WAV, volts / 1000)
+    /// and the render's and analysis's warnings; both empty once finished.
+    std::filesystem::path unscaled;
+    std::vector<warning> pending_warnings;
 };
 
 /// Flat metrics of a rendered earpiece voltage (measure_render of the characterize module, with the request
@@ -79,7 +100,8 @@ struct job_outcome {
 [[nodiscard]] nlohmann::json receiver_job_metrics(const scenario& s, std::span<const float> earpiece_v, const receiver_figures& fig,
                                                   const std::vector<warning>& warnings);
 
-/// Renders `s` into `out_dir` (created if missing) as one unit: the files are staged beside it and
+/// Renders `s` into `out_dir` (created if missing) as one unit (full scale: output.full_scale_v, or when it
+/// is "auto" (0) choose_full_scale_v of this render's peak): the files are staged beside it and
 /// published together (staged_output), so on any failure or cancel no output file is left behind. Refuses
 /// to replace the scenario file or its audio input (even with overwrite), and existing outputs unless
 /// opt.overwrite; refuses a programme longer than long_render_limit_s unless opt.allow_long.
@@ -101,6 +123,17 @@ job_outcome render_job_into(const scenario& s, const std::filesystem::path& dir,
 /// engineering notation ("41.3 mV"). Warnings are not included: they are in o.warnings, for the caller to
 /// show once. The full figures are in o.metrics (metrics.json).
 [[nodiscard]] std::string summary_text(const job_outcome& o, const scenario& s);
+
+/// Step one of render_job_into, for commands that choose one full scale for several renders (sweeps,
+/// packs): renders and measures `s` into `dir`, leaving only the hidden unscaled intermediate there
+/// (o.unscaled) and the calibrated files unwritten. Throws as render_job_into; on a throw nothing is left.
+job_outcome render_job_unscaled(const scenario& s, const std::filesystem::path& dir, const job_options& opt,
+                                double analysis_limit_s = 60.0);
+/// Step two: writes the calibrated WAV at `full_scale_v` (V; `automatic` says it was chosen, not given),
+/// the normalised copy when it clips, the sidecar and metrics.json (with full_scale_v, full_scale_auto,
+/// headroom_db, rms_dbfs), adds output_clipped / quiet_output warnings, and removes the intermediate.
+/// Throws audio_error.
+void finish_job(job_outcome& o, const scenario& s, double full_scale_v, bool automatic, const job_options& opt);
 
 /// Output file names of one render job, relative to its directory.
 [[nodiscard]] const std::vector<std::string>& job_file_names();

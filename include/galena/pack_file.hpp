@@ -6,6 +6,7 @@
 #include "galena/sweep.hpp"
 
 #include <filesystem>
+#include <optional>
 #include <string>
 #include <vector>
 
@@ -24,6 +25,18 @@ namespace galena {
 /// label = "germanium, weak carrier, 47k bleeder"
 /// set = ["load.bleeder_ohm=47k", "signal.carrier_peak_v=100m"]
 /// ```
+/// A band sweep in a pack (`[[dial_sweep]]`: name, label, band, set, from_hz, to_hz, glide_s): the pack's
+/// scenario with `overrides`, turned across the band file's stations (galena dial), rendered after the variants.
+struct pack_dial_sweep {
+    std::string name;
+    std::string label;
+    std::filesystem::path band;          ///< the band file, resolved against the pack file
+    std::vector<std::string> overrides;  ///< on the pack's scenario
+    std::optional<double> start_hz;      ///< replaces the band's [dial] from_hz, Hz
+    std::optional<double> end_hz;        ///< replaces the band's [dial] to_hz, Hz
+    std::optional<double> glide_s;       ///< replaces the band's [dial] glide_s, s
+};
+
 struct pack_spec {
     std::filesystem::path file;
     std::string title;
@@ -31,6 +44,7 @@ struct pack_spec {
     double measure_tone_hz = default_measure_tone_hz;       ///< Hz; 0 = measure the programme itself
     double measure_duration_s = default_measure_duration_s; ///< s; (0, 10]
     std::vector<variant_spec> variants;
+    std::vector<pack_dial_sweep> dial_sweeps; ///< [[dial_sweep]] tables, in file order
 };
 
 /// True when `file` is TOML holding a [pack] section or [[variant]] tables (a pack file rather than a

@@ -14,6 +14,22 @@
 
 namespace galena {
 
+/// A recording that a pack's extras add to the playlists after the variants (a band sweep): at the
+/// variants' sample rate and calibration.
+struct pack_extra_item {
+    std::filesystem::path wav;
+    std::string name;   ///< for the playlist tables and the matched copy's file name (unique in the pack)
+    std::string label;  ///< announced
+};
+
+/// What a pack's extras give the pack: HTML for the page (under the note) and playlist items.
+struct pack_extras {
+    std::string html;
+    std::vector<pack_extra_item> playlist_items;
+    pack_extras() = default;
+    pack_extras(std::string h) : html(std::move(h)) {} // NOLINT(google-explicit-constructor): extras may return HTML only
+};
+
 /// Options of a whole pack.
 struct pack_options {
     sweep_options sweep;
@@ -24,8 +40,9 @@ struct pack_options {
     std::vector<std::filesystem::path> protect; ///< more files never to be replaced (the pack file)
     /// Optional: called after the variants are rendered with the sweep and the staging folder, before the
     /// page is written; what it writes there is published with the pack, the HTML it returns goes on the
-    /// page under the note. `extra_outputs` (relative names) are checked for clashes before rendering.
-    std::function<std::string(sweep_result&, const std::filesystem::path& staged_dir)> extras;
+    /// page under the note, and its playlist items follow the variants in both playlists. `extra_outputs`
+    /// (relative names) are checked for clashes before rendering.
+    std::function<pack_extras(sweep_result&, const std::filesystem::path& staged_dir)> extras;
     std::vector<std::string> extra_outputs;
 };
 

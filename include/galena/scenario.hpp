@@ -46,8 +46,9 @@ struct programme_spec {
 struct output_spec {
     wav_format format = wav_format::pcm24;
     /// Earpiece volts that map to digital full scale; the same for every variant so that files keep their
-    /// relative loudness.
-    double full_scale_v = 2.0;
+    /// relative loudness. 0 = automatic ("auto" in a file, the default): the command chooses it from the
+    /// loudest peak of all its renders (choose_full_scale_v, job.hpp), the same for every variant.
+    double full_scale_v = 0.0;
 };
 
 /// One [[station]] of a receiver scenario: its parameters and its programme (a tone or a clip).

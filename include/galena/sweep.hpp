@@ -3,6 +3,7 @@
 #pragma once
 
 #include "galena/job.hpp"
+#include "galena/loudness_match.hpp"
 #include "galena/scenario.hpp"
 
 #include <cstddef>
@@ -103,6 +104,7 @@ struct variant_result {
     job_outcome job;                         ///< the programme render (analysis_v kept)
     bool measured_separately = false;        ///< metrics come from a tone render in OUT/NAME/measure
     scenario measure_scene;                  ///< that tone scenario (when measured_separately)
+    job_outcome measure;                     ///< that tone render's outcome (analysis_v moved to measure_earpiece_v)
     std::vector<float> measure_earpiece_v;   ///< its earpiece voltage, V (when measured_separately)
     nlohmann::json metrics;                  ///< the flat metrics of the variant
     std::vector<warning> warnings;           ///< what metrics' warnings / warning_codes hold, typed
@@ -114,10 +116,13 @@ struct sweep_result {
     std::vector<std::filesystem::path> inputs; ///< files the sweep reads (scenario, clips): never replaced
     std::filesystem::path csv;       ///< OUT/table.csv
     std::filesystem::path markdown;  ///< OUT/table.md
+    std::vector<matched_gain> matched; ///< OUT/matched: loudness-matched copies (run_sweep; a pack writes its own)
 };
 
 /// Loads the base scenario with `base_overrides` and each variant's overrides (all validated before any
-/// render starts), renders every variant into OUT/NAME on `threads` workers, and writes the table.
+/// render starts), renders every variant into OUT/NAME on `threads` workers, and writes the table and the
+/// loudness-matched copies (OUT/matched, write_loudness_matched). Variants with the automatic full scale
+/// share one, chosen from the loudest peak of them all (choose_full_scale_v); each scene then holds it.
 /// Each variant is computed independently and stored at its index, so the results and files are identical
 /// whatever the thread count. The whole output is staged and published as one unit (staged_output): the
 /// first failure or a cancel (Ctrl-C) stops every variant, is rethrown, and leaves no output file behind.
@@ -139,6 +144,10 @@ void check_sweep_outputs(const sweep_result& res, staged_output& staged);
 void render_sweep(sweep_result& res, const std::filesystem::path& dir, const sweep_options& opt);
 /// Rewrites the result's paths from the staging folder to their published places.
 void relocate(sweep_result& res, const staged_output& staged);
+
+/// One line for a person about the calibration of a sweep's WAVs: "full scale 500 mV peak for every
+/// variant (chosen automatically; headroom 7.3 dB above the loudest peak)", or the explicit value(s).
+[[nodiscard]] std::string full_scale_text(const sweep_result& res);
 
 /// Table columns: key names of the metrics (in this order) shown in the CSV and Markdown tables.
 [[nodiscard]] const std::vector<std::string>& table_columns();

@@ -31,6 +31,8 @@ enum class warning_code {
     station_tone_unmeasured, ///< "station-tone-unmeasured": a station's tone cannot be told apart; no level
     transfer_one_region,     ///< "transfer-one-region": the transfer curve's slopes do not show two regions
     plots_left_out,          ///< "plots-left-out": drawing the plots failed; the rest of the output stands
+    quiet_output,            ///< "quiet-output": a written WAV sits below -60 dBFS RMS
+    speech_unavailable,      ///< "speech-unavailable": espeak-ng could not speak the announcements; the tone code was used
 };
 
 /// One warning: its code and the sentence shown to people (which may name files, values and rules).
