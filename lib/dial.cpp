@@ -170,6 +170,19 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
         res.names.push_back(st.params.name);
         res.carriers_hz.push_back(st.params.carrier_hz);
     }
+    // Background noise: band_noise stations tiled across the dial (each 2 x half_band wide, centres from
+    // lowest - half_band, so every dial position has noise within +- half_band of it), seeds seed + k 2^32.
+    spec.noise.validate();
+    if (spec.noise.field_density > 0.0) {
+        const double w = spec.noise.half_band_hz;
+        if (!(w <= 0.45 * (path.lowest_hz() - w)))
+            throw config_error(fmt::format("antenna.noise_half_band_hz = {}: must be at most 0.45 x the lowest noise tile's centre ({} Hz)",
+                                           detail::format_value(w), detail::format_value(path.lowest_hz() - w)));
+        const double d = spec.noise.field_density * spec.antenna.effective_height_m;
+        std::uint64_t k = 0;
+        for (double centre = path.lowest_hz() - w; centre - w < path.highest_hz() + w; centre += 2.0 * w, ++k)
+            src.add(fmt::format("noise {}", k + 1), centre, band_noise(d, w, spec.noise.seed + (k << 32)));
+    }
     rf_settings rs;
     rs.steps_per_cycle = s.steps_per_cycle;
     rf_integrator ig(ss, rn.emf_input, diode_model(spec.circuit.diode).law(), src, fref, rs);
@@ -200,7 +213,7 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
 
     // Per-station DFT at the detector's input: the carrier phasor e^{-j w t} rotated per step (and per cycle),
     // set exactly at the start of each level window (no drift).
-    const std::size_t ns = src.size();
+    const std::size_t ns = res.names.size(); // the AM stations (noise tiles come after them)
     std::vector<double> ratio(ns), rot_re(ns), rot_im(ns), cyc_re(ns), cyc_im(ns), acc_re(ns), acc_im(ns), p_re(ns), p_im(ns);
     for (std::size_t k = 0; k < ns; ++k) {
         ratio[k] = res.carriers_hz[k] / fref;

@@ -141,6 +141,7 @@ dial_outcome run_dial_into(const scenario& s, const band_spec& band, const fs::p
     spec.circuit = s.circuit;
     spec.antenna = s.antenna;
     spec.tuner = s.tuner;
+    spec.noise = s.noise;
     for (std::size_t k = 0; k < band.stations.size(); ++k) spec.stations.push_back({band.stations[k].params, programmes[k].get()});
     dial_settings ds;
     ds.retune_interval_s = opt.retune_interval_s;

@@ -424,6 +424,7 @@ job_outcome render_job_unscaled(const scenario& s, const fs::path& out_dir, cons
             spec.circuit = s.circuit;
             spec.antenna = s.antenna;
             spec.tuner = s.tuner;
+            spec.noise = s.noise;
             for (std::size_t k = 0; k < s.stations.size(); ++k) spec.stations.push_back({s.stations[k].params, programmes[k].get()});
             o.render = render_receiver(spec, s.render, sink, o.receiver);
         } else {

@@ -102,6 +102,14 @@ render_result render_receiver(const receiver_spec& spec, const render_settings& 
         if (src.size() == 1) duration = st.programme->duration_s();
     }
     fig.wanted_emf_peak_v = src.station(0).params().carrier_peak_v;
+    spec.noise.validate();
+    if (spec.noise.field_density > 0.0) {
+        if (!(spec.noise.half_band_hz <= 0.45 * fc))
+            throw config_error(fmt::format("antenna.noise_half_band_hz = {}: must be at most 0.45 x the wanted carrier ({} Hz)",
+                                           detail::format_value(spec.noise.half_band_hz), detail::format_value(0.45 * fc)));
+        // The EMF density from the field density as the stations' EMF from their field (RMS field x height).
+        src.add("noise", fc, band_noise(spec.noise.field_density * spec.antenna.effective_height_m, spec.noise.half_band_hz, spec.noise.seed));
+    }
 
     render_result res;
     res.audio_rate_hz = fs;

@@ -35,12 +35,11 @@ rf_integrator::rf_integrator(const state_space& ss, int input, const junction_la
     m_c_lin = ss.port_linear_capacitance_f;
     m_charge = junction.cj0_f > 0.0;
     for (std::size_t s = 0; s < stations.size(); ++s) {
-        m_ratio.push_back(stations.station(s).params().carrier_hz / reference_hz);
-        m_wh.push_back(two_pi * stations.station(s).params().carrier_hz * m_h);
+        m_ratio.push_back(stations.carrier_hz(s) / reference_hz);
+        m_wh.push_back(two_pi * stations.carrier_hz(s) * m_h);
     }
     set_network(ss, input);
     const int n = ss.states();
-    m_env.assign(4 * stations.size(), 0.0);
     for (int k = 1; k <= m_n; ++k) m_ref_phasor.push_back(std::polar(1.0, -two_pi * static_cast<double>(k) / m_n));
     m_prev.assign(static_cast<std::size_t>(m_n), phase_point{});
     m_x = Eigen::VectorXd::Zero(n);
@@ -71,7 +70,7 @@ void rf_integrator::set_network(const state_space& ss, int input)
     }
     // Per station: [A B 0; 0 jw 1; 0 0 jw] gives W0 and W1 (see the header).
     for (std::size_t s = 0; s < m_src->size(); ++s) {
-        const double w = two_pi * m_src->station(s).params().carrier_hz;
+        const double w = two_pi * m_src->carrier_hz(s);
         Eigen::MatrixXcd m = Eigen::MatrixXcd::Zero(n + 2, n + 2);
         m.topLeftCorner(n, n) = ss.a.cast<std::complex<double>>();
         m.block(0, n, n, 1) = ss.b.col(input).cast<std::complex<double>>();
@@ -207,10 +206,10 @@ void rf_integrator::initialize()
     m_stats = {};
 }
 
-double rf_integrator::envelope_at_cycle(std::size_t s, long long c) const noexcept
+std::complex<double> rf_integrator::envelope_at_cycle(std::size_t s, long long c) const noexcept
 {
     // Before t = 0 the envelope is continued by its value at 0 (the carrier ramp starts at 0 there).
-    return m_src->station(s).envelope(c > 0 ? static_cast<double>(c) / m_fref : 0.0);
+    return m_src->envelope(s, c > 0 ? static_cast<double>(c) / m_fref : 0.0);
 }
 
 template <bool Breakdown, bool Charge, bool SquareRoot>
@@ -289,17 +288,18 @@ void rf_integrator::run_cycle(std::span<double> out)
     const std::size_t c = m_cycle;
     // Envelope samples at cycles c-1 .. c+2 and the cubic through them in tau (cycles since c):
     // e(tau) = a0 + a1 tau + a2 tau^2 + a3 tau^3 (4-point Lagrange on tau = -1, 0, 1, 2).
-    std::array<double, 64> cubic_small{};
-    std::vector<double> cubic_big;
-    double* cubic = cubic_small.data();
+    // The envelope is complex (I + jQ; real for an AM station): the tables are real-linear in the phasor p P.
+    std::array<std::complex<double>, 64> cubic_small{};
+    std::vector<std::complex<double>> cubic_big;
+    std::complex<double>* cubic = cubic_small.data();
     if (4 * ns > cubic_small.size()) {
         cubic_big.resize(4 * ns);
         cubic = cubic_big.data();
     }
     const auto cc = static_cast<long long>(c);
     for (std::size_t s = 0; s < ns; ++s) {
-        const double e0 = envelope_at_cycle(s, cc - 1), e1 = envelope_at_cycle(s, cc), e2 = envelope_at_cycle(s, cc + 1),
-                     e3 = envelope_at_cycle(s, cc + 2);
+        const std::complex<double> e0 = envelope_at_cycle(s, cc - 1), e1 = envelope_at_cycle(s, cc), e2 = envelope_at_cycle(s, cc + 1),
+                                   e3 = envelope_at_cycle(s, cc + 2);
         cubic[4 * s] = e1;
         cubic[4 * s + 1] = -e0 / 3.0 - 0.5 * e1 + e2 - e3 / 6.0;
         cubic[4 * s + 2] = 0.5 * e0 - e1 + 0.5 * e2;
@@ -315,8 +315,8 @@ void rf_integrator::run_cycle(std::span<double> out)
         // carrier phasor there (phase from the cycle count, never accumulated across cycles).
         m_z.head(n) = m_x;
         for (std::size_t s = 0; s < ns; ++s) {
-            const double* a = &cubic[4 * s];
-            const double p[4] = {a[0] + tau0 * (a[1] + tau0 * (a[2] + tau0 * a[3])), a[1] + tau0 * (2.0 * a[2] + 3.0 * tau0 * a[3]),
+            const std::complex<double>* a = &cubic[4 * s];
+            const std::complex<double> p[4] = {a[0] + tau0 * (a[1] + tau0 * (a[2] + tau0 * a[3])), a[1] + tau0 * (2.0 * a[2] + 3.0 * tau0 * a[3]),
                                  a[2] + 3.0 * tau0 * a[3], a[3]};
             const double cyc = static_cast<double>(c) * m_ratio[s];
             double ph = cyc - std::floor(cyc) + m_ratio[s] * tau0;
@@ -324,8 +324,9 @@ void rf_integrator::run_cycle(std::span<double> out)
             const std::complex<double> rot = std::polar(1.0, two_pi * ph);
             const auto es = static_cast<Eigen::Index>(s);
             for (int q = 0; q < 4; ++q) {
-                m_z[n + 4 * es + q] = rot.real() * p[q];
-                m_z[n + 4 * ens + 4 * es + q] = rot.imag() * p[q];
+                const std::complex<double> rp = rot * p[q];
+                m_z[n + 4 * es + q] = rp.real();
+                m_z[n + 4 * ens + 4 * es + q] = rp.imag();
             }
         }
         m_free.head(len).noalias() = m_port.m.topRows(len) * m_z;

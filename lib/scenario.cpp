@@ -273,6 +273,26 @@ const std::map<std::string, std::map<std::string, key_entry>>& key_table()
              {"capacitance_f", quantity(unit::farad, [](scenario& s) -> double& { return s.antenna.capacitance_f; })},
              {"inductance_h", quantity(unit::henry, [](scenario& s) -> double& { return s.antenna.inductance_h; })},
              {"resistance_ohm", quantity(unit::ohm, [](scenario& s) -> double& { return s.antenna.resistance_ohm; })},
+             // Background noise: V/m per sqrt(Hz) (engineering prefixes: "8n"), or "quiet-rural" (stations.hpp).
+             {"noise_field_density", key_entry([](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
+                  if (auto v = n.value_exact<std::string>(); v && *v == "quiet-rural") {
+                      s.noise.field_density = quiet_rural_noise_field_density();
+                      return;
+                  }
+                  try {
+                      s.noise.field_density = as_number(n, f, w, unit::none);
+                  } catch (const config_error& e) {
+                      if (!n.is_string()) throw;
+                      throw config_error(fmt::format("{}; or \"quiet-rural\"", e.what()));
+                  }
+              }, unit::none, [](scenario& s) -> double& { return s.noise.field_density; })},
+             {"noise_half_band_hz", quantity(unit::hertz, [](scenario& s) -> double& { return s.noise.half_band_hz; })},
+             {"noise_seed", key_entry([](scenario& s, const toml::node& n, const std::string& f, const std::string& w) {
+                  const double v = as_number(n, f, w, unit::none);
+                  if (!(v >= 0.0 && v <= 9007199254740992.0 && std::floor(v) == v))
+                      throw config_error(fmt::format("{}: {} = {}: must be a whole number in [0, 2^53]", w, f, detail::format_value(v)));
+                  s.noise.seed = static_cast<std::uint64_t>(v);
+              }, unit::none, nullptr)},
          }},
         {"tuner",
          {
@@ -585,6 +605,11 @@ void validate_scenario(const scenario& s)
         s.antenna.validate();
         if (s.stations.empty())
             throw config_error(fmt::format("tuner.layout = \"{}\": needs at least one [[station]]", to_string(s.tuner.layout)));
+        s.noise.validate();
+        if (s.noise.field_density > 0.0 && !(s.noise.half_band_hz <= 0.45 * s.stations.front().params.carrier_hz))
+            throw config_error(fmt::format("antenna.noise_half_band_hz = {}: must be at most 0.45 x the wanted carrier ({} Hz)",
+                                           detail::format_value(s.noise.half_band_hz),
+                                           detail::format_value(0.45 * s.stations.front().params.carrier_hz)));
         for (const auto& st : s.stations) {
             if (st.params.carrier_hz < 2.5 * nyq || st.params.carrier_hz < 4.0 * p.audio_cutoff_hz)
                 throw config_error(fmt::format("tuner.layout: station \"{}\": carrier_hz = {}: must be at least 2.5 x the audio "
@@ -594,6 +619,10 @@ void validate_scenario(const scenario& s)
                 throw config_error(fmt::format("tuner.layout: station \"{}\": tone_hz = {}: must be in [1, {}] Hz", st.params.name,
                                                detail::format_value(st.tone_hz), 0.45 * 2.0 * nyq));
         }
+    } else if (s.noise.field_density != 0.0) {
+        throw config_error(fmt::format("antenna.noise_field_density = {}: needs tuner.layout = untuned, single-coil or coupled "
+                                       "(the bench layout has no antenna)",
+                                       detail::format_value(s.noise.field_density)));
     } else if (!s.stations.empty()) {
         throw config_error("tuner.layout = \"bench\": [[station]] needs tuner.layout = untuned, single-coil or coupled "
                            "(the bench layout uses [signal] and [source])");
@@ -1076,6 +1105,8 @@ std::string to_toml(const scenario& s)
     if (!a.preset.empty()) o += fmt::format("preset = {}\n", toml_quote(a.preset));
     o += fmt::format("effective_height_m = {}\ncapacitance_f = {}\ninductance_h = {}\nresistance_ohm = {}\n", num(a.effective_height_m),
                      num(a.capacitance_f), num(a.inductance_h), num(a.resistance_ohm));
+    o += fmt::format("noise_field_density = {}\nnoise_half_band_hz = {}\nnoise_seed = {}\n", num(s.noise.field_density),
+                     num(s.noise.half_band_hz), s.noise.seed);
     o += fmt::format("\n[tuner]\nlayout = \"{}\"\ncoil_h = {}\ncoil_q = {}\ntuned_hz = {}\ncapacitance_f = {}\ndetector_tap = {}\n"
                      "antenna_tap = {}\nantenna_coil_h = {}\nantenna_coil_q = {}\ncoupling = {}\ndc_return_ohm = {}\n",
                      to_string(t.layout), num(t.coil_h), num(t.coil_q), num(t.tuned_hz), num(t.capacitance_f), num(t.detector_tap),

@@ -25,6 +25,16 @@ import time
 
 # (file, exact text that occurs once, replacement, what the fault means)
 MUTANTS = [
+    ("lib/stations.cpp", "m_scale = density * std::sqrt(m_rate);", "m_scale = density * std::sqrt(2.0 * m_rate);",
+     "antenna noise: amplitude sqrt(2) high (density bookkeeping)"),
+    ("lib/stations.cpp", "m_rate = 2.0 * half_band_hz / energy;", "m_rate = half_band_hz / energy;",
+     "antenna noise: band B/2 wide instead of B (one-sided / two-sided confusion)"),
+    ("lib/rf_integrator.cpp", "const std::complex<double> rp = rot * p[q];", "const std::complex<double> rp = rot * p[q].real();",
+     "rf_integrator: the quadrature part of a complex envelope dropped"),
+    ("lib/render.cpp", "band_noise(spec.noise.field_density * spec.antenna.effective_height_m,", "band_noise(spec.noise.field_density,",
+     "antenna noise: the field density used as EMF (effective height left out)"),
+    ("lib/dial.cpp", "band_noise(d, w, spec.noise.seed + (k << 32))", "band_noise(d, w, 1 + (k << 32))",
+     "dial noise tiles ignore the seed"),
     ("lib/network.cpp", "return e11.partialPivLu().solve(to.basis.transpose() * q);", "(void)q; (void)e11; return x;",
      "a moved capacitor keeps its voltage (C dv/dt), not its charge"),
     ("lib/dial.cpp", "p.tuned_hz = dial_frequency(path, tuning, t_centre);", "p.tuned_hz = dial_frequency(path, tuning, t_centre + 1e-3);",

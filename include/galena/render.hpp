@@ -109,6 +109,9 @@ struct receiver_spec {
     antenna_params antenna;
     tuner_params tuner;
     std::vector<receiver_station> stations;
+    /// Background noise at the antenna: a band_noise station around the wanted carrier, EMF density =
+    /// field density x antenna.effective_height_m (as the stations' field). Off when field_density = 0.
+    antenna_noise_params noise;
 };
 
 /// Front-end figures measured by a whole-receiver render (SI units).

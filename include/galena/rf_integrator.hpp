@@ -36,7 +36,7 @@ struct rf_stats {
 /// Steps  dx/dt = A x + B u(t) + b_j j(t)  over a uniform grid of N steps per cycle of a reference carrier.
 ///
 /// The discretisation. Over a step [t0, t0 + h]:
-///   - each station's EMF is env(t) cos(w t) with env linear over the step (env sampled at reference-cycle
+///   - each station's EMF is Re(env(t) e^{jw t}) (env complex: I + jQ; real for AM) with env linear over the step (env sampled at reference-cycle
 ///     boundaries, 4-point Lagrange in between): its exact response is Re(e^{jw t0} (e0 W0 + e' W1)) with
 ///     W0 = int_0^h e^{A(h-s)} B e^{jws} ds and W1 = int_0^h e^{A(h-s)} B s e^{jws} ds, computed once per
 ///     station from one augmented matrix exponential. Carriers anywhere, on the grid or not, are exact.
@@ -70,7 +70,7 @@ struct rf_stats {
 /// and a dot product over the block's earlier currents (about K/2 terms) remain; the outputs and the block's
 /// end state follow from two more products. No per-step work grows with the number of stations, and none
 /// is O(n^2) in the number of states.
-/// Not for networks without a junction port, or sources other than AM stations.
+/// Not for networks without a junction port, or sources other than carriers with (complex) envelopes.
 class rf_integrator {
 public:
     /// @param ss        the network (input `input` is the EMF the stations drive)
@@ -136,7 +136,7 @@ private:
     void set_network(const state_space& ss, int input);
     [[nodiscard]] row_tables tabulate(const Eigen::MatrixXd& c, const Eigen::VectorXd& d_u, const Eigen::VectorXd& d_j,
                                       int length, bool last_only) const;
-    [[nodiscard]] double envelope_at_cycle(std::size_t station, long long c) const noexcept;
+    [[nodiscard]] std::complex<double> envelope_at_cycle(std::size_t station, long long c) const noexcept;
     template <bool Breakdown, bool Charge, bool SquareRoot>
     double solve_junction(double alpha, double beta, double v_guess, double& j1);
     template <bool Breakdown, bool Charge, bool SquareRoot>
@@ -158,7 +158,6 @@ private:
     row_tables m_port;                                        // the junction port's voltage
     std::vector<row_tables> m_outs;                           // the added outputs
     row_tables m_end, m_end_last;                             // the state after K steps and after the last block's steps
-    std::vector<double> m_env;                                // per station: envelope at cycles c-1 .. c+2
     std::vector<double> m_out_mean, m_out_peak, m_out_last;
     std::vector<std::complex<double>> m_ref_phasor;           // e^{-j 2 pi k / N}, k = 1..N
     /// The junction's solution at one phase of the previous cycle: the predictor linearises the law there.

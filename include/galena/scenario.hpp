@@ -73,6 +73,7 @@ struct scenario {
     antenna_params antenna;
     tuner_params tuner;
     std::vector<station_spec> stations;  ///< the first is the wanted station
+    antenna_noise_params noise;          ///< background noise at the antenna ([antenna] noise_*; off by default)
 };
 
 /// Parses and validates a scenario file, then applies `overrides` ("section.key=value", TOML value syntax;
