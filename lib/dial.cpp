@@ -256,6 +256,7 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
             st.programme->prepare(static_cast<double>(c0) * period - preroll - 2.0 * period, tb - preroll + 3.0 * period);
         for (std::size_t c = c0; c < c1; ++c) {
             ig.advance_cycle(det);
+            if (s.output_probe) s.output_probe(c, std::span<const double>(det.data(), static_cast<std::size_t>(n_steps))); // row out_k
             chain.add_cycle_mean(ig.output_mean(out_k), raw);
             if (c == w_start) {
                 // A new level window: the phasors at its first step end, exactly.
@@ -302,7 +303,7 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
                 w_start = c + 1;
             }
         }
-        static_assert(det_k == 1);
+        static_assert(out_k == 0 && det_k == 1);
         block_e.clear();
         block_a.clear();
         const std::size_t first = delivery.delivered();

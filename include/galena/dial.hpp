@@ -6,6 +6,8 @@
 #include "galena/render.hpp"
 
 #include <cstddef>
+#include <functional>
+#include <span>
 #include <string>
 #include <vector>
 
@@ -67,6 +69,11 @@ struct dial_settings {
     double audio_rate_hz = 48000.0;
     double dc_block_hz = 10.0;
     double preroll_s = -1.0;      ///< s; < 0: automatic (the output's and the tuned circuit's settling)
+    /// Optional, for checks against other simulators: called after every carrier cycle c of the reference
+    /// (reference_hz) with the voltage at the detector's output (the earpiece node) at that cycle's N step
+    /// ends, V; step i (0-based) ends at simulation time (c N + i + 1) / (N reference_hz), which is
+    /// programme time plus preroll_s. Empty: not called.
+    std::function<void(std::size_t cycle, std::span<const double> output_v)> output_probe;
 };
 
 /// One level window: where the dial stood (at the window's middle) and each station's RF level at the
