@@ -7,7 +7,7 @@
 // and one chunk).
 // ngspice: the same front end written as a netlist (tests/receiver_spice.hpp: the tuned circuit, the junction
 // as the Shockley law plus the SPICE depletion charge, the load as one capacitor and resistor) with the tuning
-// capacitor as a charge-based behavioural source I = ddt(C(time) v) moving as the glide does, the 8 stations
+// capacitor moving as the glide does, its charge the state (tuning_ramp: v = q / C(t)), the 8 stations
 // with tone programmes, over `piece_ms` from the start of the glide at a 5 ns maximum step (reltol 1e-6).
 // The ratio is of wall seconds per simulated second. It compares speed, not waveforms (the programmes and
 // the earpiece model differ).
@@ -25,7 +25,6 @@
 #include <cmath>
 #include <cstdio>
 #include <ctime>
-#include <regex>
 
 using namespace galena;
 
@@ -95,11 +94,11 @@ int main(int argc, char** argv)
     const double t_piece = piece_ms * 1e-3;
     const double ca = tun.capacitance_f(path.start_hz);
     const double cb = tun.capacitance_f(path.start_hz + (path.end_hz - path.start_hz) * t_piece / glide_s);
-    std::string net = galena_test::netlist(rc, t_piece, 5e-9, std::filesystem::temp_directory_path() / "galena-bench-dial" / "out.txt");
-    // The tuning capacitor: C(t) = C0 + dC t, its moving part a charge-based source I = ddt(dC t v) beside a
-    // linear C0 (one B-source holding all of C(t) stopped ngspice-39 at t = 1e-10 s: "timestep too small").
-    net = std::regex_replace(net, std::regex("\nCt top 0 [^\n]*\n"),
-                             fmt::format("\nCt top 0 {:.17g}\nBct top 0 I = ddt({:.17g}*time*v(top))\n", ca, (cb - ca) / t_piece));
+    // The tuning capacitor C(t) = C0 + dC t with its charge as the state, the coil losses following it
+    // (receiver_spice.hpp's tuning_ramp).
+    rc.tuner.capacitance_f = ca;
+    rc.ramp = galena_test::tuning_ramp{0.0, t_piece, ca, (cb - ca) / t_piece, true};
+    const std::string net = galena_test::netlist(rc, t_piece, 5e-9, std::filesystem::temp_directory_path() / "galena-bench-dial" / "out.txt");
     const auto dir = std::filesystem::temp_directory_path() / "galena-bench-dial";
     std::filesystem::create_directories(dir);
     std::vector<double> t, v;
