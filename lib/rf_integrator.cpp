@@ -191,6 +191,7 @@ void rf_integrator::initialize()
 {
     m_x.setZero();
     m_cycle = 0;
+    m_env_valid = false;
     m_v = 0.0;
     m_j = 0.0;
     const junction_values jv = m_law.evaluate(0.0);
@@ -297,9 +298,27 @@ void rf_integrator::run_cycle(std::span<double> out)
         cubic = cubic_big.data();
     }
     const auto cc = static_cast<long long>(c);
+    if (m_env.size() != 4 * ns) {
+        m_env.assign(4 * ns, {});
+        m_env_valid = false;
+    }
+    const bool next = m_env_valid && cc == m_env_cycle + 1;
     for (std::size_t s = 0; s < ns; ++s) {
-        const std::complex<double> e0 = envelope_at_cycle(s, cc - 1), e1 = envelope_at_cycle(s, cc), e2 = envelope_at_cycle(s, cc + 1),
-                                   e3 = envelope_at_cycle(s, cc + 2);
+        std::complex<double>* e = &m_env[4 * s];
+        if (next) {
+            e[0] = e[1];
+            e[1] = e[2];
+            e[2] = e[3];
+            e[3] = envelope_at_cycle(s, cc + 2);
+        } else {
+            for (int q = 0; q < 4; ++q) e[q] = envelope_at_cycle(s, cc - 1 + q);
+        }
+    }
+    m_env_cycle = cc;
+    m_env_valid = true;
+    for (std::size_t s = 0; s < ns; ++s) {
+        const std::complex<double>* e = &m_env[4 * s];
+        const std::complex<double> e0 = e[0], e1 = e[1], e2 = e[2], e3 = e[3];
         cubic[4 * s] = e1;
         cubic[4 * s + 1] = -e0 / 3.0 - 0.5 * e1 + e2 - e3 / 6.0;
         cubic[4 * s + 2] = 0.5 * e0 - e1 + 0.5 * e2;

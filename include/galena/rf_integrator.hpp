@@ -174,6 +174,11 @@ private:
     Eigen::VectorXd m_y;           // an output over the block's steps
     double m_v = 0.0, m_j = 0.0, m_i0 = 0.0, m_qr0 = 0.0, m_g0_s = 0.0, m_cr0_f = 0.0; // the law at the last solution
     std::size_t m_cycle = 0;
+    // Envelope samples at cycles m_env_cycle - 1 .. m_env_cycle + 2, 4 per station (each sample is used by four
+    // consecutive cycles: one new sample per station per cycle).
+    std::vector<std::complex<double>> m_env;
+    long long m_env_cycle = 0;
+    bool m_env_valid = false;
     bool m_phasors = false;
     std::complex<double> m_v_phasor{}, m_j_phasor{};
     rf_stats m_stats;
