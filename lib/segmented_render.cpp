@@ -1,6 +1,7 @@
 #include "galena/segmented_render.hpp"
 
 #include "galena/audio_chain.hpp"
+#include "galena/cancel.hpp"
 #include "galena/circuit.hpp"
 #include "galena/cycle_integrator.hpp"
 #include "galena/error.hpp"
@@ -113,6 +114,14 @@ struct handoff {
     bool stopped = false;                                         // stop_requested() ended it
     std::exception_ptr error;
 };
+
+/// The second thread stopped on stop_requested(): the process-wide cancel (Ctrl-C) keeps its own message
+/// and signal number, as the serial render's sink would throw it.
+[[noreturn]] void stopped_by_request()
+{
+    throw_if_cancelled();
+    throw cancelled_error("cancelled: stopped before finishing; no output was written", 0);
+}
 
 template <int Dim>
 render_result split_render(const one_junction_network<Dim>& oj, const am_params& am, modulation& programme, const render_settings& s,
@@ -245,7 +254,7 @@ render_result split_render(const one_junction_network<Dim>& oj, const am_params&
     {
         std::unique_lock lk(h.m);
         h.cv.wait(lk, [&] { return h.seam_ready || h.done; });
-        if (h.stopped) throw cancelled_error("stopped: the render was cancelled", 0);
+        if (h.stopped) stopped_by_request();
         if (h.seam_ready && !h.error && next == c_seam) {
             double ds = 0.0;
             const auto& y = ig.state();
@@ -281,7 +290,7 @@ render_result split_render(const one_junction_network<Dim>& oj, const am_params&
                 std::unique_lock lk(h.m);
                 h.cv.wait(lk, [&] { return !h.chunks.empty() || h.done; });
                 if (h.chunks.empty()) {
-                    if (h.stopped) throw cancelled_error("stopped: the render was cancelled", 0);
+                    if (h.stopped) stopped_by_request();
                     if (h.error) std::rethrow_exception(h.error);
                     break;
                 }

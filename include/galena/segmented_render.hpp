@@ -62,12 +62,14 @@ struct segment_options {
     /// Warm-up before the seam in slowest open-junction time constants; e^-40 = 4e-18.
     double warm_up_time_constants = 40.0;
     /// Largest relative difference accepted at the seam: each network state and junction voltage against
-    /// its own size, the cycle means against the carrier crest (measured on bench scenarios: at most 1.2e-14
+    /// its own size, the cycle means against the carrier crest (measured on bench scenarios: at most 2e-14
     /// and 4e-16; segmented_render_test).
     double seam_tolerance = 1e-12;
-    /// The seam sits at this share of (carrier cycles + warm-up cycles), rounded to a chunk: the first
-    /// (calling) thread also runs the audio chain, the second also the warm-up.
-    double first_share = 0.52;
+    /// The seam sits at this share of (carrier cycles + warm-up cycles), rounded to a chunk: the second
+    /// thread also simulates the warm-up, the first also runs the audio chain (its sinc resampler and
+    /// FIR, about 8 % of a cycle's work in a profile of the bench render), so the first takes a little less
+    /// (measured thread CPU on the 3 s bench render at 0.47: first 1.11-1.24 s, second 0.95-1.14 s).
+    double first_share = 0.45;
     /// Take the second thread only when core_claim finds a core free (false: always, for tests).
     bool require_free_core = true;
     /// The warm-up may be at most this share of the render's cycles (else no split: it would gain little).
