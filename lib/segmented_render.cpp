@@ -362,7 +362,7 @@ render_result render_segmented(const circuit_params& circuit, am_params am, modu
     const detector_network net(circuit);
     const double tau = with_one_junction_network(net, [](const auto& oj) { return slowest_junction_time_constant_s(oj); });
     rep.slowest_time_constant_s = tau;
-    if (!std::isfinite(tau)) return serial("no decaying path with the junction open (no bleeder, no leakage)");
+    if (!std::isfinite(tau)) return serial("no decaying path (no bleeder, no leakage: the charge dams up)");
     am.preroll_s = setup.preroll_s;
     am.ramp_s = std::min(2e-3, 0.5 * am.preroll_s);
     const double fc = am.carrier_hz;

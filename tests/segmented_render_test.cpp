@@ -115,6 +115,9 @@ TEST_CASE("a split bench render equals the serial one: piezo with bleeder, magne
     compare(bench({"earpiece.kind=magnetic"}), "magnetic, 47k bleeder", true);
     compare(bench({"earpiece.motional_inductance_h=1.4", "earpiece.motional_capacitance_f=2n", "earpiece.motional_resistance_ohm=5.3k"}),
             "piezo with BVD branch", true);
+    // A clip: the second thread's own copy is prepared from the warm-up on (the conditioned clip's jump).
+    const std::string clip = (fs::path(GALENA_SOURCE_DIR) / "audio-samples" / "speech-count.wav").string();
+    compare(bench({"signal.audio=" + clip}), "speech clip", true);
 }
 
 TEST_CASE("no bleeder and no leakage: no decaying path, so the render stays serial")
