@@ -1,6 +1,7 @@
 #include "galena/circuit.hpp"
 
 #include "galena/error.hpp"
+#include "galena/front_end.hpp"
 
 #include <fmt/format.h>
 
@@ -16,35 +17,65 @@ detector_network::detector_network(const circuit_params& p) : m_params(p), m_dio
     p.load.validate();
     p.earpiece.validate();
     m_series_ohm = p.source.resistance_ohm + p.diode.series_resistance_ohm;
-    m_node_c = p.load.filter_capacitance_f + p.load.stray_capacitance_f;
-    m_node_g = conductance_s(p.load.bleeder_ohm);
-    m_ear_states = 0;
-    switch (p.earpiece.kind) {
-    case earpiece_kind::piezo:
-        m_node_c += p.earpiece.capacitance_f;
-        m_node_g += conductance_s(p.earpiece.leakage_ohm);
-        if (p.earpiece.has_motional_branch()) m_ear_states = 2;
-        break;
-    case earpiece_kind::magnetic: m_ear_states = 1; break;
-    case earpiece_kind::resistor: m_node_g += 1.0 / p.earpiece.resistance_ohm; break;
+    // The bench as one network: generator, R = R_src + R_s, the junction port (its whole charge stays
+    // nonlinear here), and the load and earpiece as stamp_load writes them for every layout.
+    const node_id gen = m_net.add_node("generator");
+    m_net.add_voltage_source(gen, ground_node);
+    node_id anode = gen;
+    if (m_series_ohm > 0.0) {
+        anode = m_net.add_node("junction");
+        m_net.add_resistor(gen, anode, m_series_ohm);
     }
+    m_out = m_net.add_node("earpiece");
+    m_net.set_junction(anode, m_out, 0.0);
+    stamp_load(m_net, m_out, p.load, p.earpiece);
+    m_node_c = m_net.node_capacitance_f(m_out);
     if (!(m_node_c > 0.0))
         throw config_error("load.stray_capacitance_f = 0: the output node needs some capacitance (filter, earpiece or stray) > 0 F");
     if (m_diode.has_capacitance() && !(m_series_ohm > 0.0))
         throw config_error("source.resistance_ohm + diode.series_resistance_ohm = 0: a junction capacitance needs a series resistance > 0 ohm");
-}
-
-double detector_network::dc_load_ohm() const noexcept
-{
-    double g = m_node_g;
-    if (m_params.earpiece.kind == earpiece_kind::magnetic) g += 1.0 / m_params.earpiece.resistance_ohm;
-    return g > 0.0 ? 1.0 / g : std::numeric_limits<double>::infinity();
+    m_ss = m_net.assemble();
+    // The port is v = u - R j - c^T y, and the generator reaches the load only through the junction: the
+    // load is dy/dt = A y + b_j j with v_b = -c_p y.
+    const int n = m_ss.states();
+    if (n < 1 || std::abs(m_ss.port_d[0] - 1.0) > 1e-12 || m_ss.b.cwiseAbs().maxCoeff() != 0.0 || std::abs(m_ss.port_c[0] + 1.0) > 1e-12)
+        throw config_error("the bench detector's network is not a load fed through the junction alone (the earpiece's stamps "
+                           "must connect only the output node and their own nodes)");
+    m_load_a = m_ss.a;
+    m_load_b = m_ss.bj;
+    m_load_c = -m_ss.port_c.transpose();
+    m_node_g = -m_load_a(0, 0) * m_node_c;
+    // DC: -c^T A^-1 b is the resistance the load shows to an injected current (none without a DC path).
+    const Eigen::FullPivLU<Eigen::MatrixXd> lu(m_load_a);
+    const double z_dc = lu.isInvertible() ? -m_load_c.dot(lu.solve(m_load_b)) : 0.0;
+    m_dc_load_ohm = (z_dc > 0.0 && std::isfinite(z_dc)) ? z_dc : std::numeric_limits<double>::infinity();
+    // Tolerance scales: inductor currents (MNA rows after the node voltages) per volt at an audio frequency.
+    constexpr double audio_w_rad_per_s = 1e4;
+    const Eigen::MatrixXd e11 = m_ss.basis.transpose() * m_ss.charge;
+    m_scale = Eigen::VectorXd::Ones(n);
+    for (int k = 0; k < n; ++k) {
+        Eigen::Index row = 0;
+        m_ss.basis.col(k).cwiseAbs().maxCoeff(&row);
+        if (row >= m_net.nodes() && row < m_net.nodes() + m_net.inductors()) {
+            const double l_h = e11(k, k);
+            m_scale[k] = 1.0 / (audio_w_rad_per_s * l_h - m_load_a(k, k) * l_h);
+        }
+    }
 }
 
 double detector_network::output_time_constant_s() const noexcept
 {
-    const double r = dc_load_ohm();
-    return r * m_node_c;
+    return m_dc_load_ohm * m_node_c;
+}
+
+std::complex<double> detector_network::load_admittance_s(double f_hz) const
+{
+    return 1.0 / m_net.impedance(m_out, ground_node, f_hz, 0.0);
+}
+
+std::string unsupported_load_states(int extra_states)
+{
+    return fmt::format("an earpiece and load with {} states besides the output node: the bench path handles 0 to 2", extra_states);
 }
 
 template <int Dim>
@@ -68,30 +99,13 @@ one_junction_network<Dim> make_one_junction_network(const detector_network& net)
     if (!(net.series_ohm() > 0.0))
         throw config_error("source.resistance_ohm + diode.series_resistance_ohm = 0: the phase-locked solver needs a series "
                            "resistance > 0 ohm (set solver.method = \"adaptive\")");
+    // From the assembled network: the load's (A_load, b, c), with the series path's -b c^T / R folded into A.
     one_junction_network<Dim> n;
     n.series_ohm = net.series_ohm();
     n.junction = net.diode().law();
-    const double inv_cb = 1.0 / net.node_capacitance_f();
-    n.c[0] = 1.0;
-    n.b[0] = inv_cb;
-    n.a(0, 0) = -(1.0 / n.series_ohm + net.node_conductance_s()) * inv_cb;
-    const auto& e = net.params().earpiece;
-    if constexpr (Dim == 3) {
-        // Butterworth-Van Dyke motional branch: y = [v_b, i_m, v_cm].
-        n.a(0, 1) = -inv_cb;
-        n.a(1, 0) = 1.0 / e.motional_inductance_h;
-        n.a(1, 1) = -e.motional_resistance_ohm / e.motional_inductance_h;
-        n.a(1, 2) = -1.0 / e.motional_inductance_h;
-        n.a(2, 1) = 1.0 / e.motional_capacitance_f;
-    } else if constexpr (Dim == 2) {
-        // Magnetic phones: y = [v_b, i_L]; R_dc in series with L || R_loss.
-        const double gp = conductance_s(e.loss_resistance_ohm);
-        const double k = 1.0 / (1.0 + e.resistance_ohm * gp);
-        n.a(0, 0) -= gp * k * inv_cb;
-        n.a(0, 1) = -(1.0 - gp * e.resistance_ohm * k) * inv_cb;
-        n.a(1, 0) = k / e.inductance_h;
-        n.a(1, 1) = -e.resistance_ohm * k / e.inductance_h;
-    }
+    n.b = net.load_b();
+    n.c = net.load_c();
+    n.a = net.load_a() - n.b * n.c.transpose() / n.series_ohm;
     return n;
 }
 

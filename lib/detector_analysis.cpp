@@ -10,26 +10,6 @@
 
 namespace galena {
 
-namespace {
-
-/// Admittance of the earpiece branch states (BVD motional branch, magnetic phone) at w, S.
-std::complex<double> earpiece_branch_admittance(const earpiece_params& e, double w)
-{
-    using c = std::complex<double>;
-    if (e.has_motional_branch()) {
-        const c z = c(e.motional_resistance_ohm, w * e.motional_inductance_h - 1.0 / (w * e.motional_capacitance_f));
-        return 1.0 / z;
-    }
-    if (e.kind == earpiece_kind::magnetic) {
-        const c zl(0.0, w * e.inductance_h);
-        const c zp = std::isfinite(e.loss_resistance_ohm) ? zl * e.loss_resistance_ohm / (zl + e.loss_resistance_ohm) : zl;
-        return 1.0 / (e.resistance_ohm + zp);
-    }
-    return {0.0, 0.0};
-}
-
-} // namespace
-
 settling_window choose_settling_window(const detector_network& net)
 {
     settling_window w;
@@ -67,19 +47,20 @@ clipping_diagnosis diagnose_clipping(const detector_network& net, double tone_hz
     d.tone_hz = tone_hz;
     d.modulation_index = m;
     const double w = two_pi * tone_hz;
-    const auto& e = net.params().earpiece;
     d.dc_load_ohm = net.dc_load_ohm();
     d.node_capacitance_f = net.node_capacitance_f();
     const double g_dc = std::isfinite(d.dc_load_ohm) ? 1.0 / d.dc_load_ohm : 0.0;
     // Diagonal clipping: 1 / sqrt(1 + (wm R C)^2) with the DC load and the node capacitance (Haykin, Communication Systems).
     const double wrc = w * d.dc_load_ohm * d.node_capacitance_f;
     d.diagonal_m_max = std::isfinite(wrc) ? 1.0 / std::sqrt(1.0 + wrc * wrc) : 0.0;
-    const std::complex<double> y_load = net.node_conductance_s() + earpiece_branch_admittance(e, w);
-    d.ac_coupled_load = e.has_motional_branch();
-    d.ac_load_ohm = y_load.real() > 0.0 ? 1.0 / y_load.real() : std::numeric_limits<double>::infinity();
+    // The load's admittance at the tone from the network (node capacitance, bleeder, earpiece and its branches).
+    const std::complex<double> y_total = net.load_admittance_s(tone_hz);
+    // AC-coupled: the load conducts more at the tone than at DC (a motional branch behind a capacitor).
+    d.ac_coupled_load = y_total.real() > g_dc * (1.0 + 1e-9);
+    d.ac_load_ohm = y_total.real() > 0.0 ? 1.0 / y_total.real() : std::numeric_limits<double>::infinity();
     // Negative-peak clipping: R_ac / R_dc (Haykin, Communication Systems); only an AC-coupled load makes it bind.
     d.negative_peak_m_max = d.ac_coupled_load && std::isfinite(d.dc_load_ohm) ? d.ac_load_ohm / d.dc_load_ohm : 1.0;
-    const double y_abs = std::abs(y_load + std::complex<double>(0.0, w * d.node_capacitance_f));
+    const double y_abs = std::abs(y_total);
     d.combined_m_max = y_abs > 0.0 ? g_dc / y_abs : 1.0;
     d.exceeds_diagonal = m > d.diagonal_m_max;
     d.exceeds_negative_peak = m > d.negative_peak_m_max;

@@ -25,6 +25,15 @@ Eigen::RowVectorXd state_space::node_d(node_id n) const
 
 double state_space::node_dj(node_id n) const { return n == ground_node ? 0.0 : dj[n - 1]; }
 
+double network::node_capacitance_f(node_id n) const
+{
+    check_node(n, "node_capacitance_f");
+    double c = 0.0;
+    for (const auto& e : m_capacitors)
+        if (e.a == n || e.b == n) c += e.value;
+    return c;
+}
+
 node_id network::add_node(std::string name)
 {
     m_node_names.push_back(std::move(name));

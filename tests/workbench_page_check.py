@@ -216,6 +216,24 @@ def main():
         page.js("document.getElementById('ab').click()")
         assert page.js("galenaState.hearing") == "b"
 
+        # The front end: one tapped coil. The bench-only controls hide, the coil's show, and the render is the
+        # whole receiver at RF: its loaded Q is below the coil's unloaded Q of 200 (a load across a tuned
+        # circuit only adds loss: Q_loaded = Q_u R_p' / (R_p + R_p'), any text on tuned circuits).
+        renders = page.js("galenaState.renders")
+        page.js("(() => { const e = document.getElementById('layout'); e.value = 'single-coil'; "
+                "e.dispatchEvent(new Event('change', {bubbles: true})); })()")
+        page.wait_for(f"galenaState.renders >= {renders + 1}")
+        assert page.js("document.getElementById('level').closest('label').style.display") == "none"
+        assert page.js("document.getElementById('coupling').closest('label').style.display") == "none"
+        assert page.js("document.getElementById('coil-q').closest('label').style.display") == ""
+        loaded_q = page.js("galenaState.current.metrics.loaded_q")
+        assert isinstance(loaded_q, (int, float)) and 1.0 < loaded_q < 200.0, f"loaded Q {loaded_q}"
+        assert page.js("document.getElementById('metric-loaded_q-b').textContent") not in ("", "–")
+        page.js("(() => { const e = document.getElementById('layout'); e.value = 'bench'; "
+                "e.dispatchEvent(new Event('change', {bubbles: true})); })()")
+        page.wait_for(f"galenaState.renders >= {renders + 2}")
+        assert page.js("galenaState.current.metrics.loaded_q") is None
+
         # A bad value is shown as the server's one-line message, not thrown.
         before_bad = len(page.events)
         page.js("(() => { const e = document.getElementById('bleeder'); e.value = '-5'; e.dispatchEvent(new Event('change', {bubbles: true})); })()")
@@ -227,7 +245,8 @@ def main():
         page.js("0")  # collect the events that arrived meanwhile
         errors = page.errors(expected_400_after=before_bad)
         assert not errors, "console errors: " + "; ".join(errors)
-        print(f"workbench_page_check: DC {dc_base:.4g} V at 47k, {dc_small:.4g} V at 4.7k; pin and A/B switch sources; no console errors")
+        print(f"workbench_page_check: DC {dc_base:.4g} V at 47k, {dc_small:.4g} V at 4.7k; pin and A/B switch sources; "
+              f"single-coil loaded Q {loaded_q:.4g}; no console errors")
     finally:
         if browser is not None:
             browser.terminate()

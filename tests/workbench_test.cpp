@@ -262,13 +262,16 @@ TEST_CASE("paths in requests are refused: traversal, absolute paths, links, othe
     const std::vector<std::string> clips = {"../audio-samples/tone-1khz.wav", "/etc/passwd", "..", "linked.wav", "outside.wav",
                                             (source_dir / "audio-samples" / "tone-1khz.wav").string(), "upload:1", "upload:../1",
                                             "./tone-1khz.wav"};
-    for (const auto& clip : clips) {
-        CAPTURE(clip);
-        const auto a = post(port, "/api/render?session=t", json{{"signal.audio", clip}, {"signal.duration_s", 0.3}}.dump());
-        CHECK(a.status == 400);
-        CHECK(a.body["error"].get<std::string>().find("never a path") != std::string::npos);
-    }
-    for (const std::string key : {"diode.file", "station.audio"}) {
+    // The bench generator's programme and the receiver station's take the same names, never a path.
+    for (const std::string key : {"signal.audio", "station.audio"})
+        for (const auto& clip : clips) {
+            CAPTURE(key);
+            CAPTURE(clip);
+            const auto a = post(port, "/api/render?session=t", json{{key, clip}, {"signal.duration_s", 0.3}}.dump());
+            CHECK(a.status == 400);
+            CHECK(a.body["error"].get<std::string>().find("never a path") != std::string::npos);
+        }
+    for (const std::string key : {"diode.file", "station.1.audio", "station.2.file"}) {
         const auto a = post(port, "/api/render?session=t", json{{key, "/etc/passwd"}}.dump());
         CHECK(a.status == 400);
         CHECK(a.body["error"].get<std::string>().find("no file paths") != std::string::npos);
@@ -276,6 +279,15 @@ TEST_CASE("paths in requests are refused: traversal, absolute paths, links, othe
     // The bundled clip by its name renders.
     const auto ok = post(port, "/api/render?session=t", json{{"signal.audio", "tone-1khz.wav"}, {"signal.duration_s", 0.3}}.dump());
     CHECK_MESSAGE(ok.status == 200, ok.raw);
+    // The same clip as the programme of a receiver layout's one station: the whole receiver at RF renders, and
+    // its loaded Q is below the coil's unloaded 200 (a detector across a tuned circuit only adds loss).
+    const auto rx = post(port, "/api/render?session=t",
+                         json{{"tuner.layout", "single-coil"}, {"station.carrier_hz", "1MHz"}, {"station.field_v_per_m", "10m"},
+                              {"station.audio", "tone-1khz.wav"}, {"signal.duration_s", 0.3}}
+                             .dump());
+    REQUIRE_MESSAGE(rx.status == 200, rx.raw);
+    CHECK(rx.body["metrics"]["loaded_q"].get<double>() > 1.0);
+    CHECK(rx.body["metrics"]["loaded_q"].get<double>() < 200.0);
     // Audio URLs name a session and a number, nothing else.
     for (const std::string path : {"/audio/../../etc/passwd", "/audio/t/../../../etc/passwd", "/audio/t/1.wav/../../x", "/audio/t/%2e%2e/1.wav",
                                    "/audio/t/999.wav", "/audio/other/1.wav", "/etc/passwd", "/../../etc/passwd"}) {

@@ -1,23 +1,27 @@
-/// State equations and analytic Jacobians of the detector stage:
+/// The detector stage on the bench, as one network built from components (see detector_network):
 ///
 ///   AM source --R_src--+--R_s--[junction: Shockley || R_leak || Cj(v)]--+-- output node b
 ///                                                                       |
-///                          C_filter + C_stray + C_0  ||  R_bleeder || R_leak,ear  ||  earpiece branch
+///                                                   load and earpiece (stamp_load, front_end.cpp)
 ///
 /// R_src and R_s are in series with nothing between them, so they are lumped into R = R_src + R_s.
 /// With Cj0 > 0 the junction voltage is a state; with Cj0 = 0 it is algebraic and is solved by a
 /// safeguarded scalar Newton inside each evaluation (the branch current i(u) with u = v_s - v_b).
-/// Earpiece branch states: Butterworth-Van Dyke motional branch (i_m through L_m, v on C_m), or the
-/// magnetic phone's inductor current i_L. Every other element is linear and folded into the output node.
+/// The load's states (the output node, a BVD motional branch, a magnetic phone's coil current, or whatever
+/// an added earpiece stamps) come from the assembled network: no earpiece is written out here.
 #pragma once
 
 #include "galena/components.hpp"
+#include "galena/error.hpp"
+#include "galena/network.hpp"
 #include "galena/signal.hpp"
 
 #include <Eigen/Core>
+#include <complex>
 #include <utility>
 #include <cmath>
 #include <limits>
+#include <string>
 
 namespace galena {
 
@@ -52,7 +56,10 @@ struct circuit_params {
     earpiece_params earpiece;
 };
 
-/// Derived constants of the network, validated. Built once per render.
+/// The bench detector as one network: a generator u behind R = R_src + R_s, the junction port, and the load
+/// and earpiece stamped by stamp_load (front_end.cpp) at the output node. Everything the bench path needs
+/// (the phase-locked path's (A, b, c), the adaptive path's equations, the DC load, Y(jw), time constants)
+/// derives from its assembled state space. Built once per render.
 class detector_network {
 public:
     /// Validates every part and the topology (throws config_error): total output-node capacitance must
@@ -65,64 +72,72 @@ public:
     [[nodiscard]] double series_ohm() const noexcept { return m_series_ohm; }
     /// Total capacitance at the output node, F.
     [[nodiscard]] double node_capacitance_f() const noexcept { return m_node_c; }
-    /// Total linear conductance from the output node to ground, S (bleeder, earpiece leakage or resistor).
+    /// Conductance from the output node to ground with the load's other states held, S: -A_load(0,0) C_node
+    /// (bleeder, earpiece leakage or resistor; the part of a load's current that follows v_b at once).
     [[nodiscard]] double node_conductance_s() const noexcept { return m_node_g; }
-    /// Number of earpiece branch states: 0, 1 (magnetic) or 2 (BVD).
-    [[nodiscard]] int earpiece_states() const noexcept { return m_ear_states; }
+    /// Number of load states besides the output node's voltage (earpiece branch states: 0, 1 or 2 today).
+    [[nodiscard]] int earpiece_states() const noexcept { return static_cast<int>(m_load_a.rows()) - 1; }
     /// DC resistance from the output node to ground (earpiece and bleeder), ohm; inf when none.
-    [[nodiscard]] double dc_load_ohm() const noexcept;
+    [[nodiscard]] double dc_load_ohm() const noexcept { return m_dc_load_ohm; }
     /// Slowest linear time constant at the output node, C_node / G_dc, s (inf without a DC path).
     [[nodiscard]] double output_time_constant_s() const noexcept;
+    /// Admittance of the load and earpiece at the output node at f_hz, junction open, S (node capacitance
+    /// included).
+    [[nodiscard]] std::complex<double> load_admittance_s(double f_hz) const;
+
+    /// The load alone: dy/dt = A_load y + b j for a current j injected at the output node, v_b = c^T y
+    /// (y[0] is v_b). 1/s, 1/F (and so on for current states), dimensionless.
+    [[nodiscard]] const Eigen::MatrixXd& load_a() const noexcept { return m_load_a; }
+    [[nodiscard]] const Eigen::VectorXd& load_b() const noexcept { return m_load_b; }
+    [[nodiscard]] const Eigen::VectorXd& load_c() const noexcept { return m_load_c; }
+    /// Per-state multiplier of an absolute tolerance in volts: 1 for voltages; 1 / (w_a L + R) for an
+    /// inductor current (L its self-inductance, R = -A_ii L its loss, w_a = 1e4 rad/s an audio frequency).
+    [[nodiscard]] const Eigen::VectorXd& state_tolerance_scale() const noexcept { return m_scale; }
+    /// The assembled network (states, basis, charges).
+    [[nodiscard]] const state_space& assembled() const noexcept { return m_ss; }
 
 private:
     circuit_params m_params;
     diode_model m_diode;
+    network m_net;
+    node_id m_out = 0;
+    state_space m_ss;
+    Eigen::MatrixXd m_load_a;
+    Eigen::VectorXd m_load_b, m_load_c, m_scale;
     double m_series_ohm;
     double m_node_c;
-    double m_node_g;
-    int m_ear_states;
+    double m_node_g = 0.0;
+    double m_dc_load_ohm = 0.0;
 };
 
-/// State equations for one topology, for any stepper that takes `rhs` and `rhs_jacobian`.
-/// State layout: [v_j (if JunctionCap)], v_b, [earpiece states]. Volts and amperes.
+/// State equations for one topology, for any stepper that takes `rhs` and `rhs_jacobian`, written once
+/// for every load: the load's (A_load, b, c) come from the assembled network.
+/// State layout: [v_j (if JunctionCap)], y = [v_b, the load's other states]. Volts and amperes.
 template <bool JunctionCap, int EarStates>
 class detector_equations {
 public:
     static constexpr int junction_states = JunctionCap ? 1 : 0;
-    static constexpr int dim = junction_states + 1 + EarStates;
+    static constexpr int load_dim = 1 + EarStates;
+    static constexpr int dim = junction_states + load_dim;
     /// Index of the output (earpiece) voltage in the state vector.
     static constexpr int output_index = junction_states;
     using vec = Eigen::Matrix<double, dim, 1>;
     using mat = Eigen::Matrix<double, dim, dim>;
+    using load_vec = Eigen::Matrix<double, load_dim, 1>;
+    using load_mat = Eigen::Matrix<double, load_dim, load_dim>;
 
     detector_equations(const detector_network& net, const am_source& src) : m_net(&net), m_src(&src)
     {
-        const auto& e = net.params().earpiece;
         m_inv_r = net.series_ohm() > 0.0 ? 1.0 / net.series_ohm() : 0.0;
-        m_inv_cb = 1.0 / net.node_capacitance_f();
-        m_gb = net.node_conductance_s();
-        if constexpr (EarStates == 2) {
-            m_rm = e.motional_resistance_ohm;
-            m_inv_lm = 1.0 / e.motional_inductance_h;
-            m_inv_cm = 1.0 / e.motional_capacitance_f;
-        } else if constexpr (EarStates == 1) {
-            const double gp = conductance_s(e.loss_resistance_ohm);
-            m_rdc = e.resistance_ohm;
-            m_mag_k = 1.0 / (1.0 + m_rdc * gp);
-            m_mag_gp = gp;
-            m_inv_l = 1.0 / e.inductance_h;
-        }
+        m_a = net.load_a();
+        m_b = net.load_b();
+        m_c = net.load_c();
+        m_scale.template tail<load_dim>() = net.state_tolerance_scale();
+        if constexpr (JunctionCap) m_scale[0] = 1.0;
     }
 
     /// Absolute-tolerance scale of each state relative to a tolerance in volts (currents: 1/impedance).
-    [[nodiscard]] vec tolerance_scale() const
-    {
-        vec s = vec::Ones();
-        const auto& e = m_net->params().earpiece;
-        if constexpr (EarStates == 2) s[output_index + 1] = 1.0 / std::sqrt(e.motional_inductance_h / e.motional_capacitance_f);
-        if constexpr (EarStates == 1) s[output_index + 1] = 1.0 / (e.resistance_ohm + e.inductance_h * 1e4);
-        return s;
-    }
+    [[nodiscard]] vec tolerance_scale() const { return m_scale; }
 
     /// dx/dt at time t_s.
     void rhs(const vec& x, double t_s, vec& f) const
@@ -137,8 +152,9 @@ public:
     [[nodiscard]] double diode_current_a(const vec& x, double t_s) const
     {
         const double vs = m_src->voltage(t_s);
-        if constexpr (JunctionCap) return (vs - x[0] - x[output_index]) * m_inv_r;
-        else return branch(vs - x[output_index]).current_a;
+        const double vb = m_c.dot(x.template tail<load_dim>());
+        if constexpr (JunctionCap) return (vs - x[0] - vb) * m_inv_r;
+        else return branch(vs - vb).current_a;
     }
 
     [[nodiscard]] const am_source& source() const noexcept { return *m_src; }
@@ -189,69 +205,47 @@ private:
     void eval(const vec& x, double t, vec& f, mat& j) const
     {
         const double vs = source_v(t);
-        const double vb = x[output_index];
-        double i_ear = 0.0;
-        double di_ear_dvb = 0.0;
-        if constexpr (WithJacobian) j.setZero();
-        if constexpr (EarStates == 2) {
-            const double im = x[output_index + 1];
-            const double vcm = x[output_index + 2];
-            i_ear = im;
-            f[output_index + 1] = (vb - m_rm * im - vcm) * m_inv_lm;
-            f[output_index + 2] = im * m_inv_cm;
-            if constexpr (WithJacobian) {
-                j(output_index + 1, output_index) = m_inv_lm;
-                j(output_index + 1, output_index + 1) = -m_rm * m_inv_lm;
-                j(output_index + 1, output_index + 2) = -m_inv_lm;
-                j(output_index + 2, output_index + 1) = m_inv_cm;
-                j(output_index, output_index + 1) = -m_inv_cb;
-            }
-        } else if constexpr (EarStates == 1) {
-            const double il = x[output_index + 1];
-            const double vl = (vb - m_rdc * il) * m_mag_k;
-            i_ear = il + m_mag_gp * vl;
-            di_ear_dvb = m_mag_gp * m_mag_k;
-            f[output_index + 1] = vl * m_inv_l;
-            if constexpr (WithJacobian) {
-                j(output_index + 1, output_index) = m_mag_k * m_inv_l;
-                j(output_index + 1, output_index + 1) = -m_rdc * m_mag_k * m_inv_l;
-                j(output_index, output_index + 1) = -m_mag_k * m_inv_cb;
-            }
-        }
+        const load_vec y = x.template tail<load_dim>();
+        const double vb = m_c.dot(y);
+        // The load: dy/dt = A_load y + b i_s, with i_s the series (diode) current into the output node.
+        double is = 0.0;
         if constexpr (JunctionCap) {
             const diode_model& d = m_net->diode();
             const double vj = x[0];
-            const double is = (vs - vj - vb) * m_inv_r;
+            is = (vs - vj - vb) * m_inv_r;
             const junction_point jp = d.junction(vj);
             const auto [c, dc] = d.capacitance_and_slope(vj);
             const double inv_c = 1.0 / c;
             f[0] = (is - jp.current_a) * inv_c;
-            f[output_index] = (is - m_gb * vb - i_ear) * m_inv_cb;
             if constexpr (WithJacobian) {
+                j.setZero();
                 j(0, 0) = (-m_inv_r - jp.conductance_s) * inv_c - f[0] * dc * inv_c;
-                j(0, output_index) = -m_inv_r * inv_c;
-                j(output_index, 0) = -m_inv_r * m_inv_cb;
-                j(output_index, output_index) = (-m_inv_r - m_gb - di_ear_dvb) * m_inv_cb;
+                j.template block<1, load_dim>(0, 1) = (-m_inv_r * inv_c) * m_c.transpose();
+                j.template block<load_dim, 1>(1, 0) = -m_inv_r * m_b;
+                j.template block<load_dim, load_dim>(1, 1) = m_a - m_inv_r * m_b * m_c.transpose();
             }
         } else {
-            (void)0;
-            const junction_point b = branch(vs - vb);
-            f[output_index] = (b.current_a - m_gb * vb - i_ear) * m_inv_cb;
-            if constexpr (WithJacobian) j(output_index, output_index) = (-b.conductance_s - m_gb - di_ear_dvb) * m_inv_cb;
+            const junction_point br = branch(vs - vb);
+            is = br.current_a;
+            if constexpr (WithJacobian) j = m_a - br.conductance_s * m_b * m_c.transpose();
         }
+        f.template tail<load_dim>() = m_a * y + m_b * is;
     }
 
     const detector_network* m_net;
     const am_source* m_src;
     double m_inv_r = 0.0;
-    double m_inv_cb = 0.0;
-    double m_gb = 0.0;
-    double m_rm = 0.0, m_inv_lm = 0.0, m_inv_cm = 0.0;
-    double m_rdc = 0.0, m_mag_k = 1.0, m_mag_gp = 0.0, m_inv_l = 0.0;
+    load_mat m_a;
+    load_vec m_b, m_c;
+    vec m_scale = vec::Ones();
     mutable double m_vj_guess = 0.0;
     mutable double m_cached_t = std::numeric_limits<double>::quiet_NaN();
     mutable double m_cached_vs = 0.0;
 };
+
+/// The message for a load with more states than the bench path's fixed-size dispatch holds (0 to 2 besides
+/// the output node; add a case to with_equations and with_one_junction_network for more).
+[[nodiscard]] std::string unsupported_load_states(int extra_states);
 
 /// Calls fn(equations) with the detector_equations instance matching the network's topology.
 template <class Fn>
@@ -265,9 +259,10 @@ decltype(auto) with_equations(const detector_network& net, const am_source& src,
     case 1:
         if (cj) return fn(detector_equations<true, 1>(net, src));
         return fn(detector_equations<false, 1>(net, src));
-    default:
+    case 0:
         if (cj) return fn(detector_equations<true, 0>(net, src));
         return fn(detector_equations<false, 0>(net, src));
+    default: throw config_error(unsupported_load_states(net.earpiece_states()));
     }
 }
 
@@ -288,7 +283,8 @@ decltype(auto) with_one_junction_network(const detector_network& net, Fn&& fn)
     switch (net.earpiece_states()) {
     case 2: return fn(make_one_junction_network<3>(net));
     case 1: return fn(make_one_junction_network<2>(net));
-    default: return fn(make_one_junction_network<1>(net));
+    case 0: return fn(make_one_junction_network<1>(net));
+    default: throw config_error(unsupported_load_states(net.earpiece_states()));
     }
 }
 

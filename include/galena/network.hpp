@@ -79,6 +79,8 @@ public:
     [[nodiscard]] node_id junction_anode() const noexcept { return m_anode; }
     [[nodiscard]] node_id junction_cathode() const noexcept { return m_cathode; }
     [[nodiscard]] const std::string& node_name(node_id n) const;
+    /// Sum of the capacitors with a terminal at node n (to ground or to other nodes), F.
+    [[nodiscard]] double node_capacitance_f(node_id n) const;
 
     /// The state-space form. Nodes without capacitance and source currents are eliminated exactly (Schur
     /// complement of the algebraic block). A node joined only to ground by capacitance keeps its voltage as

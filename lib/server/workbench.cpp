@@ -380,12 +380,13 @@ struct workbench::impl {
             } else {
                 throw http_refusal(400, fmt::format("{}: must be a number, a string (\"47k\") or true/false, not {}", key, v.type_name()));
             }
-            if (key == "signal.audio") {
-                if (!v.is_string()) throw http_refusal(400, "signal.audio: must be a clip name (GET /api/clips) or an upload (upload:N)");
-                text = toml_string(clip_path(text, sess).string());
+            if (key == "signal.audio" || key == "station.audio") {
+                // The programme of the bench generator, or of the one station of a receiver layout.
+                if (!v.is_string()) throw http_refusal(400, fmt::format("{}: must be a clip name (GET /api/clips) or an upload (upload:N)", key));
+                text = toml_string(clip_path(text, sess, key).string());
             } else if (key == "diode.file" && v.is_string() && text.starts_with("upload:d") && sess != nullptr) {
                 text = toml_string(diode_path(text, *sess).string());
-            } else if (key == "diode.file" || key.starts_with("station.") || key.ends_with(".audio") || key.ends_with(".file")) {
+            } else if (key == "diode.file" || key.ends_with(".audio") || key.ends_with(".file")) {
                 throw http_refusal(400, fmt::format("{}: the workbench takes no file paths; give diode.preset or the diode.* values", key));
             }
             sets.push_back(key + "=" + text);
@@ -393,13 +394,13 @@ struct workbench::impl {
         return sets;
     }
 
-    /// The file a signal.audio value names: a bundled clip (a regular file, not a link) or an upload.
-    fs::path clip_path(const std::string& value, session* sess)
+    /// The file a signal.audio (or station.audio) value names: a bundled clip (a regular file, not a link) or an upload.
+    fs::path clip_path(const std::string& value, session* sess, const std::string& key = "signal.audio")
     {
         const auto refuse = [&] {
-            return http_refusal(400, fmt::format("signal.audio = \"{}\": not a bundled clip or an upload of this session; the "
+            return http_refusal(400, fmt::format("{} = \"{}\": not a bundled clip or an upload of this session; the "
                                                  "workbench takes a name from GET /api/clips or upload:N, never a path",
-                                                 value));
+                                                 key, value));
         };
         if (value.starts_with("upload:")) {
             const std::string n = value.substr(7);
@@ -692,6 +693,17 @@ struct workbench::impl {
         v["earpiece.capacitance_f"] = value_json(c.earpiece.capacitance_f);
         v["earpiece.resistance_ohm"] = value_json(c.earpiece.resistance_ohm);
         v["earpiece.inductance_h"] = value_json(c.earpiece.inductance_h);
+        // The front end (receiver layouts): the base scenario's tuner and antenna, and its first station's field
+        // (a bench base has none: the scenario contract's example field, 10 mV/m).
+        v["tuner.layout"] = std::string(to_string(s.tuner.layout));
+        v["tuner.coil_h"] = s.tuner.coil_h;
+        v["tuner.coil_q"] = s.tuner.coil_q;
+        v["tuner.tuned_hz"] = s.tuner.tuned_hz;
+        v["tuner.detector_tap"] = s.tuner.detector_tap;
+        v["tuner.antenna_tap"] = s.tuner.antenna_tap;
+        v["tuner.coupling"] = s.tuner.coupling;
+        v["antenna.effective_height_m"] = s.antenna.effective_height_m;
+        v["station.field_v_per_m"] = s.stations.empty() ? 10e-3 : s.stations.front().params.field_v_per_m;
         return {{"values", v},
                 {"scenario", s.file.filename().string()},
                 {"max_excerpt_s", opt.max_excerpt_s},
