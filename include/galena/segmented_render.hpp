@@ -62,7 +62,7 @@ struct segment_options {
     /// Warm-up before the seam in slowest open-junction time constants; e^-40 = 4e-18.
     double warm_up_time_constants = 40.0;
     /// Largest relative difference accepted at the seam: each network state and junction voltage against
-    /// its own size, the cycle means against the carrier crest (measured on bench scenarios: at most 2e-14
+    /// its own size, the cycle means against the carrier crest (measured on bench scenarios: at most 2.2e-14
     /// and 4e-16; segmented_render_test).
     double seam_tolerance = 1e-12;
     /// The seam sits at this share of (carrier cycles + warm-up cycles), rounded to a chunk: the second
