@@ -2,6 +2,7 @@
 
 #include "galena/audio_io.hpp"
 #include "galena/cancel.hpp"
+#include "galena/segmented_render.hpp"
 #include "galena/characterize.hpp"
 #include "galena/metrics.hpp"
 #include "galena/constants.hpp"
@@ -427,6 +428,13 @@ job_outcome render_job_unscaled(const scenario& s, const fs::path& out_dir, cons
             spec.noise = s.noise;
             for (std::size_t k = 0; k < s.stations.size(); ++k) spec.stations.push_back({s.stations[k].params, programmes[k].get()});
             o.render = render_receiver(spec, s.render, sink, o.receiver);
+        } else if (opt.use_second_core) {
+            segment_options so;
+            so.second_programme = [&s] { return make_programme(s); };
+            so.stop_requested = [&opt] {
+                return cancel_requested() || (opt.cancel != nullptr && opt.cancel->requested()) || (opt.stop != nullptr && opt.stop->load());
+            };
+            o.render = render_segmented(s.circuit, s.am, *programme, s.render, sink, so);
         } else {
             o.render = render(s.circuit, s.am, *programme, s.render, sink);
         }

@@ -506,6 +506,7 @@ int main(int argc, char** argv)
             galena::job_options opt;
             opt.overwrite = overwrite;
             opt.allow_long = allow_long;
+            opt.use_second_core = true;
             // Plots go into the staged output with the WAV; a gnuplot failure costs the plots, not the render.
             opt.extras = [&](const galena::job_outcome& o, const std::filesystem::path& dir) {
                 std::vector<galena::warning> w;

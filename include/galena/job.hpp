@@ -56,6 +56,10 @@ struct job_options {
     /// Optional: this job's own cancel token (non-owning), polled with the process-wide flag between solver
     /// blocks; a request stops this job alone with cancelled_error.
     const cancel_token* cancel = nullptr;
+    /// A bench-layout render may take a second core when one is free (render_segmented: the programme split
+    /// at a verified seam); the audio equals the serial render's to rounding. For single renders (the CLI's
+    /// render, the workbench); sweeps keep one core per variant.
+    bool use_second_core = false;
 };
 
 /// What a job wrote and measured.

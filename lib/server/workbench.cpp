@@ -9,6 +9,7 @@
 #include "galena/job.hpp"
 #include "galena/scenario.hpp"
 #include "galena/units.hpp"
+#include "galena/segmented_render.hpp"
 #include "galena/warning.hpp"
 
 #include <httplib.h>
@@ -75,6 +76,7 @@ public:
     {
         job_options opt;
         opt.cancel = &m_token;
+        opt.use_second_core = true;
         const auto deadline = clock_type::now() + std::chrono::duration_cast<clock_type::duration>(std::chrono::duration<double>(timeout_s));
         opt.progress = [this, deadline](double) {
             if (clock_type::now() > deadline) cancel(reason::timed_out);
@@ -156,7 +158,10 @@ private:
                 m_queue.pop_front();
                 ++m_running;
             }
-            job();
+            {
+                const core_claim held; // a render takes a second core only when no other job holds it
+                job();
+            }
             std::lock_guard lock(m_mutex);
             --m_running;
         }
