@@ -451,14 +451,16 @@ TEST_CASE("load: 200 requests from 16 loopback clients, good and bad mixed")
                     if (t.issued.fetch_add(1) >= total) return; // bounded: `total` requests in all
                     const bool is_good = (c + k) % 3 != 0;
                     const std::string body = is_good ? good_body(c * per_client + k) : bad[static_cast<std::size_t>(c + k) % bad.size()];
+                    const auto tq = std::chrono::steady_clock::now();
                     const auto r = client.Post(fmt::format("/api/render?session=c{}", c).c_str(), body, "application/json");
+                    const double took = std::chrono::duration<double>(std::chrono::steady_clock::now() - tq).count();
                     const int status = r ? r->status : -1;
                     if (is_good) {
                         ++t.good_sent;
                         if (status == 200 && json::parse(r->body).contains("metrics")) ++t.good_ok;
                         else {
                             std::lock_guard lock(t.m);
-                            t.surprises.push_back(fmt::format("good request answered {}: {}", status, r ? r->body : httplib::to_string(r.error())));
+                            t.surprises.push_back(fmt::format("good request {} of client {} answered {} after {:.3f} s: {}", k, c, status, took, r ? r->body : httplib::to_string(r.error())));
                         }
                     } else {
                         ++t.bad_sent;
@@ -475,6 +477,7 @@ TEST_CASE("load: 200 requests from 16 loopback clients, good and bad mixed")
     // arenas and caches that serving makes; then the load proper.
     tally warm;
     run_clients(48, warm);
+    for (const auto& s : warm.surprises) MESSAGE(s);
     REQUIRE(warm.good_ok == warm.good_sent);
     malloc_trim(0);
     const std::size_t baseline = resident_bytes();
@@ -505,8 +508,10 @@ TEST_CASE("load: 200 requests from 16 loopback clients, good and bad mixed")
     // anything here; its leak checker reports leaks at exit instead.
     MESSAGE("memory checks skipped under AddressSanitizer");
 #else
-    // Memory back to its baseline within 10 %: the resident size (measured: +1 %).
-    CHECK(static_cast<double>(after) <= 1.10 * static_cast<double>(baseline));
+    // Memory back near its baseline: the resident size grows by 0.6 to 2.3 MiB over 48 runs (3 to 11 % of
+    // about 21 MiB): pages of the malloc arenas that the renders' second-core threads touch, which glibc caps
+    // at eight arenas per core. A per-request leak shows up in the heap figure below, not here.
+    CHECK(after <= baseline + (4u << 20));
     // And no leak hides in it: the allocator's bytes in use grow by less than 1 MiB over the 200 requests
     // (measured: about 0.4 MiB, the per-thread caches of HTTP threads met for the first time). Keeping one
     // render's metrics or samples per request would add 2.5 MiB or more (0.2 s of float samples at 24 kHz

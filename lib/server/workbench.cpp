@@ -26,6 +26,8 @@
 #include <mutex>
 #include <nlohmann/json.hpp>
 #include <stdlib.h>
+#include <sys/socket.h>
+#include <unistd.h>
 #include <thread>
 
 namespace galena {
@@ -259,6 +261,7 @@ struct workbench::impl {
     std::map<std::string, fs::path> clips; ///< bundled clip name -> its file
     httplib::Server server;
     std::thread listener;
+    int listen_fd = -1; ///< the server's listening socket, seen as cpp-httplib makes it
     int bound_port = 0;
     render_pool pool;
     std::mutex mutex; ///< guards sessions and the counters
@@ -825,8 +828,23 @@ workbench::workbench(workbench_options options) : m_impl(std::make_unique<impl>(
     m.server.set_keep_alive_timeout(5);
     m.server.set_read_timeout(10);
     m.server.set_write_timeout(10);
+    // cpp-httplib's packaged library listens with a backlog of 5. When a page and a few clients connect at once
+    // while both cores render, the listener thread is not scheduled in time, the kernel's accept queue fills and
+    // it answers with SYN cookies whose connections are then reset: the browser sees a dropped request. Keep
+    // the socket that cpp-httplib makes (its default options as they are) and widen its backlog after binding.
+    m.server.set_socket_options([&m](int fd) {
+        httplib::default_socket_options(fd);
+        m.listen_fd = fd;
+    });
     m.routes();
     m.bound_port = m.opt.port == 0 ? m.server.bind_to_any_port(m.opt.host) : (m.server.bind_to_port(m.opt.host, m.opt.port) ? m.opt.port : -1);
+    if (m.bound_port > 0 && (m.listen_fd < 0 || ::listen(m.listen_fd, SOMAXCONN) != 0)) {
+        const int err = errno;
+        if (m.listen_fd >= 0) ::close(m.listen_fd); // never served: cpp-httplib's server leaves it to us
+        fs::remove_all(m.temp, ec);
+        throw resource_error(fmt::format("workbench: cannot widen the listening queue on {}:{}: {}", m.opt.host, m.bound_port,
+                                         m.listen_fd < 0 ? "the socket was not seen" : std::strerror(err)));
+    }
     if (m.bound_port <= 0) {
         fs::remove_all(m.temp, ec);
         throw resource_error(fmt::format("workbench: cannot listen on {}:{} (the port is in use or the address is not this machine's; choose another port, or 0 for a free one)",
