@@ -17,6 +17,8 @@ namespace {
 /// Largest block of steps evaluated by superposition (see the class comment): the per-step dot product
 /// grows with it, the per-block products shrink per step; 32 measured best for 8 states and 3 stations.
 constexpr int max_block_steps = 32;
+/// BDF2's weight on the step-end charge: h dq/dt(t1) = 3/2 q1 - 2 q0 + 1/2 q-1 (exact for a quadratic q).
+constexpr double bdf2_gain = 1.5;
 } // namespace
 
 rf_integrator::rf_integrator(const state_space& ss, int input, const junction_law& junction, const station_source& stations,
@@ -197,12 +199,13 @@ void rf_integrator::initialize()
     const junction_values jv = m_law.evaluate(0.0);
     m_i0 = jv.current_a;
     m_qr0 = m_charge ? jv.charge_c : 0.0;
+    m_qr1 = m_qr0;
     m_g0_s = jv.conductance_s;
     m_cr0_f = m_charge ? jv.capacitance_f - m_c_lin : 0.0;
     // The predictor's first cycle linearises the law at v = 0 (beta as in run_cycle).
     const double beta = m_port.j(0, 1);
-    const double g = m_g0_s + m_cr0_f / m_h;
-    std::fill(m_prev.begin(), m_prev.end(), phase_point{0.0, m_i0 + m_qr0 / m_h, 1.0 / (1.0 - beta * g)});
+    const double g = m_g0_s + bdf2_gain * m_cr0_f / m_h;
+    std::fill(m_prev.begin(), m_prev.end(), phase_point{0.0, m_i0 + bdf2_gain * m_qr0 / m_h, 1.0 / (1.0 - beta * g)});
     std::fill(m_out_last.begin(), m_out_last.end(), 0.0);
     m_stats = {};
 }
@@ -219,6 +222,7 @@ double rf_integrator::solve_junction(double alpha, double beta, double v, double
     // F(v) = v - alpha - beta J(v), J the step's junction current as a function of its end voltage;
     // beta <= 0 (passive network) makes F increasing, so the root is bracketed by the signs seen.
     const double inv_h = 1.0 / m_h;
+    const double hist = charge_history(); // the step's known charge terms
     double lo = -std::numeric_limits<double>::infinity();
     double hi = std::numeric_limits<double>::infinity();
     for (int it = 0; it < 200; ++it) {
@@ -228,11 +232,11 @@ double rf_integrator::solve_junction(double alpha, double beta, double v, double
         double dj = jv.conductance_s;
         double qr = 0.0, cr = 0.0;
         if constexpr (Charge) {
-            // Backward Euler on the residual charge (see the header): no step-to-step recursion to ring.
+            // BDF2 on the residual charge (see the header): L-stable, no undamped step-to-step mode.
             qr = jv.charge_c - m_c_lin * v;
             cr = jv.capacitance_f - m_c_lin;
-            jj += inv_h * (qr - m_qr0);
-            dj += inv_h * cr;
+            jj += inv_h * (bdf2_gain * qr - hist);
+            dj += bdf2_gain * inv_h * cr;
         }
         const double f = v - alpha - beta * jj;
         const double df = 1.0 - beta * dj;
@@ -248,13 +252,14 @@ double rf_integrator::solve_junction(double alpha, double beta, double v, double
             }
         }
         const double dv = vn - v;
-        // Newton's remaining error after this update is about |F''| dv^2 / (2 F'), F'' = -beta (I'' + C_r' / h).
+        // Newton's remaining error after this update is about |F''| dv^2 / (2 F'), F'' = -beta (I'' + 1.5 C_r' / h).
         double curvature = jv.conductance_slope_s_per_v;
-        if constexpr (Charge) curvature += inv_h * jv.capacitance_slope_f_per_v;
+        if constexpr (Charge) curvature += bdf2_gain * inv_h * jv.capacitance_slope_f_per_v;
         if (std::fabs(dv) <= m_tol || 0.5 * std::fabs(beta * curvature) * dv * dv <= m_tol * df) {
             // Converged: the update is below the tolerance; carry the law to vn linearly.
             j1 = jj + dj * dv;
             m_i0 = jv.current_a + jv.conductance_s * dv;
+            m_qr1 = m_qr0;
             m_qr0 = qr + cr * dv;
             m_g0_s = jv.conductance_s;
             m_cr0_f = cr;
@@ -358,12 +363,12 @@ void rf_integrator::run_cycle(std::span<double> out)
             // this step's v = alpha + beta J(v) (a Newton step from there that costs no law evaluation).
             // (The division is made when the point is stored, off this step's chain of dependent operations.)
             phase_point& pp = m_prev[kk];
-            double guess = (alpha + beta * (pp.offset_a - m_qr0 * inv_h)) * pp.inv_den;
+            double guess = (alpha + beta * (pp.offset_a - charge_history() * inv_h)) * pp.inv_den;
             if (!std::isfinite(guess)) guess = pp.v;
             double j1 = 0.0;
             const double v1 = solve_junction<Breakdown, Charge, SquareRoot>(alpha, beta, guess, j1);
-            const double g = m_g0_s + m_cr0_f * inv_h;
-            pp = {v1, m_i0 + m_qr0 * inv_h - g * v1, 1.0 / (1.0 - beta * g)};
+            const double g = m_g0_s + bdf2_gain * m_cr0_f * inv_h;
+            pp = {v1, m_i0 + bdf2_gain * m_qr0 * inv_h - g * v1, 1.0 / (1.0 - beta * g)};
             m_jb[k] = j1;
             m_v = v1;
             m_j = j1;

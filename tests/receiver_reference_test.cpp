@@ -121,16 +121,21 @@ TEST_CASE("receiver against ngspice: untuned, single-coil tapped, coupled with a
     // whistle). ngspice's trapezoidal rule at a 1 ns step is converged here: a 0.25 ns run differs from it by
     // 1.1e-4 in the coupled set. The diode current is the Shockley law in both (see receiver_spice.hpp: ngspice's
     // own reverse-bias approximation had raised its detected DC by 0.15 % in the coupled set).
-    // galena's own error is that of the junction current's piecewise-linear form: the detector conducts for
-    // about 20 ns per cycle, less than one step at the production N = 32, and the coupled set's detected DC
-    // then sits 0.2 % low (2e-3 in waveform; 1.2e-3 at N = 128, 6.9e-4 at N = 256, 2.7e-4 at N = 1024, 1.5e-4
-    // at N = 4096: converging on ngspice). The issue's 1e-3 waveform criterion is checked at N = 256; N = 32,
-    // the render default, at its measured figures. Each station's tone level agrees within 1 % at both.
+    // galena's own error is second order in the step (self-convergence of the coupled set against N = 4096:
+    // 2.9e-3 at N = 32, 7.5e-4 at 64, 1.9e-4 at 128, 4.9e-5 at 256), from the junction current's
+    // piecewise-linear form and the BDF2 derivative of the junction's nonlinear charge; the detector conducts
+    // for about 20 ns per cycle, less than one step at the production N = 32, and the tuned sets' detected DC
+    // then sits 0.2-0.3 % high. Past N = 256 a 2e-4 DC difference remains that is neither galena's step (at
+    // N = 1024 it is within 3e-6 of N = 4096, and 1.9e-4 from ngspice at 1 ns, 2.4e-4 at 0.25 ns) nor there
+    // without the junction capacitance (Cj = 0: 5e-5): a junction-charge difference between the two models,
+    // not yet traced. The issue's 1e-3 waveform criterion is
+    // checked at N = 64 and 256; N = 32, the render default, at its measured figures. Each station's tone
+    // level agrees within 1 % at every N checked.
     const double t_end = 2e-3, t_cmp = 1e-3;
     const double max_step = 1e-9;
-    cases[0].checks = {{32, 6e-4}, {256, 1e-5}};   // measured 5.2e-4 and 3.7e-6
-    cases[1].checks = {{32, 2.2e-3}, {256, 1e-3}}; // measured 1.9e-3 and 7.0e-4
-    cases[2].checks = {{32, 2.4e-3}, {256, 1e-3}}; // measured 2.1e-3 and 7.8e-4
+    cases[0].checks = {{32, 6e-4}, {256, 1e-5}};                // measured 5.0e-4 and 7.2e-6
+    cases[1].checks = {{32, 2.3e-3}, {64, 4.5e-4}, {256, 2.5e-4}}; // measured 2.1e-3, 3.7e-4 and 1.9e-4
+    cases[2].checks = {{32, 3.0e-3}, {64, 7e-4}, {256, 2e-4}};     // measured 2.8e-3, 5.6e-4 and 1.4e-4
     for (const auto& rc : cases) {
         CAPTURE(rc.name);
         const receiver_network rn = build_receiver_network(rc.circuit, rc.antenna, rc.tuner);
@@ -185,7 +190,7 @@ TEST_CASE("receiver against ngspice: untuned, single-coil tapped, coupled with a
             for (std::size_t i = 0; i < lo.size(); ++i) levels += fmt::format(" {:.5g} V vs {:.5g} V ({:+.2f} %);", lo[i], lt[i], 100.0 * (lo[i] / lt[i] - 1.0));
             MESSAGE(fmt::format("{}, N = {}: waveform relRMS {:.3g}; tone levels{}", rc.name, steps, rel_rms, levels));
             CHECK(rel_rms <= bound);
-            // Each station's tone level within 1 % (the issue's criterion; measured at most 0.55 % at N = 32, 0.08 % at 256).
+            // Each station's tone level within 1 % (the issue's criterion).
             for (std::size_t i = 0; i < lo.size(); ++i) CHECK(std::fabs(lo[i] / lt[i] - 1.0) <= 0.01);
         }
     }

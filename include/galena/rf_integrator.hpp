@@ -43,18 +43,21 @@ struct rf_stats {
 ///   - the junction current is linear over the step (j0 to j1): its response is g0 j0 + g1 j1, exact for
 ///     that polynomial (the phi-function form of an exponential integrator, Hochbruck & Ostermann 2010).
 ///   - x1 = e^{Ah} x0 + stations + g0 j0 + g1 j1; the port voltage v1 = c_p x1 + d_p u1 + d_pj j1.
-/// The junction law closes the step: j1 = i(v1) + (q_r(v1) - q_r(v0)) / h, where q_r = q - C_lin v is the
-/// part of the junction's charge that the network does not hold as the linear capacitor C_lin (backward
-/// Euler on that small remainder only; the trapezoidal charge form j1 = 2 dq_r/h - j0 + ... was tried and
-/// rings without bound against the exact network: its (-1)^k mode is undamped and the exponential
-/// discretisation does not cancel it). One monotone scalar equation in v1: Newton with a bisection fallback
-/// on a bracket, stopped when the quadratic estimate of the remaining error is below the tolerance.
-/// The discretisation error is that of the junction current's piecewise-linear form (second order) and of
-/// the nonlinear remainder of the junction charge (first order). The remainder must have a positive slope
-/// (C(v) >= C_lin, see front_end.hpp): backward Euler on a negative remainder was measured unstable. The linear network,
-/// the tuned circuit's resonance and every carrier are exact. In a tuned set the detector conducts for about
-/// 20 ns per 1 us cycle, less than one step at N = 32: the piecewise-linear current then leaves the detected
-/// DC about 0.1-0.2 % low (waveform relRMS 1.4e-3 to 2.1e-3 against a converged run; 7e-4 at N = 256).
+/// The junction law closes the step: j1 = i(v1) + (3 q_r(v1) - 4 q_r(v0) + q_r(v-1)) / 2h, where q_r = q - C_lin v
+/// is the part of the junction's charge that the network does not hold as the linear capacitor C_lin (the
+/// second-order backward difference, BDF2, on that small remainder only: it is L-stable like backward Euler,
+/// whose first-order error (the charge current half a step late) dominated the tuned sets from N = 64 up;
+/// the trapezoidal charge form j1 = 2 dq_r/h - j0 + ... was tried and rings without bound against the exact
+/// network: its (-1)^k mode is undamped and the exponential discretisation does not cancel it). One
+/// monotone scalar equation in v1: Newton with a bisection fallback on a bracket, stopped when the quadratic
+/// estimate of the remaining error is below the tolerance.
+/// The discretisation error is second order: that of the junction current's piecewise-linear form and of
+/// the BDF2 charge derivative. The remainder must have a positive slope (C(v) >= C_lin, see front_end.hpp):
+/// an implicit rule on a negative remainder was measured unstable. The linear network, the tuned circuit's
+/// resonance and every carrier are exact. In a tuned set the detector conducts for about 20 ns per 1 us
+/// cycle, less than one step at N = 32: the piecewise-linear current then leaves the detected DC about
+/// 0.2-0.3 % high (waveform relRMS 2.1e-3 to 2.8e-3 against ngspice; 3.7e-4 to 5.6e-4 at N = 64, 1.4e-4 to
+/// 1.9e-4 at N = 256, tests/receiver_reference_test.cpp).
 /// The Newton starts from the law linearised at the same phase one cycle earlier and solved with this step's
 /// linear relation v = alpha + beta J(v): about one law evaluation per step.
 ///
@@ -163,8 +166,8 @@ private:
     /// The junction's solution at one phase of the previous cycle: the predictor linearises the law there.
     struct phase_point {
         double v = 0.0;       ///< the port voltage, V
-        double offset_a = 0.0; ///< i + qr / h - (g + cr / h) v: the linearised law's value at v = 0 before the step's start charge, A
-        double inv_den = 1.0; ///< 1 / (1 - beta (g + cr / h)), the linearised step's gain (beta is the same every step)
+        double offset_a = 0.0; ///< i + 1.5 qr / h - (g + 1.5 cr / h) v: the linearised law's value at v = 0 before the step's known charge terms, A
+        double inv_den = 1.0; ///< 1 / (1 - beta (g + 1.5 cr / h)), the linearised step's gain (beta is the same every step)
     };
     std::vector<phase_point> m_prev;
     Eigen::VectorXd m_x;
@@ -173,6 +176,9 @@ private:
     Eigen::VectorXd m_free;        // free port voltage of the block's steps, V
     Eigen::VectorXd m_y;           // an output over the block's steps
     double m_v = 0.0, m_j = 0.0, m_i0 = 0.0, m_qr0 = 0.0, m_g0_s = 0.0, m_cr0_f = 0.0; // the law at the last solution
+    double m_qr1 = 0.0; // the residual charge one step before m_qr0 (BDF2's second point), C
+    /// BDF2's known part of h dq_r/dt at the step end: 2 q_r(v0) - q_r(v-1) / 2, C.
+    [[nodiscard]] double charge_history() const noexcept { return 2.0 * m_qr0 - 0.5 * m_qr1; }
     std::size_t m_cycle = 0;
     // Envelope samples at cycles m_env_cycle - 1 .. m_env_cycle + 2, 4 per station (each sample is used by four
     // consecutive cycles: one new sample per station per cycle).
