@@ -7,6 +7,10 @@
 #include <algorithm>
 #include <cassert>
 #include <cmath>
+#include <memory>
+#include <array>
+#include <mutex>
+#include <map>
 #include <fmt/format.h>
 
 namespace galena {
@@ -169,6 +173,38 @@ void box_sampler::add_segment(double t0, double t1, double p0, double p1, double
 
 namespace {
 constexpr double table_per_input = 1024.0;
+/// The polyphase form's limits: at most this many phases, and this many weights in all (2 MB).
+constexpr std::size_t max_phases = 4096;
+constexpr std::size_t max_phase_weights = std::size_t{1} << 18;
+
+/// The Kaiser-windowed sinc at k / table_per_input input spacings, built once per design and shared.
+std::shared_ptr<const std::vector<double>> kernel_table(double in_rate, double cutoff_hz, double attenuation_db, double half_in)
+{
+    static std::mutex mutex;
+    static std::map<std::array<double, 4>, std::shared_ptr<const std::vector<double>>> cache;
+    const std::array<double, 4> key{in_rate, cutoff_hz, attenuation_db, half_in};
+    {
+        const std::lock_guard lock(mutex);
+        const auto it = cache.find(key);
+        if (it != cache.end()) return it->second;
+    }
+    const double beta = kaiser_beta(attenuation_db);
+    const double i0b = std::cyl_bessel_i(0.0, beta);
+    const auto size = static_cast<std::size_t>(std::ceil(half_in * table_per_input)) + 2;
+    auto table = std::make_shared<std::vector<double>>(size);
+    for (std::size_t k = 0; k < size; ++k) {
+        const double d = static_cast<double>(k) / table_per_input; // input spacings
+        const double t = d / in_rate;                             // s
+        const double r = d / half_in;
+        const double w = r < 1.0 ? std::cyl_bessel_i(0.0, beta * std::sqrt(1.0 - r * r)) / i0b : 0.0;
+        const double x = two_pi * cutoff_hz * t;
+        (*table)[k] = (k == 0 ? 1.0 : std::sin(x) / x) * w;
+    }
+    const std::lock_guard lock(mutex);
+    if (cache.size() >= 32) cache.clear(); // bounded: a long-running server sees many designs
+    cache.emplace(key, table);
+    return table;
+}
 } // namespace
 
 sinc_resampler::sinc_resampler(double in_rate, double in_t0, double out_rate, double out_t0, double pass_hz, double stop_hz,
@@ -187,17 +223,33 @@ sinc_resampler::sinc_resampler(double in_rate, double in_t0, double out_rate, do
                                        "for the input rate",
                                        2.0 * m_half_in));
     const double cutoff_hz = 0.5 * (pass_hz + stop_hz);
-    const double beta = kaiser_beta(attenuation_db);
-    const double i0b = std::cyl_bessel_i(0.0, beta);
-    const auto size = static_cast<std::size_t>(std::ceil(m_half_in * table_per_input)) + 2;
-    m_table.resize(size);
-    for (std::size_t k = 0; k < size; ++k) {
-        const double d = static_cast<double>(k) / table_per_input; // input spacings
-        const double t = d / in_rate;                             // s
-        const double r = d / m_half_in;
-        const double w = r < 1.0 ? std::cyl_bessel_i(0.0, beta * std::sqrt(1.0 - r * r)) / i0b : 0.0;
-        const double x = two_pi * cutoff_hz * t;
-        m_table[k] = (k == 0 ? 1.0 : std::sin(x) / x) * w;
+    m_table = kernel_table(in_rate, cutoff_hz, attenuation_db, m_half_in);
+    // The polyphase form when the rate ratio is P / Q exactly (as doubles) with few phases.
+    for (std::size_t q = 1; q <= max_phases; ++q) {
+        const double pq = std::round(m_ratio * static_cast<double>(q));
+        if (pq < 1.0 || pq > 1e12 || pq / static_cast<double>(q) != m_ratio) continue;
+        const auto taps = static_cast<std::size_t>(std::floor(2.0 * m_half_in)) + 2;
+        if (q * taps > max_phase_weights) break;
+        m_period_in = static_cast<long long>(pq);
+        m_period_out = q;
+        m_stride = taps;
+        m_phase_w.assign(q * taps, 0.0);
+        m_phase_wsum.assign(q, 0.0);
+        m_phase_lo.assign(q, 0);
+        for (std::size_t r = 0; r < q; ++r) {
+            const double p = m_p0 + static_cast<double>(r) * m_ratio;
+            const auto lo = static_cast<long long>(std::ceil(p - m_half_in));
+            const auto hi = static_cast<long long>(std::floor(p + m_half_in));
+            m_phase_lo[r] = lo;
+            double wsum = 0.0;
+            for (long long i = lo; i <= hi && static_cast<std::size_t>(i - lo) < taps; ++i) {
+                const double w = kernel(p - static_cast<double>(i));
+                m_phase_w[r * taps + static_cast<std::size_t>(i - lo)] = w;
+                wsum += w;
+            }
+            m_phase_wsum[r] = wsum;
+        }
+        break;
     }
 }
 
@@ -205,9 +257,10 @@ double sinc_resampler::kernel(double d_in) const noexcept
 {
     const double pos = std::fabs(d_in) * table_per_input;
     const auto k = static_cast<std::size_t>(pos);
-    if (k + 1 >= m_table.size()) return 0.0;
+    const std::vector<double>& t = *m_table;
+    if (k + 1 >= t.size()) return 0.0;
     const double f = pos - static_cast<double>(k);
-    return m_table[k] + f * (m_table[k + 1] - m_table[k]);
+    return t[k] + f * (t[k + 1] - t[k]);
 }
 
 void sinc_resampler::push(double x, std::vector<double>& out)
@@ -220,17 +273,48 @@ void sinc_resampler::push(double x, std::vector<double>& out)
         // Position of output m_next_out in input-sample units (derived from its index, never accumulated).
         const double p = m_p0 + static_cast<double>(m_next_out) * m_ratio;
         if (p + m_half_in > newest) break;
-        const auto lo = static_cast<long long>(std::ceil(p - m_half_in));
-        const auto hi = static_cast<long long>(std::floor(p + m_half_in));
-        double acc = 0.0;
-        double wsum = 0.0;
-        for (long long i = lo; i <= hi; ++i) {
-            const double w = kernel(p - static_cast<double>(i));
-            const double xi = i < m_buf_first ? m_first_value : m_buf[static_cast<std::size_t>(i - m_buf_first)];
-            acc += w * xi;
-            wsum += w;
+        if (m_period_in > 0) {
+            // Polyphase: phase r's weights from input lo on (lo + m_stride - 1 <= newest: hi <= floor(p + half)).
+            const std::size_t r = m_next_out % m_period_out;
+            const auto lo = m_phase_lo[r] + static_cast<long long>(m_next_out / m_period_out) * m_period_in;
+            const double* w = &m_phase_w[r * m_stride];
+            double acc = 0.0;
+            if (lo >= m_buf_first) {
+                const double* x = &m_buf[static_cast<std::size_t>(lo - m_buf_first)];
+                const auto avail = static_cast<std::size_t>(static_cast<long long>(m_buf.size()) - (lo - m_buf_first));
+                const std::size_t n = std::min(m_stride, avail); // weights past the phase's last tap are zero
+                // Four partial sums: the adds overlap instead of waiting on one another.
+                double a0 = 0.0, a1 = 0.0, a2 = 0.0, a3 = 0.0;
+                std::size_t j = 0;
+                for (; j + 4 <= n; j += 4) {
+                    a0 += w[j] * x[j];
+                    a1 += w[j + 1] * x[j + 1];
+                    a2 += w[j + 2] * x[j + 2];
+                    a3 += w[j + 3] * x[j + 3];
+                }
+                for (; j < n; ++j) a0 += w[j] * x[j];
+                acc = (a0 + a1) + (a2 + a3);
+            } else {
+                for (std::size_t j = 0; j < m_stride; ++j) {
+                    const long long i = lo + static_cast<long long>(j);
+                    if (i > newest) break;
+                    acc += w[j] * (i < m_buf_first ? m_first_value : m_buf[static_cast<std::size_t>(i - m_buf_first)]);
+                }
+            }
+            out.push_back(acc / m_phase_wsum[r]);
+        } else {
+            const auto lo = static_cast<long long>(std::ceil(p - m_half_in));
+            const auto hi = static_cast<long long>(std::floor(p + m_half_in));
+            double acc = 0.0;
+            double wsum = 0.0;
+            for (long long i = lo; i <= hi; ++i) {
+                const double w = kernel(p - static_cast<double>(i));
+                const double xi = i < m_buf_first ? m_first_value : m_buf[static_cast<std::size_t>(i - m_buf_first)];
+                acc += w * xi;
+                wsum += w;
+            }
+            out.push_back(acc / wsum);
         }
-        out.push_back(acc / wsum);
         ++m_next_out;
         // Drop inputs no later output can reach (keep the buffer bounded).
         const auto keep_from = static_cast<long long>(std::floor(m_p0 + static_cast<double>(m_next_out) * m_ratio - m_half_in)) - 1;

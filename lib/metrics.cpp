@@ -16,6 +16,8 @@
 #include <cstdlib>
 #include <cmath>
 #include <mutex>
+#include <set>
+#include <memory>
 #include <complex>
 #include <functional>
 #include <fmt/format.h>
@@ -43,12 +45,34 @@ void check_band(double lo, double hi, double fs, const char* fn)
             fmt::format("{}: band [{}, {}] Hz: need 0 <= low < high <= fs/2 = {} Hz", fn, lo, hi, 0.5 * fs));
 }
 
-/// FFTW's planner (plan creation and destruction, which Eigen::FFT does in each call) is not thread-safe;
-/// sweeps measure on several threads.
+/// FFTW's planner is not thread-safe and sweeps measure on several threads: every transform runs under this
+/// lock.
 std::mutex& fft_mutex()
 {
     static std::mutex m;
     return m;
+}
+
+/// The transform objects, kept (with the lock held) so that FFTW's plans are made once per length and
+/// direction, not on every call: a render's measurements transform the same lengths several times, and the
+/// workbench renders the same length over and over. Planning a length costs about as much as transforming
+/// it. Renewed after 8 distinct lengths, so a long-running server holds a bounded set.
+Eigen::FFT<double>& kept_fft(bool half_spectrum, std::size_t n)
+{
+    constexpr std::size_t max_kept_lengths = 8;
+    struct kept {
+        std::unique_ptr<Eigen::FFT<double>> fft;
+        std::set<std::size_t> lengths;
+    };
+    static kept full, half;
+    kept& k = half_spectrum ? half : full;
+    if (!k.fft || (k.lengths.count(n) == 0 && k.lengths.size() >= max_kept_lengths)) {
+        k.fft = std::make_unique<Eigen::FFT<double>>();
+        if (half_spectrum) k.fft->SetFlag(Eigen::FFT<double>::HalfSpectrum);
+        k.lengths.clear();
+    }
+    k.lengths.insert(n);
+    return *k.fft;
 }
 
 /// FFTW aborts the process ("assertion failed: p") when its own allocation fails, so the memory a
@@ -73,8 +97,7 @@ cvec forward_fft(std::span<const double> x, std::size_t padded = 0)
     for (std::size_t i = 0; i < x.size(); ++i) in[i] = x[i];
     cvec out;
     const std::lock_guard lock(fft_mutex());
-    Eigen::FFT<double> fft;
-    fft.fwd(out, in);
+    kept_fft(false, n).fwd(out, in);
     return out;
 }
 
@@ -83,8 +106,7 @@ cvec inverse_fft(const cvec& x)
     reserve_fft_memory(x.size());
     cvec out;
     const std::lock_guard lock(fft_mutex());
-    Eigen::FFT<double> fft; // scaled by 1/N by default
-    fft.inv(out, x);
+    kept_fft(false, x.size()).inv(out, x); // scaled by 1/N by default
     return out;
 }
 
@@ -96,9 +118,7 @@ cvec forward_rfft(std::span<const double> x)
     const std::vector<double> in(x.begin(), x.end());
     cvec out;
     const std::lock_guard lock(fft_mutex());
-    Eigen::FFT<double> fft;
-    fft.SetFlag(Eigen::FFT<double>::HalfSpectrum);
-    fft.fwd(out, in);
+    kept_fft(true, in.size()).fwd(out, in);
     return out;
 }
 
@@ -108,9 +128,7 @@ std::vector<double> inverse_rfft(const cvec& half, std::size_t n)
     reserve_fft_memory(n);
     std::vector<double> out;
     const std::lock_guard lock(fft_mutex());
-    Eigen::FFT<double> fft; // scaled by 1/N by default
-    fft.SetFlag(Eigen::FFT<double>::HalfSpectrum);
-    fft.inv(out, half, static_cast<Eigen::Index>(n));
+    kept_fft(true, n).inv(out, half, static_cast<Eigen::Index>(n)); // scaled by 1/N by default
     return out;
 }
 

@@ -4,6 +4,7 @@
 
 #include <cstddef>
 #include <span>
+#include <memory>
 #include <vector>
 
 namespace galena {
@@ -124,6 +125,9 @@ public:
     [[nodiscard]] double half_width_s() const noexcept { return m_half_in / m_in_rate; }
     /// Outputs delivered so far.
     [[nodiscard]] std::size_t count() const noexcept { return m_next_out; }
+    /// Phases of the polyphase form: Q when f_in / f_out = P / Q exactly in floating point with a small Q (each
+    /// output then sums precomputed weights), 0 when the kernel is interpolated for every output.
+    [[nodiscard]] std::size_t phases() const noexcept { return m_period_out; }
 
 private:
     [[nodiscard]] double kernel(double d_in) const noexcept; // kernel at d_in input spacings (table + lerp)
@@ -131,7 +135,17 @@ private:
     double m_p0;          // position of output 0 in input-sample units: (t_out0 - t_in0) f_in
     double m_ratio;       // f_in / f_out: input samples per output
     double m_half_in;     // kernel half-width in input samples
-    std::vector<double> m_table; // kernel at k / 1024 input spacings, k = 0 .. ceil(half * 1024) + 1
+    /// Kernel at k / 1024 input spacings, k = 0 .. ceil(half * 1024) + 1; shared by resamplers of the same
+    /// design (a render builds one per chain, and the table costs tens of thousands of Bessel evaluations).
+    std::shared_ptr<const std::vector<double>> m_table;
+    // Polyphase form, when f_in / f_out = P / Q exactly in floating point with a small Q: output m = k Q + r
+    // uses phase r's weights (the same kernel values) on the inputs from m_phase_lo[r] + k P on.
+    long long m_period_in = 0;             // P (0: no polyphase form)
+    std::size_t m_period_out = 0;          // Q
+    std::size_t m_stride = 0;              // weights per phase (the longest phase's count)
+    std::vector<double> m_phase_w;         // Q x m_stride weights, zero-padded
+    std::vector<double> m_phase_wsum;      // their sums
+    std::vector<long long> m_phase_lo;     // first input of each phase at k = 0
     std::vector<double> m_buf;   // inputs [m_buf_first, m_buf_first + size)
     long long m_buf_first = 0;
     long long m_pushed = 0;
