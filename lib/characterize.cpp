@@ -284,10 +284,11 @@ render_metrics measure_render(std::span<const double> ev, double fs, const circu
     const detector_network net(circuit);
     render_metrics rm;
     rm.settling = choose_settling_window(net);
-    const auto skip = static_cast<std::size_t>(std::ceil(rm.settling.settle_s * fs));
+    auto skip = static_cast<std::size_t>(std::ceil(rm.settling.settle_s * fs));
     if (ev.size() < skip + 64)
         throw config_error(fmt::format("metrics: {} samples at {} Hz: the settling window of {:.4g} s ({}) leaves fewer than 64",
                                        ev.size(), fs, rm.settling.settle_s, rm.settling.basis));
+    skip = ev.size() - fft_friendly_length(ev.size() - skip); // a little more settling, a fast transform length
     const std::span<const double> win = ev.subspan(skip);
     const double hi = std::min(q.band_high_hz, 0.5 * fs);
     const double lo = std::min(q.band_low_hz, 0.5 * hi);

@@ -91,7 +91,8 @@ measured measure_receiver_job(const scenario& s, std::span<const float> earpiece
     const double fs_hz = s.render.audio_rate_hz;
     // Skip the output network's settling, as measure_render does.
     const settling_window sw = choose_settling_window(detector_network(s.circuit));
-    const auto skip = std::min(earpiece_v.size(), static_cast<std::size_t>(std::ceil(sw.settle_s * fs_hz)));
+    auto skip = std::min(earpiece_v.size(), static_cast<std::size_t>(std::ceil(sw.settle_s * fs_hz)));
+    skip = earpiece_v.size() - fft_friendly_length(earpiece_v.size() - skip); // a fast transform length (metrics.hpp)
     const std::vector<double> v(earpiece_v.begin() + static_cast<std::ptrdiff_t>(skip), earpiece_v.end());
     nlohmann::json j = to_json(measure_levels(v, fs_hz, 20.0, std::min(10000.0, 0.45 * fs_hz)));
     std::vector<warning> w = warnings;

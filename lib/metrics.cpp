@@ -256,6 +256,17 @@ amplitude_spectrum compute_spectrum(std::span<const double> samples, double fs, 
     return s;
 }
 
+std::size_t fft_friendly_length(std::size_t n) noexcept
+{
+    auto smooth = [](std::size_t m) {
+        for (const std::size_t p : {2u, 3u, 5u, 7u})
+            while (m % p == 0) m /= p;
+        return m == 1;
+    };
+    while (n > 1 && !smooth(n)) --n;
+    return n;
+}
+
 double band_rms_v(std::span<const double> samples, double fs, double lo, double hi)
 {
     check_rate(fs, "band_rms_v");

@@ -261,3 +261,24 @@ TEST_CASE("merged JSON is flat, carries warnings and writes non-finite numbers a
     CHECK(to_text(j).find("warning: a warning") != std::string::npos);
     CHECK(to_text(j).find("samples-missing") == std::string::npos); // the codes are for programs
 }
+
+TEST_CASE("fft_friendly_length: the largest 7-smooth length not above n")
+{
+    // By the definition (no prime factor above 7), checked against a direct search for every n up to 5000
+    // and at the bench excerpt's analysis length: 71943 = 3 x 23981 -> 71680 = 2^11 x 5 x 7.
+    auto smooth = [](std::size_t m) {
+        for (const std::size_t p : {2u, 3u, 5u, 7u})
+            while (m > 0 && m % p == 0) m /= p;
+        return m == 1;
+    };
+    CHECK(fft_friendly_length(71943) == 71680);
+    CHECK(fft_friendly_length(72000) == 72000);
+    CHECK(fft_friendly_length(97) == 96);
+    CHECK(fft_friendly_length(1) == 1);
+    std::size_t last_smooth = 1;
+    for (std::size_t n = 1; n <= 5000; ++n) {
+        if (smooth(n)) last_smooth = n;
+        REQUIRE(fft_friendly_length(n) == last_smooth);
+    }
+    for (std::size_t n : {2001u, 20011u, 71943u, 480001u}) CHECK(fft_friendly_length(n) >= n - n / 100);
+}
