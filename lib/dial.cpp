@@ -192,8 +192,11 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
         return r;
     };
     {
+        // The earpiece's step values only for the probe (the audio chain takes its cycle means); the
+        // detector's at every step for the stations' levels.
         const auto r0 = rows(ss);
-        for (const auto& r : r0) ig.add_output(r.c, r.d_u, r.d_j);
+        ig.add_output(r0[0].c, r0[0].d_u, r0[0].d_j, s.output_probe ? output_use::every_step : output_use::cycle_mean);
+        ig.add_output(r0[1].c, r0[1].d_u, r0[1].d_j);
     }
     constexpr int out_k = 0, det_k = 1;
     ig.initialize();

@@ -120,7 +120,8 @@ render_result render_receiver(const receiver_spec& spec, const render_settings& 
     rs.steps_per_cycle = s.steps_per_cycle == 0 ? 32 : s.steps_per_cycle;
     res.steps_per_cycle = rs.steps_per_cycle;
     rf_integrator ig(ss, rn.emf_input, diode_model(spec.circuit.diode).law(), src, fc, rs);
-    const int out_k = ig.add_output(ss.node_c(rn.output_node), ss.node_d(rn.output_node)(rn.emf_input), ss.node_dj(rn.output_node));
+    const int out_k = ig.add_output(ss.node_c(rn.output_node), ss.node_d(rn.output_node)(rn.emf_input), ss.node_dj(rn.output_node),
+                                    output_use::cycle_mean); // the audio chain takes its cycle means only
     const int det_k = ig.add_output(ss.node_c(rn.detector_node), ss.node_d(rn.detector_node)(rn.emf_input), ss.node_dj(rn.detector_node));
     ig.initialize();
 

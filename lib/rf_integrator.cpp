@@ -102,9 +102,7 @@ void rf_integrator::retune(const state_space& ss, int input, const Eigen::Vector
     if (ss.port_linear_capacitance_f != m_c_lin)
         throw config_error("rf_integrator::retune: the junction's linear capacitance changed");
     set_network(ss, input);
-    for (std::size_t o = 0; o < outputs.size(); ++o)
-        m_outs[o] = tabulate(outputs[o].c, Eigen::VectorXd::Constant(1, outputs[o].d_u), Eigen::VectorXd::Constant(1, outputs[o].d_j),
-                             m_block, false);
+    for (std::size_t o = 0; o < outputs.size(); ++o) m_outs[o] = output_tables(outputs[o].c, outputs[o].d_u, outputs[o].d_j, m_out_use[o]);
     m_x = x;
 }
 
@@ -170,11 +168,31 @@ rf_integrator::row_tables rf_integrator::tabulate(const Eigen::MatrixXd& c, cons
     return t;
 }
 
-int rf_integrator::add_output(const Eigen::RowVectorXd& c, double d_u, double d_j)
+rf_integrator::row_tables rf_integrator::output_tables(const Eigen::RowVectorXd& c, double d_u, double d_j, output_use use) const
+{
+    const Eigen::VectorXd du = Eigen::VectorXd::Constant(1, d_u), dj = Eigen::VectorXd::Constant(1, d_j);
+    row_tables full = tabulate(c, du, dj, m_block, false);
+    if (use == output_use::every_step) return full;
+    const int last = m_n - (m_n - 1) / m_block * m_block; // the cycle's last block's steps
+    const row_tables tail = last == m_block ? full : tabulate(c, du, dj, last, false);
+    row_tables t;
+    t.m = Eigen::MatrixXd::Zero(3, full.m.cols());
+    t.j = row_major::Zero(3, m_block + 1);
+    t.m.row(0) = full.m.colwise().sum();
+    t.j.row(0) = full.j.colwise().sum();
+    t.m.row(1) = tail.m.colwise().sum() - 0.5 * tail.m.row(last - 1);
+    t.j.row(1).head(last + 1) = tail.j.colwise().sum() - 0.5 * tail.j.row(last - 1);
+    t.m.row(2) = tail.m.row(last - 1);
+    t.j.row(2).head(last + 1) = tail.j.row(last - 1);
+    return t;
+}
+
+int rf_integrator::add_output(const Eigen::RowVectorXd& c, double d_u, double d_j, output_use use)
 {
     if (c.size() != m_x.size())
         throw config_error(fmt::format("rf_integrator: an output row has {} entries for {} states", c.size(), m_x.size()));
-    m_outs.push_back(tabulate(c, Eigen::VectorXd::Constant(1, d_u), Eigen::VectorXd::Constant(1, d_j), m_block, false));
+    m_outs.push_back(output_tables(c, d_u, d_j, use));
+    m_out_use.push_back(use);
     m_out_mean.push_back(0.0);
     m_out_peak.push_back(0.0);
     m_out_last.push_back(0.0);
@@ -380,6 +398,13 @@ void rf_integrator::run_cycle(std::span<double> out)
         const auto jb = m_jb.head(len + 1);
         for (std::size_t o = 0; o < no; ++o) {
             const row_tables& t = m_outs[o];
+            if (m_out_use[o] == output_use::cycle_mean) {
+                const bool last_block = k0 + len == m_n;
+                const Eigen::Index r = last_block ? 1 : 0;
+                m_out_mean[o] += t.m.row(r).dot(m_z) + t.j.row(r).head(len + 1).dot(jb);
+                if (last_block) m_out_last[o] = t.m.row(2).dot(m_z) + t.j.row(2).head(len + 1).dot(jb);
+                continue;
+            }
             m_y.head(len).noalias() = t.m.topRows(len) * m_z;
             m_y.head(len).noalias() += t.j.topLeftCorner(len, len + 1) * jb;
             for (int k = 1; k <= len; ++k) {

@@ -26,6 +26,12 @@ struct rf_settings {
     double newton_tolerance_v = 1e-8;
 };
 
+/// What an added output is computed for.
+enum class output_use {
+    every_step, ///< its value at every step end (advance_cycle's `out`), its cycle mean and its peak
+    cycle_mean, ///< its cycle mean only (and its value at the cycle's end): one row product per block instead of K
+};
+
 /// Work counters.
 struct rf_stats {
     std::size_t steps = 0;
@@ -91,8 +97,11 @@ public:
     /// integration_error when the junction equation fails.
     void advance_cycle(std::span<double> out = {});
     /// Adds an output: a linear combination of the state, the EMF and the junction current (e.g. a node
-    /// voltage: ss.node_c(n), ss.node_d(n)(input), ss.node_dj(n)). Returns its index.
-    int add_output(const Eigen::RowVectorXd& c, double d_u, double d_j);
+    /// voltage: ss.node_c(n), ss.node_d(n)(input), ss.node_dj(n)). Returns its index. A cycle_mean output
+    /// has no step values (its rows of advance_cycle's `out` are left as they were) and no peak (0): its
+    /// tables are the block's step values summed with the trapezoidal weights, so its cost per block is one
+    /// row product instead of K (the same mean to rounding).
+    int add_output(const Eigen::RowVectorXd& c, double d_u, double d_j, output_use use = output_use::every_step);
     /// An output's row: value = c x + d_u u + d_j j (see add_output).
     struct output_row {
         Eigen::RowVectorXd c;
@@ -139,6 +148,10 @@ private:
     void set_network(const state_space& ss, int input);
     [[nodiscard]] row_tables tabulate(const Eigen::MatrixXd& c, const Eigen::VectorXd& d_u, const Eigen::VectorXd& d_j,
                                       int length, bool last_only) const;
+    /// An output's tables: tabulate's K rows for every_step; for cycle_mean three rows (J padded to K + 1
+    /// columns): a whole block's step values summed, the cycle's last block summed with half weight on the
+    /// cycle's end, and the value at the cycle's end.
+    [[nodiscard]] row_tables output_tables(const Eigen::RowVectorXd& c, double d_u, double d_j, output_use use) const;
     [[nodiscard]] std::complex<double> envelope_at_cycle(std::size_t station, long long c) const noexcept;
     template <bool Breakdown, bool Charge, bool SquareRoot>
     double solve_junction(double alpha, double beta, double v_guess, double& j1);
@@ -159,7 +172,8 @@ private:
     std::vector<double> m_ratio;                              // carrier / reference
     std::vector<double> m_wh;                                 // carrier phase advance per step, w h, rad, per station
     row_tables m_port;                                        // the junction port's voltage
-    std::vector<row_tables> m_outs;                           // the added outputs
+    std::vector<row_tables> m_outs;                           // the added outputs (a cycle_mean one: see output_tables)
+    std::vector<output_use> m_out_use;
     row_tables m_end, m_end_last;                             // the state after K steps and after the last block's steps
     std::vector<double> m_out_mean, m_out_peak, m_out_last;
     std::vector<std::complex<double>> m_ref_phasor;           // e^{-j 2 pi k / N}, k = 1..N
