@@ -171,6 +171,10 @@ private:
     std::vector<Eigen::VectorXcd> m_w0, m_w1;
     std::vector<double> m_ratio;                              // carrier / reference
     std::vector<double> m_wh;                                 // carrier phase advance per step, w h, rad, per station
+    std::vector<std::complex<double>> m_cycle_step_phasor;    // e^{j 2 pi ratio}: one cycle's rotation, per station
+    std::vector<std::complex<double>> m_block_phasor;         // e^{j 2 pi ratio tau0} per station and block start
+    std::vector<std::complex<double>> m_cycle_phasor;         // e^{j 2 pi ratio c} at cycle m_phasor_cycle's start, per station
+    long long m_phasor_cycle = -1;
     row_tables m_port;                                        // the junction port's voltage
     std::vector<row_tables> m_outs;                           // the added outputs (a cycle_mean one: see output_tables)
     std::vector<output_use> m_out_use;
