@@ -97,7 +97,9 @@ std::vector<double> run_galena(const galena_test::receiver_case& rc, int steps, 
     const auto t0 = std::chrono::steady_clock::now();
     const double c0 = thread_cpu_s();
     rf_integrator ig(ss, rn.emf_input, diode_model(rc.circuit.diode).law(), src, rc.stations.front().carrier_hz, rs);
-    ig.add_output(ss.node_c(rn.output_node), ss.node_d(rn.output_node)(rn.emf_input), ss.node_dj(rn.output_node));
+    // The timed runs take the earpiece's cycle means only, as render_receiver does; the compared ones every step.
+    ig.add_output(ss.node_c(rn.output_node), ss.node_d(rn.output_node)(rn.emf_input), ss.node_dj(rn.output_node),
+                  keep ? output_use::every_step : output_use::cycle_mean);
     ig.initialize();
     std::vector<double> out, buf(static_cast<std::size_t>(steps));
     if (keep) out.reserve(cycles * static_cast<std::size_t>(steps));

@@ -66,9 +66,9 @@ struct segment_options {
     /// and 4e-16; segmented_render_test).
     double seam_tolerance = 1e-12;
     /// The seam sits at this share of (carrier cycles + warm-up cycles), rounded to a chunk: the second
-    /// thread also simulates the warm-up, the first also runs the audio chain (its sinc resampler and
-    /// FIR, about 8 % of a cycle's work in a profile of the bench render), so the first takes a little less
-    /// (measured thread CPU on the 3 s bench render at 0.47: first 1.11-1.24 s, second 0.95-1.14 s).
+    /// thread also simulates the warm-up, the first also runs the audio chain (its polyphase resampler and
+    /// FIR), so the first takes a little less. Measured on the 3 s bench render (bench_workbench, idle): at
+    /// 0.45 the calling thread spends 0.69 of 1.34 CPU s, API median 0.76 s; 0.48 gave 0.73 s, within noise.
     double first_share = 0.45;
     /// Take the second thread only when core_claim finds a core free (false: always, for tests).
     bool require_free_core = true;
