@@ -6,11 +6,11 @@
 
 #include <algorithm>
 #include <cassert>
-#include <cmath>
-#include <memory>
 #include <array>
-#include <mutex>
+#include <cmath>
 #include <map>
+#include <memory>
+#include <mutex>
 #include <fmt/format.h>
 
 namespace galena {
@@ -274,7 +274,7 @@ void sinc_resampler::push(double x, std::vector<double>& out)
         const double p = m_p0 + static_cast<double>(m_next_out) * m_ratio;
         if (p + m_half_in > newest) break;
         if (m_period_in > 0) {
-            // Polyphase: phase r's weights from input lo on (lo + m_stride - 1 <= newest: hi <= floor(p + half)).
+            // Polyphase: phase r's weights from input lo on; past its last tap (<= newest) they are zero.
             const std::size_t r = m_next_out % m_period_out;
             const auto lo = m_phase_lo[r] + static_cast<long long>(m_next_out / m_period_out) * m_period_in;
             const double* w = &m_phase_w[r * m_stride];
