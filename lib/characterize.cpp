@@ -288,7 +288,10 @@ render_metrics measure_render(std::span<const double> ev, double fs, const circu
     if (ev.size() < skip + 64)
         throw config_error(fmt::format("metrics: {} samples at {} Hz: the settling window of {:.4g} s ({}) leaves fewer than 64",
                                        ev.size(), fs, rm.settling.settle_s, rm.settling.basis));
-    skip = ev.size() - fft_friendly_length(ev.size() - skip); // a little more settling, a fast transform length
+    // A little more settling for a fast transform length, unless that would cut the window below what the
+    // tone analysis needs (4 periods of the lower tone and 64 samples, as analyze_tone and analyze_two_tone).
+    const std::size_t trimmed = fft_friendly_length(ev.size() - skip);
+    if (static_cast<double>(trimmed) >= (q.tone_hz > 0.0 ? std::max(64.0, 4.0 * fs / q.tone_hz) : 64.0)) skip = ev.size() - trimmed;
     const std::span<const double> win = ev.subspan(skip);
     const double hi = std::min(q.band_high_hz, 0.5 * fs);
     const double lo = std::min(q.band_low_hz, 0.5 * hi);

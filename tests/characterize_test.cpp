@@ -289,3 +289,27 @@ TEST_CASE("carrier ripple of a peak detector: the sawtooth V_dc / (fc R C)")
     // Sawtooth harmonics fall as 1/k.
     CHECK(rip.harmonic_rms_v[1] == doctest::Approx(rip.harmonic_rms_v[0] / 2).epsilon(0.04).scale(0.0));
 }
+
+TEST_CASE("measure_render trims its window to a fast FFT length only when the tone analysis keeps its minimum")
+{
+    // analyze_tone needs 4 periods of the tone (here 997 Hz at 48 kHz: 192.6 samples). A settled window of
+    // 195 samples would be trimmed to 192 = 2^6 x 3, below that: it must stay 195. A window of 71943 samples
+    // (3 x 23981) is trimmed to 71680 = 2^11 x 5 x 7. The signal is a synthetic 997 Hz sine of 10 mV on 50 mV DC.
+    const auto c = rc_detector("germanium-point-contact", 100e3, 2e-9);
+    const double fs = 48000.0, f0 = 997.0;
+    const auto skip = static_cast<std::size_t>(std::ceil(choose_settling_window(detector_network(c)).settle_s * fs));
+    am_params am;
+    am.carrier_hz = 1e6;
+    am.carrier_peak_v = 1.0;
+    am.modulation_index = 0.3;
+    metrics_request q;
+    q.tone_hz = f0;
+    for (const auto& [settled, analysed] : {std::pair<std::size_t, std::size_t>{195, 195}, {71943, 71680}}) {
+        CAPTURE(settled);
+        std::vector<double> ev(skip + settled);
+        for (std::size_t i = 0; i < ev.size(); ++i) ev[i] = 0.05 + 0.01 * std::sin(2 * k_pi * f0 * static_cast<double>(i) / fs);
+        const auto rm = measure_render(ev, fs, c, am, q);
+        CHECK(rm.json.at("analysed_s").get<double>() == doctest::Approx(static_cast<double>(analysed) / fs).epsilon(1e-12));
+        CHECK(rm.tone.fundamental_v == doctest::Approx(0.01).epsilon(1e-9));
+    }
+}
