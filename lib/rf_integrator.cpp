@@ -95,12 +95,39 @@ void rf_integrator::set_network(const state_space& ss, int input)
         m_w0.emplace_back(e.block(0, n, n, 1));
         m_w1.emplace_back(e.block(0, n + 1, n, 1));
     }
+    // State-level responses over a block (tabulate projects them on each row): Phi^k, Phi^d g0, Phi^d g1 and,
+    // per station and Taylor power q, X_q,k = sum_{i<k} Phi^{k-1-i} V_q,i by the recursion X_q,k = Phi X_q,k-1 + V_q,k-1, with
+    // V_q,i = r^i (sigma_i^q W0 + (sigma_{i+1}^q - sigma_i^q) / h W1), r = e^{jwh}, sigma_i = i / N.
+    m_resp.phi_pow.assign(static_cast<std::size_t>(m_block) + 1, Eigen::MatrixXd::Identity(n, n));
+    for (int k = 1; k <= m_block; ++k) m_resp.phi_pow[static_cast<std::size_t>(k)] = m_phi * m_resp.phi_pow[static_cast<std::size_t>(k) - 1];
+    m_resp.g0_pow.resize(n, m_block);
+    m_resp.g1_pow.resize(n, m_block);
+    m_resp.g0_pow.col(0) = m_g0;
+    m_resp.g1_pow.col(0) = m_g1;
+    for (int d = 1; d < m_block; ++d) {
+        m_resp.g0_pow.col(d) = m_phi * m_resp.g0_pow.col(d - 1);
+        m_resp.g1_pow.col(d) = m_phi * m_resp.g1_pow.col(d - 1);
+    }
+    {
+        const Eigen::MatrixXcd phi_c = m_phi.cast<std::complex<double>>();
+        auto sigma_pow = [&](int i, int q) { return std::pow(static_cast<double>(i) / m_n, q); };
+        m_resp.source.assign(4 * m_src->size(), Eigen::MatrixXcd::Zero(n, m_block + 1));
+        for (std::size_t s = 0; s < m_src->size(); ++s)
+            for (int q = 0; q < 4; ++q) {
+                Eigen::MatrixXcd& x = m_resp.source[4 * s + static_cast<std::size_t>(q)];
+                for (int i = 0; i < m_block; ++i) {
+                    const std::complex<double> r = std::polar(1.0, static_cast<double>(i) * m_wh[s]);
+                    x.col(i + 1).noalias() = phi_c * x.col(i);
+                    x.col(i + 1) += r * (sigma_pow(i, q) * m_w0[s] + ((sigma_pow(i + 1, q) - sigma_pow(i, q)) / m_h) * m_w1[s]);
+                }
+            }
+    }
     // The port, and the state after a whole block and after the cycle's last (possibly shorter) block.
     m_port = tabulate(ss.port_c, Eigen::VectorXd::Constant(1, ss.port_d(input)), Eigen::VectorXd::Constant(1, ss.port_dj), m_block, false);
     const Eigen::MatrixXd eye = Eigen::MatrixXd::Identity(n, n);
     const Eigen::VectorXd zero = Eigen::VectorXd::Zero(n);
     m_end = tabulate(eye, zero, zero, m_block, true);
-    const int last = m_n - (m_n - 1) / m_block * m_block;
+    const int last = last_block_steps();
     m_end_last = last == m_block ? m_end : tabulate(eye, zero, zero, last, true);
 }
 
@@ -124,53 +151,40 @@ rf_integrator::row_tables rf_integrator::tabulate(const Eigen::MatrixXd& c, cons
     // Row r of c at local step end k (1..length) after a block start x_b, j_0 and the envelope's Taylor
     // coefficients P_q (q = 0..3, in units of sigma = local step / N) times the carrier phasor p at the block
     // start:
-    //   c x_k = c Phi^k x_b + Re(sum_q p P_q sum_{i<k} c Phi^{k-1-i} V_q,i)
-    //         + sum_{i<k} c Phi^{k-1-i} g0 j_i + sum_{1<=i<=k} c Phi^{k-i} g1 j_i,
-    //   V_q,i = r^i (sigma_i^q W0 + (sigma_{i+1}^q - sigma_i^q) / h W1),  r = e^{jwh},
-    // plus d_u u_k (u_k = Re(p r^k sum_q P_q sigma_k^q) per station) and d_j j_k.
+    //   c x_k = c Phi^k x_b + Re(sum_q p P_q c X_q,k) + sum_{i<k} c Phi^{k-1-i} g0 j_i + sum_{1<=i<=k} c Phi^{k-i} g1 j_i,
+    // plus d_u u_k (u_k = Re(p r^k sum_q P_q sigma_k^q) per station, r = e^{jwh}) and d_j j_k; the state-level
+    // responses Phi^k, Phi^d g0,1 and X_q,k are m_resp's (set_network).
     const auto n = m_phi.rows();
     const auto rows = c.rows();
     const auto ns = static_cast<Eigen::Index>(m_w0.size());
     const Eigen::Index cols = n + 8 * ns;
-    std::vector<Eigen::MatrixXd> cp(static_cast<std::size_t>(length) + 1); // c Phi^k
-    cp[0] = c;
-    for (std::size_t k = 1; k < cp.size(); ++k) cp[k] = cp[k - 1] * m_phi;
     const Eigen::Index out_rows = last_only ? rows : length;
     row_tables t;
     t.m = Eigen::MatrixXd::Zero(out_rows, cols);
     t.j = row_major::Zero(out_rows, length + 1);
-    auto sigma_pow = [&](int i, int q) { return std::pow(static_cast<double>(i) / m_n, q); };
-    // V_q,i for every station, q and i < length.
-    std::vector<Eigen::VectorXcd> v(static_cast<std::size_t>(ns * 4 * length));
-    auto v_at = [&](Eigen::Index s, int q, int i) -> Eigen::VectorXcd& {
-        return v[static_cast<std::size_t>((s * 4 + q) * length + i)];
-    };
-    for (Eigen::Index s = 0; s < ns; ++s) {
-        const auto su = static_cast<std::size_t>(s);
-        for (int q = 0; q < 4; ++q)
-            for (int i = 0; i < length; ++i)
-                v_at(s, q, i) = std::polar(1.0, static_cast<double>(i) * m_wh[su]) *
-                                (sigma_pow(i, q) * m_w0[su] + ((sigma_pow(i + 1, q) - sigma_pow(i, q)) / m_h) * m_w1[su]);
-    }
+    const Eigen::MatrixXd cg0 = c * m_resp.g0_pow, cg1 = c * m_resp.g1_pow; // rows x K: c Phi^d g0, c Phi^d g1
+    std::vector<Eigen::MatrixXcd> cs(static_cast<std::size_t>(4 * ns));     // rows x (K + 1): c X_q,k per station
+    for (std::size_t sq = 0; sq < cs.size(); ++sq) cs[sq] = c.cast<std::complex<double>>() * m_resp.source[sq];
     const int first = last_only ? length : 1;
     for (int k = first; k <= length; ++k) {
         const auto kk = static_cast<std::size_t>(k);
+        const double sigma = static_cast<double>(k) / m_n;
         for (Eigen::Index r = 0; r < rows; ++r) {
             const Eigen::Index at = last_only ? r : k - 1;
-            t.m.row(at).head(n) = cp[kk].row(r);
+            t.m.row(at).head(n) = c.row(r) * m_resp.phi_pow[kk];
             for (int i = 0; i <= k; ++i) {
                 double g = 0.0;
-                if (i < k) g += cp[kk - 1 - static_cast<std::size_t>(i)].row(r).dot(m_g0);
-                if (i >= 1) g += cp[kk - static_cast<std::size_t>(i)].row(r).dot(m_g1);
+                if (i < k) g += cg0(r, k - 1 - i);
+                if (i >= 1) g += cg1(r, k - i);
                 if (i == k) g += d_j[r];
                 t.j(at, i) = g;
             }
             for (Eigen::Index s = 0; s < ns; ++s) {
                 const auto su = static_cast<std::size_t>(s);
-                for (int q = 0; q < 4; ++q) {
-                    std::complex<double> acc = d_u[r] * std::polar(1.0, static_cast<double>(k) * m_wh[su]) * sigma_pow(k, q);
-                    for (int i = 0; i < k; ++i)
-                        acc += cp[kk - 1 - static_cast<std::size_t>(i)].row(r).cast<std::complex<double>>().transpose().cwiseProduct(v_at(s, q, i)).sum();
+                const std::complex<double> direct = d_u[r] * std::polar(1.0, static_cast<double>(k) * m_wh[su]);
+                double sq = 1.0; // sigma^q
+                for (int q = 0; q < 4; ++q, sq *= sigma) {
+                    const std::complex<double> acc = direct * sq + cs[su * 4 + static_cast<std::size_t>(q)](r, k);
                     t.m(at, n + 4 * s + q) = acc.real();
                     t.m(at, n + 4 * ns + 4 * s + q) = -acc.imag();
                 }
@@ -185,7 +199,7 @@ rf_integrator::row_tables rf_integrator::output_tables(const Eigen::RowVectorXd&
     const Eigen::VectorXd du = Eigen::VectorXd::Constant(1, d_u), dj = Eigen::VectorXd::Constant(1, d_j);
     row_tables full = tabulate(c, du, dj, m_block, false);
     if (use == output_use::every_step) return full;
-    const int last = m_n - (m_n - 1) / m_block * m_block; // the cycle's last block's steps
+    const int last = last_block_steps();
     const row_tables tail = last == m_block ? full : tabulate(c, du, dj, last, false);
     row_tables t;
     t.m = Eigen::MatrixXd::Zero(3, full.m.cols());

@@ -142,6 +142,16 @@ private:
         Eigen::MatrixXd m;
         row_major j;
     };
+    /// The responses over a block at the state level, from which every row's tables are projected (tabulate):
+    /// Phi^k (k = 0..K), Phi^d g0 and Phi^d g1 (columns d = 0..K-1), and per station and Taylor power q
+    /// (index 4 s + q) X_q,k, k = 0..K (columns; see set_network).
+    struct block_responses {
+        std::vector<Eigen::MatrixXd> phi_pow;
+        Eigen::MatrixXd g0_pow, g1_pow;
+        std::vector<Eigen::MatrixXcd> source;
+    };
+    /// Steps in the cycle's last block (K unless K does not divide N).
+    [[nodiscard]] int last_block_steps() const noexcept { return m_n - (m_n - 1) / m_block * m_block; }
     /// Tables of the rows c (with d_u, d_j) at every local step end 1..length (c one row), or, with
     /// last_only, of every row of c at step end `length` only.
     /// Discretises `ss` (step exponentials, the stations' W0 and W1, the port and end-state tables).
@@ -175,6 +185,7 @@ private:
     std::vector<std::complex<double>> m_block_phasor;         // e^{j 2 pi ratio tau0} per station and block start
     std::vector<std::complex<double>> m_cycle_phasor;         // e^{j 2 pi ratio c} at cycle m_phasor_cycle's start, per station
     long long m_phasor_cycle = -1;
+    block_responses m_resp;                                   // see block_responses
     row_tables m_port;                                        // the junction port's voltage
     std::vector<row_tables> m_outs;                           // the added outputs (a cycle_mean one: see output_tables)
     std::vector<output_use> m_out_use;
