@@ -183,8 +183,25 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
         for (double centre = path.lowest_hz() - w; centre - w < path.highest_hz() + w; centre += 2.0 * w, ++k)
             src.add(fmt::format("noise {}", k + 1), centre, band_noise(d, w, spec.noise.seed + (k << 32)));
     }
+    // The grid follows the dial: each retune interval gets the fewest steps per reference cycle that still
+    // cut the tuned carrier's cycle (at the interval's higher end) into at least N = s.steps_per_cycle, on a
+    // ladder of N / 16 (at least 4: a check against another simulator can sample every cycle at 4 points).
+    detail::require_range("dial.steps_per_cycle", s.steps_per_cycle, 8.0, 4096.0);
+    if (s.steps_per_cycle % 2 != 0) throw config_error(fmt::format("dial.steps_per_cycle = {}: must be even", s.steps_per_cycle));
+    const int rung = std::max(4, s.steps_per_cycle / 16);
+    auto grid_steps = [&](double programme_t0, double programme_t1) {
+        const double f = std::max(dial_frequency(path, tuning, programme_t0), dial_frequency(path, tuning, programme_t1));
+        const auto n = static_cast<int>(std::ceil(s.steps_per_cycle * (f / fref) / rung - 1e-9)) * rung;
+        return std::clamp(n, (8 + rung - 1) / rung * rung, s.steps_per_cycle);
+    };
+    const double period = 1.0 / fref;
+    const auto seg = std::max<std::size_t>(1, static_cast<std::size_t>(std::llround(s.retune_interval_s * fref)));
+    // Chunk c0 .. c1 (cycles): the programme times of its ends.
+    auto chunk_steps = [&](std::size_t c0, std::size_t c1) {
+        return grid_steps(static_cast<double>(c0) * period - preroll, static_cast<double>(c1) * period - preroll);
+    };
     rf_settings rs;
-    rs.steps_per_cycle = s.steps_per_cycle;
+    rs.steps_per_cycle = chunk_steps(0, seg);
     rf_integrator ig(ss, rn.emf_input, diode_model(spec.circuit.diode).law(), src, fref, rs);
     auto rows = [&](const state_space& m) {
         std::vector<rf_integrator::output_row> r;
@@ -201,7 +218,6 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
     constexpr int out_k = 0, det_k = 1;
     ig.initialize();
 
-    const int n_steps = ig.steps_per_cycle();
     const double duration = path.duration_s();
     const auto total = static_cast<std::size_t>(std::llround(duration * fs));
     const auto preroll_samples = static_cast<std::size_t>(std::llround(preroll * fs));
@@ -211,18 +227,17 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
                                        detail::format_value(preroll), chain.warm_up_s()));
     const double t_end = preroll + static_cast<double>(total) / fs + chain.latency_s() + 4.0 / fs;
     const auto cycles_total = static_cast<std::size_t>(std::ceil(t_end * fref));
-    const auto seg = std::max<std::size_t>(1, static_cast<std::size_t>(std::llround(s.retune_interval_s * fref)));
-    const double period = 1.0 / fref;
 
-    // Per-station DFT at the detector's input: the carrier phasor e^{-j w t} rotated per step (and per cycle),
-    // set exactly at the start of each level window (no drift).
+    // Per-station DFT at the detector's input: the carrier phasor e^{-j w t} at each cycle's start (set exactly
+    // at the start of each level window, then rotated per cycle) and per step within the cycle. Each step's
+    // value is weighted by its share of the cycle (1 / N of the cycle's Hann weight), so the window keeps its
+    // shape where the grid changes.
     const std::size_t ns = res.names.size(); // the AM stations (noise tiles come after them)
     std::vector<double> ratio(ns), rot_re(ns), rot_im(ns), cyc_re(ns), cyc_im(ns), acc_re(ns), acc_im(ns), p_re(ns), p_im(ns);
+    std::vector<double> q_re(ns), q_im(ns), a_re(ns), a_im(ns);
+    int rot_n = 0; // the grid rot_re, rot_im are for
     for (std::size_t k = 0; k < ns; ++k) {
         ratio[k] = res.carriers_hz[k] / fref;
-        const double a = -two_pi * ratio[k] / n_steps;
-        rot_re[k] = std::cos(a);
-        rot_im[k] = std::sin(a);
         const double b = -two_pi * (ratio[k] - std::floor(ratio[k]));
         cyc_re[k] = std::cos(b);
         cyc_im[k] = std::sin(b);
@@ -230,11 +245,12 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
     const auto window = std::max<std::size_t>(2, static_cast<std::size_t>(std::llround(s.level_window_s * fref)));
     std::size_t w_start = 0;
     double wsum = 0.0;
-    std::vector<double> det(static_cast<std::size_t>(2 * n_steps));
+    std::vector<double> det(static_cast<std::size_t>(2 * s.steps_per_cycle));
 
     res.audio_rate_hz = fs;
     res.reference_hz = fref;
-    res.steps_per_cycle = n_steps;
+    res.steps_per_cycle = s.steps_per_cycle;
+    res.fewest_steps_per_cycle = ig.steps_per_cycle();
     res.preroll_s = preroll;
     detail::programme_delivery delivery(preroll_samples, total, fs, s.dc_block_hz);
     std::vector<double> raw, block_e, block_a;
@@ -242,13 +258,15 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
     for (std::size_t c0 = 0; c0 < cycles_total && !delivery.complete(); c0 += chunk_cycles) {
         const std::size_t c1 = std::min(cycles_total, c0 + chunk_cycles);
         const double f_dial = dial_frequency(path, tuning, 0.5 * static_cast<double>(c0 + c1) * period - preroll);
+        const int n_grid = chunk_steps(c0, c1);
+        res.fewest_steps_per_cycle = std::min(res.fewest_steps_per_cycle, n_grid);
         if (c0 > 0) {
             const auto w0 = clock::now();
             receiver_network next = network_at(f_dial);
             state_space ss_next = next.net.assemble();
             const Eigen::VectorXd x = carry_charge(ss, ig.state(), ss_next);
             const auto r = rows(ss_next);
-            ig.retune(ss_next, next.emf_input, x, r);
+            ig.retune(ss_next, next.emf_input, x, r, n_grid);
             ss = std::move(ss_next);
             rn = std::move(next);
             res.retune_wall_s += std::chrono::duration<double>(clock::now() - w0).count();
@@ -257,15 +275,24 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
         const double tb = static_cast<double>(c1) * period;
         for (const auto& st : spec.stations)
             st.programme->prepare(static_cast<double>(c0) * period - preroll - 2.0 * period, tb - preroll + 3.0 * period);
+        const int n_steps = ig.steps_per_cycle();
+        if (n_steps != rot_n) {
+            for (std::size_t k = 0; k < ns; ++k) {
+                const double a = -two_pi * ratio[k] / n_steps;
+                rot_re[k] = std::cos(a);
+                rot_im[k] = std::sin(a);
+            }
+            rot_n = n_steps;
+        }
         for (std::size_t c = c0; c < c1; ++c) {
             ig.advance_cycle(det);
             if (s.output_probe) s.output_probe(c, std::span<const double>(det.data(), static_cast<std::size_t>(n_steps))); // row out_k
             chain.add_cycle_mean(ig.output_mean(out_k), raw);
             if (c == w_start) {
-                // A new level window: the phasors at its first step end, exactly.
+                // A new level window: the phasors at its first cycle's start, exactly.
                 for (std::size_t k = 0; k < ns; ++k) {
                     const double cyc = static_cast<double>(c) * ratio[k];
-                    const double ph = -two_pi * (cyc - std::floor(cyc) + ratio[k] / n_steps);
+                    const double ph = -two_pi * (cyc - std::floor(cyc));
                     p_re[k] = std::cos(ph);
                     p_im[k] = std::sin(ph);
                     acc_re[k] = acc_im[k] = 0.0;
@@ -274,21 +301,29 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
             }
             // Hann weight per cycle (constant within one).
             const double w = 0.5 * (1.0 - std::cos(two_pi * (static_cast<double>(c - w_start) + 0.5) / static_cast<double>(window)));
-            wsum += w * n_steps;
+            wsum += w;
             const double* dv = det.data() + n_steps; // row det_k
+            // The stations side by side (independent rotations: the inner loop runs across them).
             for (std::size_t k = 0; k < ns; ++k) {
-                double pr = p_re[k], pi_ = p_im[k], ar = 0.0, ai = 0.0;
-                const double rr = rot_re[k], ri = rot_im[k];
-                for (int i = 0; i < n_steps; ++i) {
-                    ar += dv[i] * pr;
-                    ai += dv[i] * pi_;
-                    const double t = pr * rr - pi_ * ri;
-                    pi_ = pr * ri + pi_ * rr;
-                    pr = t;
+                q_re[k] = p_re[k] * rot_re[k] - p_im[k] * rot_im[k]; // at the first step's end
+                q_im[k] = p_re[k] * rot_im[k] + p_im[k] * rot_re[k];
+                a_re[k] = a_im[k] = 0.0;
+            }
+            for (int i = 0; i < n_steps; ++i) {
+                const double v = dv[i];
+                for (std::size_t k = 0; k < ns; ++k) {
+                    a_re[k] += v * q_re[k];
+                    a_im[k] += v * q_im[k];
+                    const double t = q_re[k] * rot_re[k] - q_im[k] * rot_im[k];
+                    q_im[k] = q_re[k] * rot_im[k] + q_im[k] * rot_re[k];
+                    q_re[k] = t;
                 }
-                acc_re[k] += w * ar;
-                acc_im[k] += w * ai;
-                // On to the next cycle's first step.
+            }
+            const double wn = w / n_steps;
+            for (std::size_t k = 0; k < ns; ++k) {
+                acc_re[k] += wn * a_re[k];
+                acc_im[k] += wn * a_im[k];
+                // On to the next cycle's start.
                 const double t = p_re[k] * cyc_re[k] - p_im[k] * cyc_im[k];
                 p_im[k] = p_re[k] * cyc_im[k] + p_im[k] * cyc_re[k];
                 p_re[k] = t;

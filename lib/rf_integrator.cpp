@@ -1,5 +1,6 @@
 #include "galena/rf_integrator.hpp"
 
+#include "galena/block_product.hpp"
 #include "galena/constants.hpp"
 #include "galena/error.hpp"
 #include "galena/junction_law_eval.hpp"
@@ -26,41 +27,56 @@ constexpr std::size_t phasor_anchor_cycles = 256;
 
 rf_integrator::rf_integrator(const state_space& ss, int input, const junction_law& junction, const station_source& stations,
                              double reference_hz, const rf_settings& st)
-    : m_src(&stations), m_law(junction), m_n(st.steps_per_cycle), m_fref(reference_hz)
+    : m_src(&stations), m_law(junction), m_fref(reference_hz)
 {
-    detail::require_range("solver.steps_per_cycle", st.steps_per_cycle, 8.0, 4096.0);
-    if (st.steps_per_cycle % 2 != 0)
-        throw config_error(fmt::format("solver.steps_per_cycle = {}: must be even", st.steps_per_cycle));
     detail::require_above("solver.newton_tolerance_v", st.newton_tolerance_v, 0.0, 1e-3, "V");
     detail::require_range("reference carrier", reference_hz, 1e3, 1e9, "Hz");
     if (input < 0 || input >= ss.b.cols()) throw config_error(fmt::format("rf_integrator: input {} does not exist", input));
     m_tol = st.newton_tolerance_v;
-    m_h = 1.0 / (reference_hz * m_n);
-    m_block = std::min(m_n, max_block_steps);
     m_c_lin = ss.port_linear_capacitance_f;
     m_charge = junction.cj0_f > 0.0;
     for (std::size_t s = 0; s < stations.size(); ++s) {
         m_ratio.push_back(stations.carrier_hz(s) / reference_hz);
         const double r = m_ratio.back();
         m_cycle_step_phasor.push_back(std::polar(1.0, two_pi * (r - std::floor(r))));
-        m_wh.push_back(two_pi * stations.carrier_hz(s) * m_h);
     }
+    set_grid(st.steps_per_cycle);
     set_network(ss, input);
-    const int n = ss.states();
+    m_x = Eigen::VectorXd::Zero(ss.states());
+    m_z = Eigen::VectorXd::Zero(ss.states() + 8 * static_cast<Eigen::Index>(stations.size()));
+}
+
+void rf_integrator::set_grid(int steps_per_cycle)
+{
+    detail::require_range("solver.steps_per_cycle", steps_per_cycle, 8.0, 4096.0);
+    if (steps_per_cycle % 2 != 0) throw config_error(fmt::format("solver.steps_per_cycle = {}: must be even", steps_per_cycle));
+    m_n = steps_per_cycle;
+    m_h = 1.0 / (m_fref * m_n);
+    m_block = std::min(m_n, max_block_steps);
+    m_wh.clear();
+    for (std::size_t s = 0; s < m_src->size(); ++s) m_wh.push_back(two_pi * m_src->carrier_hz(s) * m_h);
     // e^{j 2 pi ratio tau0} at each block's start tau0 (cycles), per station.
-    for (std::size_t s = 0; s < stations.size(); ++s)
+    m_block_phasor.clear();
+    for (std::size_t s = 0; s < m_src->size(); ++s)
         for (int k0 = 0; k0 < m_n; k0 += m_block) {
             double ph = m_ratio[s] * static_cast<double>(k0) / m_n;
             ph -= std::floor(ph);
             m_block_phasor.push_back(std::polar(1.0, two_pi * ph));
         }
+    m_ref_phasor.clear();
     for (int k = 1; k <= m_n; ++k) m_ref_phasor.push_back(std::polar(1.0, -two_pi * static_cast<double>(k) / m_n));
     m_prev.assign(static_cast<std::size_t>(m_n), phase_point{});
-    m_x = Eigen::VectorXd::Zero(n);
-    m_z = Eigen::VectorXd::Zero(n + 8 * static_cast<Eigen::Index>(stations.size()));
     m_jb = Eigen::VectorXd::Zero(m_block + 1);
     m_free = Eigen::VectorXd::Zero(m_block);
     m_y = Eigen::VectorXd::Zero(m_block);
+}
+
+void rf_integrator::reset_predictor()
+{
+    // Every phase's predictor linearises the law at the last solution (beta as in run_cycle).
+    const double beta = m_port.j(0, 1);
+    const double g = m_g0_s + bdf2_gain * m_cr0_f / m_h;
+    std::fill(m_prev.begin(), m_prev.end(), phase_point{m_v, m_i0 + bdf2_gain * m_qr0 / m_h - g * m_v, 1.0 / (1.0 - beta * g)});
 }
 
 void rf_integrator::set_network(const state_space& ss, int input)
@@ -124,14 +140,17 @@ void rf_integrator::set_network(const state_space& ss, int input)
     }
     // The port, and the state after a whole block and after the cycle's last (possibly shorter) block.
     m_port = tabulate(ss.port_c, Eigen::VectorXd::Constant(1, ss.port_d(input)), Eigen::VectorXd::Constant(1, ss.port_dj), m_block, false);
+    m_port.jc = m_port.j;
     const Eigen::MatrixXd eye = Eigen::MatrixXd::Identity(n, n);
     const Eigen::VectorXd zero = Eigen::VectorXd::Zero(n);
     m_end = tabulate(eye, zero, zero, m_block, true);
     const int last = last_block_steps();
     m_end_last = last == m_block ? m_end : tabulate(eye, zero, zero, last, true);
+    m_end.jc = m_end.j;
+    m_end_last.jc = m_end_last.j;
 }
 
-void rf_integrator::retune(const state_space& ss, int input, const Eigen::VectorXd& x, std::span<const output_row> outputs)
+void rf_integrator::retune(const state_space& ss, int input, const Eigen::VectorXd& x, std::span<const output_row> outputs, int steps_per_cycle)
 {
     if (ss.states() != m_x.size() || x.size() != m_x.size())
         throw config_error(fmt::format("rf_integrator::retune: a network of {} states and a state of {} entries for an integrator of {}",
@@ -140,9 +159,18 @@ void rf_integrator::retune(const state_space& ss, int input, const Eigen::Vector
         throw config_error(fmt::format("rf_integrator::retune: {} output rows for {} outputs", outputs.size(), m_outs.size()));
     if (ss.port_linear_capacitance_f != m_c_lin)
         throw config_error("rf_integrator::retune: the junction's linear capacitance changed");
+    const bool regrid = steps_per_cycle != 0 && steps_per_cycle != m_n;
+    if (regrid) {
+        const double h_old = m_h;
+        set_grid(steps_per_cycle);
+        // BDF2's older charge point moved to one new step before the last solution, on the line through the
+        // two it holds (first order for the one step that uses it).
+        m_qr1 = m_qr0 - (m_qr0 - m_qr1) * m_h / h_old;
+    }
     set_network(ss, input);
     for (std::size_t o = 0; o < outputs.size(); ++o) m_outs[o] = output_tables(outputs[o].c, outputs[o].d_u, outputs[o].d_j, m_out_use[o]);
     m_x = x;
+    if (regrid) reset_predictor();
 }
 
 rf_integrator::row_tables rf_integrator::tabulate(const Eigen::MatrixXd& c, const Eigen::VectorXd& d_u, const Eigen::VectorXd& d_j,
@@ -198,7 +226,10 @@ rf_integrator::row_tables rf_integrator::output_tables(const Eigen::RowVectorXd&
 {
     const Eigen::VectorXd du = Eigen::VectorXd::Constant(1, d_u), dj = Eigen::VectorXd::Constant(1, d_j);
     row_tables full = tabulate(c, du, dj, m_block, false);
-    if (use == output_use::every_step) return full;
+    if (use == output_use::every_step) {
+        full.jc = full.j;
+        return full;
+    }
     const int last = last_block_steps();
     const row_tables tail = last == m_block ? full : tabulate(c, du, dj, last, false);
     row_tables t;
@@ -246,10 +277,7 @@ void rf_integrator::initialize()
     m_qr1 = m_qr0;
     m_g0_s = jv.conductance_s;
     m_cr0_f = m_charge ? jv.capacitance_f - m_c_lin : 0.0;
-    // The predictor's first cycle linearises the law at v = 0 (beta as in run_cycle).
-    const double beta = m_port.j(0, 1);
-    const double g = m_g0_s + bdf2_gain * m_cr0_f / m_h;
-    std::fill(m_prev.begin(), m_prev.end(), phase_point{0.0, m_i0 + bdf2_gain * m_qr0 / m_h, 1.0 / (1.0 - beta * g)});
+    reset_predictor(); // the first cycle's predictor: the law linearised at v = 0
     std::fill(m_out_last.begin(), m_out_last.end(), 0.0);
     m_stats = {};
 }
@@ -405,12 +433,17 @@ void rf_integrator::run_cycle(std::span<double> out)
                 m_z[n + 4 * ens + 4 * es + q] = rp.imag();
             }
         }
-        m_free.head(len).noalias() = m_port.m.topRows(len) * m_z;
+        // The free port voltage of every step with j_0's share; each solved current then adds its share to the
+        // later steps (one multiply-add stands between a step's current and the next step's alpha).
+        detail::column_major_product(m_port.m.data(), m_port.m.rows(), len, m_port.m.cols(), m_z.data(), m_free.data(), false);
         m_jb[0] = m_j;
+        const double* port_j = m_port.jc.data();
+        const Eigen::Index port_ld = m_port.jc.rows();
+        for (int r = 0; r < len; ++r) m_free[r] += port_j[r] * m_j;
         for (int k = 1; k <= len; ++k) {
             const auto kk = static_cast<std::size_t>(k0 + k - 1);
-            const double alpha = m_free[k - 1] + m_port.j.row(k - 1).head(k).dot(m_jb.head(k));
-            const double beta = m_port.j(k - 1, k);
+            const double alpha = m_free[k - 1];
+            const double beta = port_j[(k - 1) + k * port_ld];
             // Predictor: the junction law linearised at this phase's solution one cycle earlier, solved with
             // this step's v = alpha + beta J(v) (a Newton step from there that costs no law evaluation).
             // (The division is made when the point is stored, off this step's chain of dependent operations.)
@@ -422,6 +455,8 @@ void rf_integrator::run_cycle(std::span<double> out)
             const double g = m_g0_s + bdf2_gain * m_cr0_f * inv_h;
             pp = {v1, m_i0 + bdf2_gain * m_qr0 * inv_h - g * v1, 1.0 / (1.0 - beta * g)};
             m_jb[k] = j1;
+            const double* col = port_j + k * port_ld;
+            for (int r = k; r < len; ++r) m_free[r] += col[r] * j1;
             m_v = v1;
             m_j = j1;
             if (m_phasors) {
@@ -439,8 +474,8 @@ void rf_integrator::run_cycle(std::span<double> out)
                 if (last_block) m_out_last[o] = t.m.row(2).dot(m_z) + t.j.row(2).head(len + 1).dot(jb);
                 continue;
             }
-            m_y.head(len).noalias() = t.m.topRows(len) * m_z;
-            m_y.head(len).noalias() += t.j.topLeftCorner(len, len + 1) * jb;
+            detail::column_major_product(t.m.data(), t.m.rows(), len, t.m.cols(), m_z.data(), m_y.data(), false);
+            detail::column_major_product(t.jc.data(), t.jc.rows(), len, len + 1, jb.data(), m_y.data(), true);
             for (int k = 1; k <= len; ++k) {
                 const double y = m_y[k - 1];
                 const bool cycle_end = k0 + k == m_n;
@@ -451,8 +486,8 @@ void rf_integrator::run_cycle(std::span<double> out)
             }
         }
         const row_tables& e = len == m_block ? m_end : m_end_last;
-        m_x.noalias() = e.m * m_z;
-        m_x.noalias() += e.j * jb;
+        detail::column_major_product(e.m.data(), e.m.rows(), n, e.m.cols(), m_z.data(), m_x.data(), false);
+        detail::column_major_product(e.jc.data(), e.jc.rows(), n, len + 1, jb.data(), m_x.data(), true);
     }
     for (std::size_t s = 0; s < ns; ++s) m_cycle_phasor[s] *= m_cycle_step_phasor[s];
     m_phasor_cycle = static_cast<long long>(c) + 1;

@@ -72,7 +72,7 @@ struct sweep {
     std::vector<station_spec> stations;
     double start_hz, end_hz, glide_s;
     double audio_rate_hz = 192000.0; // the shortest audio chain start-up, so the shortest preroll
-    int grid_per_cycle = 8;          // compared points per reference cycle
+    int grid_per_cycle = 4;          // compared points per reference cycle (render_dial's grids are multiples of 4)
 };
 
 /// Samples of the earpiece node on the grid k / (grid_per_cycle f_ref) of simulation time, k = 1, 2, ...
@@ -125,10 +125,11 @@ galena_run render_galena(const sweep& sw, int steps, double retune_s)
     ds.retune_interval_s = retune_s;
     ds.audio_rate_hz = sw.audio_rate_hz;
     ds.preroll_s = preroll_of(sw);
-    REQUIRE(steps % sw.grid_per_cycle == 0);
-    const int every = steps / sw.grid_per_cycle;
+    // The grid follows the dial (dial_settings::steps_per_cycle): each cycle's step count is a multiple of 4.
     ds.output_probe = [&](std::size_t, std::span<const double> v) {
-        for (std::size_t i = static_cast<std::size_t>(every) - 1; i < v.size(); i += static_cast<std::size_t>(every)) run.w.v.push_back(v[i]);
+        REQUIRE(v.size() % static_cast<std::size_t>(sw.grid_per_cycle) == 0);
+        const std::size_t every = v.size() / static_cast<std::size_t>(sw.grid_per_cycle);
+        for (std::size_t i = every - 1; i < v.size(); i += every) run.w.v.push_back(v[i]);
     };
     const dial_result r = render_dial(spec, path, ds, [](const audio_block&) {});
     REQUIRE(r.steps_per_cycle == steps);

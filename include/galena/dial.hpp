@@ -65,14 +65,19 @@ struct dial_settings {
     /// resolves 125 Hz, so a programme's sidebands from 300 Hz up fall outside the window's main lobe
     /// and the carrier's level does not flutter with the programme.
     double level_window_s = 8e-3;
-    int steps_per_cycle = 32;     ///< N steps per cycle of the reference (the path's highest frequency)
+    /// N: the tuned carrier's cycle is cut into at least N steps everywhere on the dial; even, [8, 4096]. The
+    /// grid's reference is the path's highest frequency; each retune interval gets the fewest steps per
+    /// reference cycle that do this (N f_tuned / f_ref rounded up to a multiple of max(4, N / 16), at least
+    /// 8; at most N), so the low end of a band costs fewer steps than the top.
+    int steps_per_cycle = 32;
     double audio_rate_hz = 48000.0;
     double dc_block_hz = 10.0;
     double preroll_s = -1.0;      ///< s; < 0: automatic (the output's and the tuned circuit's settling)
     /// Optional, for checks against other simulators: called after every carrier cycle c of the reference
-    /// (reference_hz) with the voltage at the detector's output (the earpiece node) at that cycle's N step
-    /// ends, V; step i (0-based) ends at simulation time (c N + i + 1) / (N reference_hz), which is
-    /// programme time plus preroll_s. Empty: not called.
+    /// (reference_hz) with the voltage at the detector's output (the earpiece node) at that cycle's step ends,
+    /// V: output_v.size() = n, the cycle's grid (see steps_per_cycle), and step i (0-based) ends at
+    /// simulation time (c + (i + 1) / n) / reference_hz, which is programme time plus preroll_s. Empty: not
+    /// called.
     std::function<void(std::size_t cycle, std::span<const double> output_v)> output_probe;
 };
 
@@ -95,7 +100,8 @@ struct dial_result {
     std::size_t samples = 0;              ///< audio samples delivered
     double audio_rate_hz = 0.0;
     double reference_hz = 0.0;            ///< the grid's reference carrier, Hz
-    int steps_per_cycle = 0;
+    int steps_per_cycle = 0;              ///< the grid's steps per reference cycle at the path's top (the setting)
+    int fewest_steps_per_cycle = 0;       ///< and the fewest it used (at the path's low end)
     double preroll_s = 0.0;
     double simulated_s = 0.0;
     double wall_s = 0.0;

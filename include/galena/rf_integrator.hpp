@@ -113,8 +113,13 @@ public:
     /// maps the old state so that charges are conserved) with the junction, time, envelope and outputs'
     /// running values kept. `outputs` gives every added output's row in the new network, in add_output order.
     /// Re-tabulates everything (about one matrix exponential per station plus the block tables: measured in
-    /// DEVELOPERS.md), so call it every many cycles, not every cycle. Throws config_error on a mismatch.
-    void retune(const state_space& ss, int input, const Eigen::VectorXd& x, std::span<const output_row> outputs);
+    /// DEVELOPERS.md), so call it every many cycles, not every cycle. `steps_per_cycle` > 0 also moves the grid
+    /// to that many steps per reference cycle (rf_settings' rules): the junction's charge history is carried
+    /// to the new step (first order for one step) and the predictor starts afresh from the last solution, so
+    /// the first cycle after a change costs a few more law evaluations. The reference-carrier phasors
+    /// (start_phasors) are sums over steps: restart them after a change of grid. Throws config_error on a
+    /// mismatch or a bad step count.
+    void retune(const state_space& ss, int input, const Eigen::VectorXd& x, std::span<const output_row> outputs, int steps_per_cycle = 0);
     /// Mean of output k over the last cycle (trapezoidal rule over its N + 1 step values), V.
     [[nodiscard]] double output_mean(int k) const noexcept { return m_out_mean[static_cast<std::size_t>(k)]; }
     /// Largest |value| of output k at a step end since the last reset_peaks(), V.
@@ -141,6 +146,7 @@ private:
     struct row_tables {
         Eigen::MatrixXd m;
         row_major j;
+        Eigen::MatrixXd jc; ///< j column-major, where the block's product needs it (every_step outputs, the end state)
     };
     /// The responses over a block at the state level, from which every row's tables are projected (tabulate):
     /// Phi^k (k = 0..K), Phi^d g0 and Phi^d g1 (columns d = 0..K-1), and per station and Taylor power q
@@ -156,6 +162,11 @@ private:
     /// last_only, of every row of c at step end `length` only.
     /// Discretises `ss` (step exponentials, the stations' W0 and W1, the port and end-state tables).
     void set_network(const state_space& ss, int input);
+    /// Sets the grid: N, the step, the blocks and everything per step or block that does not depend on the
+    /// network (validates N).
+    void set_grid(int steps_per_cycle);
+    /// Every phase's predictor from the law linearised at the last solution.
+    void reset_predictor();
     [[nodiscard]] row_tables tabulate(const Eigen::MatrixXd& c, const Eigen::VectorXd& d_u, const Eigen::VectorXd& d_j,
                                       int length, bool last_only) const;
     /// An output's tables: tabulate's K rows for every_step; for cycle_mean three rows (J padded to K + 1
