@@ -210,10 +210,10 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
     };
     {
         // The earpiece's step values only for the probe (the audio chain takes its cycle means); the
-        // detector's at every step for the stations' levels.
+        // detector's carrier phasors for the stations' levels (the AM stations: the noise tiles come after them).
         const auto r0 = rows(ss);
         ig.add_output(r0[0].c, r0[0].d_u, r0[0].d_j, s.output_probe ? output_use::every_step : output_use::cycle_mean);
-        ig.add_output(r0[1].c, r0[1].d_u, r0[1].d_j);
+        ig.add_phasor_output(r0[1].c, r0[1].d_u, r0[1].d_j, spec.stations.size());
     }
     constexpr int out_k = 0, det_k = 1;
     ig.initialize();
@@ -228,24 +228,15 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
     const double t_end = preroll + static_cast<double>(total) / fs + chain.latency_s() + 4.0 / fs;
     const auto cycles_total = static_cast<std::size_t>(std::ceil(t_end * fref));
 
-    // Per-station DFT at the detector's input: the carrier phasor e^{-j w t} at each cycle's start (set exactly
-    // at the start of each level window, then rotated per cycle) and per step within the cycle. Each step's
-    // value is weighted by its share of the cycle (1 / N of the cycle's Hann weight), so the window keeps its
-    // shape where the grid changes.
-    const std::size_t ns = res.names.size(); // the AM stations (noise tiles come after them)
-    std::vector<double> ratio(ns), rot_re(ns), rot_im(ns), cyc_re(ns), cyc_im(ns), acc_re(ns), acc_im(ns), p_re(ns), p_im(ns);
-    std::vector<double> q_re(ns), q_im(ns), a_re(ns), a_im(ns);
-    int rot_n = 0; // the grid rot_re, rot_im are for
-    for (std::size_t k = 0; k < ns; ++k) {
-        ratio[k] = res.carriers_hz[k] / fref;
-        const double b = -two_pi * (ratio[k] - std::floor(ratio[k]));
-        cyc_re[k] = std::cos(b);
-        cyc_im[k] = std::sin(b);
-    }
+    // Per-station DFT at the detector's input, Hann-windowed over whole cycles: each cycle's carrier phasors
+    // (the integrator's phasor output) weighted by the cycle's Hann weight over its steps (1 / N each), so the
+    // window keeps its shape where the grid changes.
+    const std::size_t ns = res.names.size();
+    std::vector<std::complex<double>> acc(ns);
     const auto window = std::max<std::size_t>(2, static_cast<std::size_t>(std::llround(s.level_window_s * fref)));
     std::size_t w_start = 0;
     double wsum = 0.0;
-    std::vector<double> det(static_cast<std::size_t>(2 * s.steps_per_cycle));
+    std::vector<double> det(s.output_probe ? static_cast<std::size_t>(s.steps_per_cycle) : 0);
 
     res.audio_rate_hz = fs;
     res.reference_hz = fref;
@@ -276,58 +267,19 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
         for (const auto& st : spec.stations)
             st.programme->prepare(static_cast<double>(c0) * period - preroll - 2.0 * period, tb - preroll + 3.0 * period);
         const int n_steps = ig.steps_per_cycle();
-        if (n_steps != rot_n) {
-            for (std::size_t k = 0; k < ns; ++k) {
-                const double a = -two_pi * ratio[k] / n_steps;
-                rot_re[k] = std::cos(a);
-                rot_im[k] = std::sin(a);
-            }
-            rot_n = n_steps;
-        }
         for (std::size_t c = c0; c < c1; ++c) {
             ig.advance_cycle(det);
             if (s.output_probe) s.output_probe(c, std::span<const double>(det.data(), static_cast<std::size_t>(n_steps))); // row out_k
             chain.add_cycle_mean(ig.output_mean(out_k), raw);
             if (c == w_start) {
-                // A new level window: the phasors at its first cycle's start, exactly.
-                for (std::size_t k = 0; k < ns; ++k) {
-                    const double cyc = static_cast<double>(c) * ratio[k];
-                    const double ph = -two_pi * (cyc - std::floor(cyc));
-                    p_re[k] = std::cos(ph);
-                    p_im[k] = std::sin(ph);
-                    acc_re[k] = acc_im[k] = 0.0;
-                }
+                std::fill(acc.begin(), acc.end(), std::complex<double>{});
                 wsum = 0.0;
             }
             // Hann weight per cycle (constant within one).
             const double w = 0.5 * (1.0 - std::cos(two_pi * (static_cast<double>(c - w_start) + 0.5) / static_cast<double>(window)));
             wsum += w;
-            const double* dv = det.data() + n_steps; // row det_k
-            // The stations side by side (independent rotations: the inner loop runs across them).
-            for (std::size_t k = 0; k < ns; ++k) {
-                q_re[k] = p_re[k] * rot_re[k] - p_im[k] * rot_im[k]; // at the first step's end
-                q_im[k] = p_re[k] * rot_im[k] + p_im[k] * rot_re[k];
-                a_re[k] = a_im[k] = 0.0;
-            }
-            for (int i = 0; i < n_steps; ++i) {
-                const double v = dv[i];
-                for (std::size_t k = 0; k < ns; ++k) {
-                    a_re[k] += v * q_re[k];
-                    a_im[k] += v * q_im[k];
-                    const double t = q_re[k] * rot_re[k] - q_im[k] * rot_im[k];
-                    q_im[k] = q_re[k] * rot_im[k] + q_im[k] * rot_re[k];
-                    q_re[k] = t;
-                }
-            }
             const double wn = w / n_steps;
-            for (std::size_t k = 0; k < ns; ++k) {
-                acc_re[k] += wn * a_re[k];
-                acc_im[k] += wn * a_im[k];
-                // On to the next cycle's start.
-                const double t = p_re[k] * cyc_re[k] - p_im[k] * cyc_im[k];
-                p_im[k] = p_re[k] * cyc_im[k] + p_im[k] * cyc_re[k];
-                p_re[k] = t;
-            }
+            for (std::size_t k = 0; k < ns; ++k) acc[k] += wn * ig.output_phasor(det_k, k);
             if (c + 1 == w_start + window) {
                 const double t_centre = (static_cast<double>(w_start) + 0.5 * static_cast<double>(window)) * period - preroll;
                 if (t_centre >= 0.0 && t_centre <= duration) {
@@ -335,7 +287,7 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
                     p.time_s = t_centre;
                     p.tuned_hz = dial_frequency(path, tuning, t_centre);
                     p.capacitance_f = tuning.capacitance_f(p.tuned_hz);
-                    for (std::size_t k = 0; k < ns; ++k) p.level_v.push_back(2.0 * std::hypot(acc_re[k], acc_im[k]) / wsum);
+                    for (std::size_t k = 0; k < ns; ++k) p.level_v.push_back(2.0 * std::abs(acc[k]) / wsum);
                     res.trace.push_back(std::move(p));
                 }
                 w_start = c + 1;

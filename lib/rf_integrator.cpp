@@ -168,7 +168,8 @@ void rf_integrator::retune(const state_space& ss, int input, const Eigen::Vector
         m_qr1 = m_qr0 - (m_qr0 - m_qr1) * m_h / h_old;
     }
     set_network(ss, input);
-    for (std::size_t o = 0; o < outputs.size(); ++o) m_outs[o] = output_tables(outputs[o].c, outputs[o].d_u, outputs[o].d_j, m_out_use[o]);
+    for (std::size_t o = 0; o < outputs.size(); ++o)
+        m_outs[o] = output_tables(outputs[o].c, outputs[o].d_u, outputs[o].d_j, m_out_use[o], m_out_stations[o]);
     m_x = x;
     if (regrid) reset_predictor();
 }
@@ -222,7 +223,8 @@ rf_integrator::row_tables rf_integrator::tabulate(const Eigen::MatrixXd& c, cons
     return t;
 }
 
-rf_integrator::row_tables rf_integrator::output_tables(const Eigen::RowVectorXd& c, double d_u, double d_j, output_use use) const
+rf_integrator::row_tables rf_integrator::output_tables(const Eigen::RowVectorXd& c, double d_u, double d_j, output_use use,
+                                                      std::size_t stations) const
 {
     const Eigen::VectorXd du = Eigen::VectorXd::Constant(1, d_u), dj = Eigen::VectorXd::Constant(1, d_j);
     row_tables full = tabulate(c, du, dj, m_block, false);
@@ -232,6 +234,30 @@ rf_integrator::row_tables rf_integrator::output_tables(const Eigen::RowVectorXd&
     }
     const int last = last_block_steps();
     const row_tables tail = last == m_block ? full : tabulate(c, du, dj, last, false);
+    if (use == output_use::phasors) {
+        // Rows 2s and 2s + 1 (a whole block) and 2S + 2s, 2S + 2s + 1 (the cycle's last block): the real and
+        // imaginary parts of sum_k e^{-j w_s k h} (row k of the block's tables), the block's DFT at station s
+        // relative to the block's start.
+        const auto ss = static_cast<Eigen::Index>(stations);
+        row_tables t;
+        t.m = Eigen::MatrixXd::Zero(4 * ss, full.m.cols());
+        t.jc = Eigen::MatrixXd::Zero(4 * ss, m_block + 1);
+        for (int part = 0; part < 2; ++part) {
+            const row_tables& b = part == 0 ? full : tail;
+            const int len = part == 0 ? m_block : last;
+            for (Eigen::Index s = 0; s < ss; ++s) {
+                const Eigen::Index r = 2 * ss * part + 2 * s;
+                for (int k = 1; k <= len; ++k) {
+                    const std::complex<double> e = std::polar(1.0, -static_cast<double>(k) * m_wh[static_cast<std::size_t>(s)]);
+                    t.m.row(r) += e.real() * b.m.row(k - 1);
+                    t.m.row(r + 1) += e.imag() * b.m.row(k - 1);
+                    t.jc.row(r).head(len + 1) += e.real() * b.j.row(k - 1);
+                    t.jc.row(r + 1).head(len + 1) += e.imag() * b.j.row(k - 1);
+                }
+            }
+        }
+        return t;
+    }
     row_tables t;
     t.m = Eigen::MatrixXd::Zero(3, full.m.cols());
     t.j = row_major::Zero(3, m_block + 1);
@@ -246,10 +272,26 @@ rf_integrator::row_tables rf_integrator::output_tables(const Eigen::RowVectorXd&
 
 int rf_integrator::add_output(const Eigen::RowVectorXd& c, double d_u, double d_j, output_use use)
 {
+    if (use == output_use::phasors) throw config_error("rf_integrator::add_output: a phasor output is added by add_phasor_output");
+    return add_any_output(c, d_u, d_j, use, 0);
+}
+
+int rf_integrator::add_phasor_output(const Eigen::RowVectorXd& c, double d_u, double d_j, std::size_t stations)
+{
+    if (stations < 1 || stations > m_src->size())
+        throw config_error(fmt::format("rf_integrator::add_phasor_output: {} stations of {}", stations, m_src->size()));
+    return add_any_output(c, d_u, d_j, output_use::phasors, stations);
+}
+
+int rf_integrator::add_any_output(const Eigen::RowVectorXd& c, double d_u, double d_j, output_use use, std::size_t stations)
+{
     if (c.size() != m_x.size())
         throw config_error(fmt::format("rf_integrator: an output row has {} entries for {} states", c.size(), m_x.size()));
-    m_outs.push_back(output_tables(c, d_u, d_j, use));
+    m_outs.push_back(output_tables(c, d_u, d_j, use, stations));
     m_out_use.push_back(use);
+    m_out_stations.push_back(stations);
+    m_out_phasor.emplace_back(stations);
+    m_yp.resize(std::max<Eigen::Index>(m_yp.size(), 2 * static_cast<Eigen::Index>(stations)));
     m_out_mean.push_back(0.0);
     m_out_peak.push_back(0.0);
     m_out_last.push_back(0.0);
@@ -413,7 +455,11 @@ void rf_integrator::run_cycle(std::span<double> out)
         }
     }
     const std::size_t no = m_outs.size();
-    for (std::size_t o = 0; o < no; ++o) m_out_mean[o] = 0.5 * m_out_last[o];
+    for (std::size_t o = 0; o < no; ++o) {
+        m_out_mean[o] = 0.5 * m_out_last[o];
+        std::fill(m_out_phasor[o].begin(), m_out_phasor[o].end(), std::complex<double>{});
+    }
+    m_rot.resize(ns);
     const double inv_h = 1.0 / m_h;
     for (int k0 = 0; k0 < m_n; k0 += m_block) {
         const int len = std::min(m_block, m_n - k0);
@@ -426,6 +472,7 @@ void rf_integrator::run_cycle(std::span<double> out)
             const std::complex<double> p[4] = {a[0] + tau0 * (a[1] + tau0 * (a[2] + tau0 * a[3])), a[1] + tau0 * (2.0 * a[2] + 3.0 * tau0 * a[3]),
                                  a[2] + 3.0 * tau0 * a[3], a[3]};
             const std::complex<double> rot = m_cycle_phasor[s] * m_block_phasor[s * static_cast<std::size_t>(blocks) + static_cast<std::size_t>(k0 / m_block)];
+            m_rot[s] = rot;
             const auto es = static_cast<Eigen::Index>(s);
             for (int q = 0; q < 4; ++q) {
                 const std::complex<double> rp = rot * p[q];
@@ -467,6 +514,16 @@ void rf_integrator::run_cycle(std::span<double> out)
         const auto jb = m_jb.head(len + 1);
         for (std::size_t o = 0; o < no; ++o) {
             const row_tables& t = m_outs[o];
+            if (m_out_use[o] == output_use::phasors) {
+                // The block's DFT relative to its start (tables), turned to absolute time by e^{-j w_s t_b}.
+                const auto two_s = static_cast<Eigen::Index>(2 * m_out_stations[o]);
+                const Eigen::Index at = k0 + len == m_n ? two_s : 0;
+                detail::column_major_product(t.m.data() + at, t.m.rows(), two_s, t.m.cols(), m_z.data(), m_yp.data(), false);
+                detail::column_major_product(t.jc.data() + at, t.jc.rows(), two_s, len + 1, jb.data(), m_yp.data(), true);
+                for (std::size_t s = 0; s < m_out_stations[o]; ++s)
+                    m_out_phasor[o][s] += std::conj(m_rot[s]) * std::complex<double>(m_yp[static_cast<Eigen::Index>(2 * s)], m_yp[static_cast<Eigen::Index>(2 * s + 1)]);
+                continue;
+            }
             if (m_out_use[o] == output_use::cycle_mean) {
                 const bool last_block = k0 + len == m_n;
                 const Eigen::Index r = last_block ? 1 : 0;

@@ -30,6 +30,7 @@ struct rf_settings {
 enum class output_use {
     every_step, ///< its value at every step end (advance_cycle's `out`), its cycle mean and its peak
     cycle_mean, ///< its cycle mean only (and its value at the cycle's end): one row product per block instead of K
+    phasors,    ///< its DFT at stations' carriers over each cycle only (add_phasor_output): 2 row products per station and block
 };
 
 /// Work counters.
@@ -102,6 +103,14 @@ public:
     /// tables are the block's step values summed with the trapezoidal weights, so its cost per block is one
     /// row product instead of K (the same mean to rounding).
     int add_output(const Eigen::RowVectorXd& c, double d_u, double d_j, output_use use = output_use::every_step);
+    /// Adds an output measured only by its carrier phasors: after each cycle, output_phasor(k, s) is the sum over
+    /// the cycle's step ends t_i of y(t_i) e^{-j w_s t_i} for the first `stations` stations (w_s a station's
+    /// carrier, rad/s; t from the start, s), the same as a DFT of the step values (to rounding) without
+    /// computing them: its tables are each block's rows summed with the carriers' rotations. No step values,
+    /// mean or peak. Returns its index (in add_output's sequence). Throws config_error.
+    int add_phasor_output(const Eigen::RowVectorXd& c, double d_u, double d_j, std::size_t stations);
+    /// A phasor output's sum for station s over the last cycle, V (see add_phasor_output).
+    [[nodiscard]] std::complex<double> output_phasor(int k, std::size_t s) const { return m_out_phasor.at(static_cast<std::size_t>(k)).at(s); }
     /// An output's row: value = c x + d_u u + d_j j (see add_output).
     struct output_row {
         Eigen::RowVectorXd c;
@@ -172,7 +181,8 @@ private:
     /// An output's tables: tabulate's K rows for every_step; for cycle_mean three rows (J padded to K + 1
     /// columns): a whole block's step values summed, the cycle's last block summed with half weight on the
     /// cycle's end, and the value at the cycle's end.
-    [[nodiscard]] row_tables output_tables(const Eigen::RowVectorXd& c, double d_u, double d_j, output_use use) const;
+    [[nodiscard]] row_tables output_tables(const Eigen::RowVectorXd& c, double d_u, double d_j, output_use use, std::size_t stations) const;
+    int add_any_output(const Eigen::RowVectorXd& c, double d_u, double d_j, output_use use, std::size_t stations);
     [[nodiscard]] std::complex<double> envelope_at_cycle(std::size_t station, long long c) const noexcept;
     template <bool Breakdown, bool Charge, bool SquareRoot>
     double solve_junction(double alpha, double beta, double v_guess, double& j1);
@@ -200,6 +210,10 @@ private:
     row_tables m_port;                                        // the junction port's voltage
     std::vector<row_tables> m_outs;                           // the added outputs (a cycle_mean one: see output_tables)
     std::vector<output_use> m_out_use;
+    std::vector<std::size_t> m_out_stations;                  // a phasor output's stations (0 otherwise)
+    std::vector<std::vector<std::complex<double>>> m_out_phasor; // a phasor output's sums over the last cycle, per station
+    std::vector<std::complex<double>> m_rot;                  // e^{j w_s t_b} at the current block's start, per station
+    Eigen::VectorXd m_yp;                                     // a phasor output's block sums (real, imaginary per station)
     row_tables m_end, m_end_last;                             // the state after K steps and after the last block's steps
     std::vector<double> m_out_mean, m_out_peak, m_out_last;
     std::vector<std::complex<double>> m_ref_phasor;           // e^{-j 2 pi k / N}, k = 1..N
