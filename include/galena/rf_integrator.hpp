@@ -75,11 +75,13 @@ struct rf_stats {
 /// currents j_0 .. j_K, so every output row r (the port, each added output, each state at the block end)
 /// at local step k is
 ///     y_k = M_r[k] [x_b; Re(p P); Im(p P)] + sum_{i <= k} J_r[k][i] j_i
-/// with M_r and J_r tabulated once at construction from powers of e^{Ah}, W0 and W1. Per block: one small
+/// with M_r and J_r projected once (at construction, and at each retune) from state-level responses built
+/// by recursion (Phi^k, Phi^d g0, Phi^d g1 and each station's source response). Per block: one small
 /// matrix-vector product gives every step's free port voltage; per step only the scalar junction equation
-/// and a dot product over the block's earlier currents (about K/2 terms) remain; the outputs and the block's
-/// end state follow from two more products. No per-step work grows with the number of stations, and none
-/// is O(n^2) in the number of states.
+/// remains, and each solved current is added to the later steps' free voltages (about K/2 multiply-adds,
+/// one of them on the chain to the next step); the outputs and the block's end state follow from two more
+/// products. The block products run in one kernel built for the host's vector unit (block_product.hpp). No
+/// per-step work grows with the number of stations, and none is O(n^2) in the number of states.
 /// Not for networks without a junction port, or sources other than carriers with (complex) envelopes.
 class rf_integrator {
 public:
