@@ -290,8 +290,7 @@ render_metrics measure_render(std::span<const double> ev, double fs, const circu
                                        ev.size(), fs, rm.settling.settle_s, rm.settling.basis));
     // A little more settling for a fast transform length, unless that would cut the window below what the
     // tone analysis needs (4 periods of the lower tone and 64 samples, as analyze_tone and analyze_two_tone).
-    const std::size_t trimmed = fft_friendly_length(ev.size() - skip);
-    if (static_cast<double>(trimmed) >= (q.tone_hz > 0.0 ? std::max(64.0, 4.0 * fs / q.tone_hz) : 64.0)) skip = ev.size() - trimmed;
+    skip = fft_friendly_start(ev.size(), skip, q.tone_hz > 0.0 ? std::max(64.0, 4.0 * fs / q.tone_hz) : 64.0);
     const std::span<const double> win = ev.subspan(skip);
     const double hi = std::min(q.band_high_hz, 0.5 * fs);
     const double lo = std::min(q.band_low_hz, 0.5 * hi);

@@ -94,11 +94,10 @@ measured measure_receiver_job(const scenario& s, std::span<const float> earpiece
     auto skip = std::min(earpiece_v.size(), static_cast<std::size_t>(std::ceil(sw.settle_s * fs_hz)));
     // A fast transform length (metrics.hpp), unless that would cut the window below what the analysis needs:
     // 4 periods of the wanted tone and 64 samples (analyze_tone), 8 per fitted coefficient (tones and whistles).
-    const std::size_t trimmed = fft_friendly_length(earpiece_v.size() - skip);
     const auto& first = s.stations.front();
     double need = std::max(64.0, 8.0 * static_cast<double>(4 * s.stations.size() + 1));
     if (first.kind == programme_kind::tone && first.tone_hz > 0.0) need = std::max(need, 4.0 * fs_hz / first.tone_hz);
-    if (static_cast<double>(trimmed) >= need) skip = earpiece_v.size() - trimmed;
+    skip = fft_friendly_start(earpiece_v.size(), skip, need);
     const std::vector<double> v(earpiece_v.begin() + static_cast<std::ptrdiff_t>(skip), earpiece_v.end());
     nlohmann::json j = to_json(measure_levels(v, fs_hz, 20.0, std::min(10000.0, 0.45 * fs_hz)));
     std::vector<warning> w = warnings;

@@ -256,6 +256,13 @@ amplitude_spectrum compute_spectrum(std::span<const double> samples, double fs, 
     return s;
 }
 
+std::size_t fft_friendly_start(std::size_t total, std::size_t skip, double min_samples) noexcept
+{
+    if (skip >= total) return skip;
+    const std::size_t trimmed = fft_friendly_length(total - skip);
+    return static_cast<double>(trimmed) >= min_samples ? total - trimmed : skip;
+}
+
 std::size_t fft_friendly_length(std::size_t n) noexcept
 {
     auto smooth = [](std::size_t m) {

@@ -282,3 +282,16 @@ TEST_CASE("fft_friendly_length: the largest 7-smooth length not above n")
     }
     for (std::size_t n : {2001u, 20011u, 71943u, 480001u}) CHECK(fft_friendly_length(n) >= n - n / 100);
 }
+
+TEST_CASE("fft_friendly_start: the window's start moved so its length is FFT-friendly, unless that cuts below the need")
+{
+    // 72000 samples with 57 to skip leave 71943 = 3 x 23981: the start moves to 72000 - 71680 = 320. A need of
+    // 71681 samples keeps the start at 57; a need of exactly 71680 moves it. A 97-sample window needing 97
+    // stays; a skip at the end stays.
+    CHECK(fft_friendly_start(72000, 57, 64.0) == 320);
+    CHECK(fft_friendly_start(72000, 57, 71681.0) == 57);
+    CHECK(fft_friendly_start(72000, 57, 71680.0) == 320);
+    CHECK(fft_friendly_start(197, 100, 97.0) == 100);
+    CHECK(fft_friendly_start(197, 100, 96.0) == 101);
+    CHECK(fft_friendly_start(50, 50, 1.0) == 50);
+}

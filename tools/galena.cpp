@@ -291,7 +291,7 @@ int main(int argc, char** argv)
         ->capture_default_str()->transform(engineering(galena::unit::second));
     dial->add_option("--level-window", dl_window, "each station's level is measured over windows of this length, s")
         ->capture_default_str()->transform(engineering(galena::unit::second));
-    dial->add_option("--steps-per-cycle", dl_steps, "steps per cycle of the highest dial frequency (even, 8-4096)")->capture_default_str();
+    dial->add_option("--steps-per-cycle", dl_steps, "steps per cycle of the tuned carrier, at least (even, 8-4096)")->capture_default_str();
     dial->add_flag("--overwrite", overwrite, "replace existing output files");
     dial->add_flag("--quiet,-q", quiet, "no progress output");
 

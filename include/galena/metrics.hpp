@@ -57,6 +57,11 @@ struct amplitude_spectrum {
 /// 0.10 s to plan and 6 ms to run; 71680 = 2^11 x 5 x 7 0.02 s and 0.6 ms). Within 1 % of n above 2000.
 [[nodiscard]] std::size_t fft_friendly_length(std::size_t n) noexcept;
 
+/// The start of an analysis window over samples [skip, total) moved later so that its length is
+/// fft_friendly_length(total - skip), unless that would leave fewer than `min_samples` (what the analysis
+/// needs): then `skip` itself. skip <= total.
+[[nodiscard]] std::size_t fft_friendly_start(std::size_t total, std::size_t skip, double min_samples) noexcept;
+
 /// RMS, V, of the part of `samples` inside [low_hz, high_hz] (DC excluded even when low_hz = 0), by
 /// Parseval's theorem on the rectangular-window FFT of the whole span. For stationary signals whose span is
 /// not a whole number of cycles the leakage moves a little energy across the band edges.
