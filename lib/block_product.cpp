@@ -12,20 +12,13 @@ namespace galena::detail {
 
 namespace {
 
-// The helpers below are always inlined, so no vector crosses a call boundary (GCC's ABI note does not apply).
-#pragma GCC diagnostic ignored "-Wpsabi"
-
 /// Four doubles (GCC's generic vectors: one AVX register on x86-64-v3, two SSE2 registers on the baseline).
 typedef double four __attribute__((vector_size(32)));
 
-[[gnu::always_inline]] inline four load(const double* p) noexcept
-{
-    four v;
-    std::memcpy(&v, p, sizeof v);
-    return v;
-}
+// Vectors pass by reference only, so no vector crosses a call boundary by value (no ABI question).
+[[gnu::always_inline]] inline void load(four& v, const double* p) noexcept { std::memcpy(&v, p, sizeof v); }
 
-[[gnu::always_inline]] inline void store(double* p, four v) noexcept { std::memcpy(p, &v, sizeof v); }
+[[gnu::always_inline]] inline void store(double* p, const four& v) noexcept { std::memcpy(p, &v, sizeof v); }
 
 /// 4 V rows of y = M x (+ y): the sums of the even and of the odd columns kept in registers across all
 /// columns (two independent chains per vector hide the multiply-add latency), one store per row at the end.
@@ -40,16 +33,31 @@ template <int V>
         const double* p = m + c * ld;
         const four x0 = four{1.0, 1.0, 1.0, 1.0} * x[c], x1 = four{1.0, 1.0, 1.0, 1.0} * x[c + 1];
         for (int i = 0; i < V; ++i) {
-            a[i] += load(p + 4 * i) * x0;
-            b[i] += load(p + ld + 4 * i) * x1;
+            four u, w;
+            load(u, p + 4 * i);
+            load(w, p + ld + 4 * i);
+            a[i] += u * x0;
+            b[i] += w * x1;
         }
     }
     if (c < cols) {
         const double* p = m + c * ld;
         const four x0 = four{1.0, 1.0, 1.0, 1.0} * x[c];
-        for (int i = 0; i < V; ++i) a[i] += load(p + 4 * i) * x0;
+        for (int i = 0; i < V; ++i) {
+            four u;
+            load(u, p + 4 * i);
+            a[i] += u * x0;
+        }
     }
-    for (int i = 0; i < V; ++i) store(y + 4 * i, (accumulate ? load(y + 4 * i) : four{0.0, 0.0, 0.0, 0.0}) + (a[i] + b[i]));
+    for (int i = 0; i < V; ++i) {
+        four sum = a[i] + b[i];
+        if (accumulate) {
+            four old;
+            load(old, y + 4 * i);
+            sum = old + sum;
+        }
+        store(y + 4 * i, sum);
+    }
 }
 
 } // namespace
