@@ -23,6 +23,41 @@ constexpr double bdf2_gain = 1.5;
 /// The carrier phasors at a cycle's start are set exactly from the cycle count this often, and advanced by
 /// one rotation per cycle in between.
 constexpr std::size_t phasor_anchor_cycles = 256;
+
+/// e^{m} for a badly scaled m: balanced first (Parlett & Reinsch's diagonal scaling by powers of 2, exact in
+/// floating point: the off-diagonal row and column 1-norms of each index brought within a factor of 2), so the
+/// scaling-and-squaring sees the spread of the dynamics rather than of the element values, then
+/// e^{m} = D e^{D^-1 m D} D^-1.
+template <class Matrix>
+Matrix balanced_exp(Matrix m)
+{
+    const Eigen::Index n = m.rows();
+    Eigen::VectorXd d = Eigen::VectorXd::Ones(n);
+    for (bool done = false; !done;) {
+        done = true;
+        for (Eigen::Index i = 0; i < n; ++i) {
+            double c = m.col(i).cwiseAbs().sum() - std::abs(m(i, i));
+            double r = m.row(i).cwiseAbs().sum() - std::abs(m(i, i));
+            if (!(c > 0.0) || !(r > 0.0) || !std::isfinite(c + r)) continue;
+            const double s = c + r;
+            double f = 1.0;
+            while (c < 0.5 * r) f *= 2.0, c *= 4.0;
+            while (c > 2.0 * r) f *= 0.5, c *= 0.25;
+            if ((c + r) / f < 0.95 * s) {
+                done = false;
+                d[i] *= f;
+                m.row(i) /= f;
+                m.col(i) *= f;
+            }
+        }
+    }
+    Matrix e = m.exp();
+    for (Eigen::Index i = 0; i < n; ++i) {
+        e.row(i) *= d[i];
+        e.col(i) /= d[i];
+    }
+    return e;
+}
 } // namespace
 
 rf_integrator::rf_integrator(const state_space& ss, int input, const junction_law& junction, const station_source& stations,
@@ -91,7 +126,7 @@ void rf_integrator::set_network(const state_space& ss, int input)
         m.topLeftCorner(n, n) = ss.a;
         m.block(0, n, n, 1) = ss.bj;
         m(n, n + 1) = 1.0 / m_h;
-        const Eigen::MatrixXd e = (m * m_h).exp();
+        const Eigen::MatrixXd e = balanced_exp(Eigen::MatrixXd(m * m_h));
         m_phi = e.topLeftCorner(n, n);
         const Eigen::VectorXd gam0 = e.block(0, n, n, 1);     // int e^{A(h-s)} b_j ds
         const Eigen::VectorXd gam1 = e.block(0, n + 1, n, 1); // int e^{A(h-s)} b_j s/h ds
@@ -107,7 +142,7 @@ void rf_integrator::set_network(const state_space& ss, int input)
         m(n, n) = std::complex<double>(0.0, w);
         m(n + 1, n + 1) = std::complex<double>(0.0, w);
         m(n, n + 1) = 1.0;
-        const Eigen::MatrixXcd e = (m * std::complex<double>(m_h, 0.0)).exp();
+        const Eigen::MatrixXcd e = balanced_exp(Eigen::MatrixXcd(m * std::complex<double>(m_h, 0.0)));
         m_w0.emplace_back(e.block(0, n, n, 1));
         m_w1.emplace_back(e.block(0, n + 1, n, 1));
     }

@@ -145,7 +145,9 @@ TEST_CASE("rf_integrator: a 1 MHz resonance stays within 1e-5 relative at 32 ste
         const double phase = std::arg(h);
         MESSAGE(fmt::format("N = {}: phase at f0 {:.3g} rad, |H| = {:.9f}", n, phase, std::abs(h)));
         CHECK(std::fabs(phase) / (2.0 * 100.0) < 1e-5);
-        CHECK(std::fabs(phase) < 1e-6); // measured 4e-12 rad: the discretisation is exact for a linear network
+        // The discretisation is exact for a linear network: what is left is the step exponentials' rounding,
+        // measured 4.9e-14 (N = 16) and 2.8e-13 rad (N = 32); 4e-12 before they were balanced (rf_integrator.cpp).
+        CHECK(std::fabs(phase) < 1e-12);
         CHECK(std::abs(h) == doctest::Approx(1.0).epsilon(1e-7)); // |I R / E| = 1 at resonance
     }
 }

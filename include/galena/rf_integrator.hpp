@@ -61,10 +61,12 @@ struct rf_stats {
 /// The discretisation error is second order: that of the junction current's piecewise-linear form and of
 /// the BDF2 charge derivative. The remainder must have a positive slope (C(v) >= C_lin, see front_end.hpp):
 /// an implicit rule on a negative remainder was measured unstable. The linear network, the tuned circuit's
-/// resonance and every carrier are exact. In a tuned set the detector conducts for about 20 ns per 1 us
-/// cycle, less than one step at N = 32: the piecewise-linear current then leaves the detected DC about
-/// 0.2-0.3 % high (waveform relRMS 2.1e-3 to 2.8e-3 against ngspice; 3.7e-4 to 5.6e-4 at N = 64, 1.4e-4 to
-/// 1.9e-4 at N = 256, tests/receiver_reference_test.cpp).
+/// resonance and every carrier are exact (the step exponentials are taken after balancing the matrix: a
+/// tuned set's A has entries near 1e17 1/s beside a spectral radius near 6e11, and plain scaling-and-squaring
+/// left them about 1.5e-7 off). In a tuned set the detector conducts for about 20 ns per 1 us cycle, less than
+/// one step at N = 32: the piecewise-linear current then leaves the detected DC about 0.2-0.3 % high
+/// (waveform relRMS 2.3e-3 to 3.0e-3 against ngspice; 6.1e-4 to 8.0e-4 at N = 64, 5.2e-5 to 1.05e-4 at
+/// N = 256, tests/receiver_reference_test.cpp).
 /// The Newton starts from the law linearised at the same phase one cycle earlier and solved with this step's
 /// linear relation v = alpha + beta J(v): about one law evaluation per step.
 ///
