@@ -175,14 +175,11 @@ void rf_integrator::set_network(const state_space& ss, int input)
     }
     // The port, and the state after a whole block and after the cycle's last (possibly shorter) block.
     m_port = tabulate(ss.port_c, Eigen::VectorXd::Constant(1, ss.port_d(input)), Eigen::VectorXd::Constant(1, ss.port_dj), m_block, false);
-    m_port.jc = m_port.j;
     const Eigen::MatrixXd eye = Eigen::MatrixXd::Identity(n, n);
     const Eigen::VectorXd zero = Eigen::VectorXd::Zero(n);
     m_end = tabulate(eye, zero, zero, m_block, true);
     const int last = last_block_steps();
     m_end_last = last == m_block ? m_end : tabulate(eye, zero, zero, last, true);
-    m_end.jc = m_end.j;
-    m_end_last.jc = m_end_last.j;
 }
 
 void rf_integrator::retune(const state_space& ss, int input, const Eigen::VectorXd& x, std::span<const output_row> outputs, int steps_per_cycle)
@@ -225,7 +222,7 @@ rf_integrator::row_tables rf_integrator::tabulate(const Eigen::MatrixXd& c, cons
     const Eigen::Index out_rows = last_only ? rows : length;
     row_tables t;
     t.m = Eigen::MatrixXd::Zero(out_rows, cols);
-    t.j = row_major::Zero(out_rows, length + 1);
+    t.j = Eigen::MatrixXd::Zero(out_rows, length + 1);
     const Eigen::MatrixXd cg0 = c * m_resp.g0_pow, cg1 = c * m_resp.g1_pow; // rows x K: c Phi^d g0, c Phi^d g1
     std::vector<Eigen::MatrixXcd> cs(static_cast<std::size_t>(4 * ns));     // rows x (K + 1): c X_q,k per station
     for (std::size_t sq = 0; sq < cs.size(); ++sq) cs[sq] = c.cast<std::complex<double>>() * m_resp.source[sq];
@@ -263,10 +260,7 @@ rf_integrator::row_tables rf_integrator::output_tables(const Eigen::RowVectorXd&
 {
     const Eigen::VectorXd du = Eigen::VectorXd::Constant(1, d_u), dj = Eigen::VectorXd::Constant(1, d_j);
     row_tables full = tabulate(c, du, dj, m_block, false);
-    if (use == output_use::every_step) {
-        full.jc = full.j;
-        return full;
-    }
+    if (use == output_use::every_step) return full;
     const int last = last_block_steps();
     const row_tables tail = last == m_block ? full : tabulate(c, du, dj, last, false);
     if (use == output_use::phasors) {
@@ -276,7 +270,7 @@ rf_integrator::row_tables rf_integrator::output_tables(const Eigen::RowVectorXd&
         const auto ss = static_cast<Eigen::Index>(stations);
         row_tables t;
         t.m = Eigen::MatrixXd::Zero(4 * ss, full.m.cols());
-        t.jc = Eigen::MatrixXd::Zero(4 * ss, m_block + 1);
+        t.j = Eigen::MatrixXd::Zero(4 * ss, m_block + 1);
         for (int part = 0; part < 2; ++part) {
             const row_tables& b = part == 0 ? full : tail;
             const int len = part == 0 ? m_block : last;
@@ -286,8 +280,8 @@ rf_integrator::row_tables rf_integrator::output_tables(const Eigen::RowVectorXd&
                     const std::complex<double> e = std::polar(1.0, -static_cast<double>(k) * m_wh[static_cast<std::size_t>(s)]);
                     t.m.row(r) += e.real() * b.m.row(k - 1);
                     t.m.row(r + 1) += e.imag() * b.m.row(k - 1);
-                    t.jc.row(r).head(len + 1) += e.real() * b.j.row(k - 1);
-                    t.jc.row(r + 1).head(len + 1) += e.imag() * b.j.row(k - 1);
+                    t.j.row(r).head(len + 1) += e.real() * b.j.row(k - 1);
+                    t.j.row(r + 1).head(len + 1) += e.imag() * b.j.row(k - 1);
                 }
             }
         }
@@ -295,7 +289,7 @@ rf_integrator::row_tables rf_integrator::output_tables(const Eigen::RowVectorXd&
     }
     row_tables t;
     t.m = Eigen::MatrixXd::Zero(3, full.m.cols());
-    t.j = row_major::Zero(3, m_block + 1);
+    t.j = Eigen::MatrixXd::Zero(3, m_block + 1);
     t.m.row(0) = full.m.colwise().sum();
     t.j.row(0) = full.j.colwise().sum();
     t.m.row(1) = tail.m.colwise().sum() - 0.5 * tail.m.row(last - 1);
@@ -519,8 +513,8 @@ void rf_integrator::run_cycle(std::span<double> out)
         // later steps (one multiply-add stands between a step's current and the next step's alpha).
         detail::column_major_product(m_port.m.data(), m_port.m.rows(), len, m_port.m.cols(), m_z.data(), m_free.data(), false);
         m_jb[0] = m_j;
-        const double* port_j = m_port.jc.data();
-        const Eigen::Index port_ld = m_port.jc.rows();
+        const double* port_j = m_port.j.data();
+        const Eigen::Index port_ld = m_port.j.rows();
         for (int r = 0; r < len; ++r) m_free[r] += port_j[r] * m_j;
         for (int k = 1; k <= len; ++k) {
             const auto kk = static_cast<std::size_t>(k0 + k - 1);
@@ -554,7 +548,7 @@ void rf_integrator::run_cycle(std::span<double> out)
                 const auto two_s = static_cast<Eigen::Index>(2 * m_out_stations[o]);
                 const Eigen::Index at = k0 + len == m_n ? two_s : 0;
                 detail::column_major_product(t.m.data() + at, t.m.rows(), two_s, t.m.cols(), m_z.data(), m_yp.data(), false);
-                detail::column_major_product(t.jc.data() + at, t.jc.rows(), two_s, len + 1, jb.data(), m_yp.data(), true);
+                detail::column_major_product(t.j.data() + at, t.j.rows(), two_s, len + 1, jb.data(), m_yp.data(), true);
                 for (std::size_t s = 0; s < m_out_stations[o]; ++s)
                     m_out_phasor[o][s] += std::conj(m_rot[s]) * std::complex<double>(m_yp[static_cast<Eigen::Index>(2 * s)], m_yp[static_cast<Eigen::Index>(2 * s + 1)]);
                 continue;
@@ -567,7 +561,7 @@ void rf_integrator::run_cycle(std::span<double> out)
                 continue;
             }
             detail::column_major_product(t.m.data(), t.m.rows(), len, t.m.cols(), m_z.data(), m_y.data(), false);
-            detail::column_major_product(t.jc.data(), t.jc.rows(), len, len + 1, jb.data(), m_y.data(), true);
+            detail::column_major_product(t.j.data(), t.j.rows(), len, len + 1, jb.data(), m_y.data(), true);
             for (int k = 1; k <= len; ++k) {
                 const double y = m_y[k - 1];
                 const bool cycle_end = k0 + k == m_n;
@@ -579,7 +573,7 @@ void rf_integrator::run_cycle(std::span<double> out)
         }
         const row_tables& e = len == m_block ? m_end : m_end_last;
         detail::column_major_product(e.m.data(), e.m.rows(), n, e.m.cols(), m_z.data(), m_x.data(), false);
-        detail::column_major_product(e.jc.data(), e.jc.rows(), n, len + 1, jb.data(), m_x.data(), true);
+        detail::column_major_product(e.j.data(), e.j.rows(), n, len + 1, jb.data(), m_x.data(), true);
     }
     for (std::size_t s = 0; s < ns; ++s) m_cycle_phasor[s] *= m_cycle_step_phasor[s];
     m_phasor_cycle = static_cast<long long>(c) + 1;

@@ -203,21 +203,29 @@ TEST_CASE("rf_integrator: envelope low-pass of a tuned circuit, m_out/m_in = 1/s
 }
 
 namespace {
+/// A single-coil set tuned to 1 MHz by a 240 uH coil of unloaded Q `coil_q`: the antenna (series C and R) on
+/// turns fraction `antenna_tap`, the detector on `detector_tap`.
+receiver_network single_coil_set(const circuit_params& cp, double antenna_c_f, double antenna_r_ohm, double coil_q, double antenna_tap,
+                                 double detector_tap)
+{
+    antenna_params ant;
+    ant.capacitance_f = antenna_c_f;
+    ant.resistance_ohm = antenna_r_ohm;
+    tuner_params t;
+    t.layout = tuner_layout::single_coil;
+    t.coil_h = 240e-6;
+    t.coil_q = coil_q;
+    t.tuned_hz = 1e6;
+    t.antenna_tap = antenna_tap;
+    t.detector_tap = detector_tap;
+    return build_receiver_network(cp, ant, t);
+}
+
 /// Runs a single-coil set with the detector on tap n and returns the detector's effective RF admittance
 /// J1/V1 at the carrier (S), measured from the last 200 cycles of 1200.
 std::complex<double> detector_admittance(const circuit_params& cp, double tap, double emf_peak_v, receiver_network* out = nullptr)
 {
-    antenna_params ant;
-    ant.capacitance_f = 1e-12;
-    ant.resistance_ohm = 10.0;
-    tuner_params t;
-    t.layout = tuner_layout::single_coil;
-    t.coil_h = 240e-6;
-    t.coil_q = 200.0;
-    t.tuned_hz = 1e6;
-    t.antenna_tap = 1.0;
-    t.detector_tap = tap;
-    receiver_network rn = build_receiver_network(cp, ant, t);
+    receiver_network rn = single_coil_set(cp, 1e-12, 10.0, 200.0, 1.0, tap);
     const state_space ss = rn.net.assemble();
     one_station st(1e6, emf_peak_v, 0.0, 1000.0);
     rf_settings s;
@@ -289,17 +297,7 @@ struct tapped_set {
         cp.earpiece.capacitance_f = 10e-9;
         cp.load.bleeder_ohm = 47e3;
         cp.load.filter_capacitance_f = 1e-9;
-        antenna_params ant;
-        ant.capacitance_f = 100e-12;
-        ant.resistance_ohm = 25.0;
-        tuner_params t;
-        t.layout = tuner_layout::single_coil;
-        t.coil_h = 240e-6;
-        t.coil_q = 100.0;
-        t.tuned_hz = 1e6;
-        t.antenna_tap = 0.3;
-        t.detector_tap = 0.5;
-        rn = build_receiver_network(cp, ant, t);
+        rn = single_coil_set(cp, 100e-12, 25.0, 100.0, 0.3, 0.5);
         ss = rn.net.assemble();
     }
 };

@@ -155,11 +155,9 @@ public:
 private:
     /// Tables of one output row (c, d_u, d_j): M (K x m, m = n + 8 stations), J (K x (K + 1)), row k-1 for
     /// local step end k; see the class comment.
-    using row_major = Eigen::Matrix<double, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
     struct row_tables {
         Eigen::MatrixXd m;
-        row_major j;
-        Eigen::MatrixXd jc; ///< j column-major, where the block's product needs it (every_step outputs, the end state)
+        Eigen::MatrixXd j; ///< column-major, as the block kernel reads it (block_product.hpp)
     };
     /// The responses over a block at the state level, from which every row's tables are projected (tabulate):
     /// Phi^k (k = 0..K), Phi^d g0 and Phi^d g1 (columns d = 0..K-1), and per station and Taylor power q
