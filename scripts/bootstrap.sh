@@ -50,7 +50,7 @@ if [ "$mode" = fuzz ] || [ "$mode" = fuzz-open ]; then
   # they are. A crash, leak, sanitizer report or broken property fails this step and leaves the input in
   # build-fuzz/crash-*.
   #   fuzz       (CI): deterministic. A fixed seed (-seed=1) and a fixed number of executions per harness
-  #              (GALENA_FUZZ_RUNS_SCENARIO, default 400000; GALENA_FUZZ_RUNS_WAV, default 20000), starting
+  #              (GALENA_FUZZ_RUNS_SCENARIO, default 200000; GALENA_FUZZ_RUNS_WAV, default 10000), starting
   #              from the seed corpus; max_total_time only bounds a very slow machine.
   #   fuzz-open  (developers): open-ended, a random seed, GALENA_FUZZ_SECONDS per harness (default 600).
   #              Copy what it finds (build-fuzz/crash-*) into tests/fuzz/corpus/<harness>/ as a seed named
@@ -66,8 +66,8 @@ if [ "$mode" = fuzz ] || [ "$mode" = fuzz-open ]; then
     max_len=8192
     [ "$h" = wav ] && max_len=65536
     if [ "$mode" = fuzz ]; then
-      runs=400000
-      [ "$h" = wav ] && runs=20000
+      runs=200000
+      [ "$h" = wav ] && runs=10000
       [ "$h" = scenario ] && runs="${GALENA_FUZZ_RUNS_SCENARIO:-$runs}"
       [ "$h" = wav ] && runs="${GALENA_FUZZ_RUNS_WAV:-$runs}"
       limits=(-seed=1 -runs="$runs" -max_total_time=900)

@@ -33,6 +33,12 @@ const std::filesystem::path& scratch()
         const char* dir = std::getenv("TMPDIR");
         return std::filesystem::path(dir != nullptr ? dir : "/tmp") / ("galena-wav-fuzz-" + std::to_string(getpid()) + ".wav");
     }();
+    // libFuzzer ends a bounded run with exit(): the scratch file goes with the process.
+    static const bool cleanup = std::atexit([] {
+        std::error_code ec;
+        std::filesystem::remove(p, ec);
+    }) == 0;
+    (void)cleanup;
     return p;
 }
 
