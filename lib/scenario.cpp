@@ -67,6 +67,17 @@ double as_number(const toml::node& n, const std::string& field, const std::strin
     throw config_error(fmt::format("{}: {} = {}: must be a number, e.g. 47e3 or \"47k\" (README \"Values\")", where, field, node_text(n)));
 }
 
+/// Whether a tuner.capacitance_f node sets the dial: a capacitance other than 0 (0 asks for it to be solved
+/// from tuned_hz). A value that does not parse counts as set: its key reports it.
+bool sets_dial_capacitance(const toml::node& n)
+{
+    try {
+        return as_number(n, "tuner.capacitance_f", "", unit::farad) != 0.0;
+    } catch (const config_error&) {
+        return true;
+    }
+}
+
 std::string as_string(const toml::node& n, const std::string& field, const std::string& where)
 {
     if (auto s = n.value_exact<std::string>()) return *s;
@@ -523,11 +534,19 @@ std::map<std::string, std::string> apply_overrides(toml::table& root, const std:
         // A diode file on the command line replaces a preset in the scenario file, and the other way round.
         if (section == "diode" && key == "file" && !origin.contains("diode.preset")) tab->erase("preset");
         if (section == "diode" && key == "preset" && !origin.contains("diode.file")) tab->erase("file");
+        // The dial is set one way at a time: a tuned frequency replaces a tuning capacitance, and a capacitance
+        // (not 0, which asks for it to be solved) a tuned frequency, whether the file or an earlier override set
+        // it (the last override wins: a pack item's `set` on top of the command line's).
         try {
             toml::table parsed = toml::parse("v = " + value);
             tab->insert_or_assign(key, *parsed["v"].node());
         } catch (const toml::parse_error&) {
             tab->insert_or_assign(key, value); // a bare word: a string
+        }
+        if (section == "tuner" && (key == "tuned_hz" || (key == "capacitance_f" && sets_dial_capacitance(*tab->get(key))))) {
+            const std::string other = key == "tuned_hz" ? "capacitance_f" : "tuned_hz";
+            tab->erase(other);
+            origin.erase("tuner." + other);
         }
     }
     return origin;
@@ -776,6 +795,12 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
 
     scenario s;
     s.file = file;
+    // The dial is set by the tuning capacitance or solved from a tuned frequency: not both.
+    if (const toml::node* cap = root.at_path("tuner.capacitance_f").node();
+        cap != nullptr && sets_dial_capacitance(*cap) && root.at_path("tuner.tuned_hz").node() != nullptr)
+        throw config_error(fmt::format("{}: tuner.capacitance_f and tuner.tuned_hz: give one of them (the capacitor sets the dial; "
+                                       "tuned_hz solves the capacitor for that frequency)",
+                                       origin_of(*cap, "tuner.capacitance_f", file, overridden)));
     // Preset or diode file first, so explicit diode fields override it.
     const toml::node* diode_file_node = root.at_path("diode.file").node();
     if (diode_file_node != nullptr && root.at_path("diode.preset").node() != nullptr)
@@ -1107,9 +1132,12 @@ std::string to_toml(const scenario& s)
                      num(a.capacitance_f), num(a.inductance_h), num(a.resistance_ohm));
     o += fmt::format("noise_field_density = {}\nnoise_half_band_hz = {}\nnoise_seed = {}\n", num(s.noise.field_density),
                      num(s.noise.half_band_hz), s.noise.seed);
-    o += fmt::format("\n[tuner]\nlayout = \"{}\"\ncoil_h = {}\ncoil_q = {}\ntuned_hz = {}\ncapacitance_f = {}\ndetector_tap = {}\n"
+    // The dial as it was set: a tuning capacitance, or the frequency it is solved for (capacitance 0).
+    const std::string dial = t.capacitance_f != 0.0 ? fmt::format("capacitance_f = {}\n", num(t.capacitance_f))
+                                                    : fmt::format("tuned_hz = {}\ncapacitance_f = 0\n", num(t.tuned_hz));
+    o += fmt::format("\n[tuner]\nlayout = \"{}\"\ncoil_h = {}\ncoil_q = {}\n{}detector_tap = {}\n"
                      "antenna_tap = {}\nantenna_coil_h = {}\nantenna_coil_q = {}\ncoupling = {}\ndc_return_ohm = {}\n",
-                     to_string(t.layout), num(t.coil_h), num(t.coil_q), num(t.tuned_hz), num(t.capacitance_f), num(t.detector_tap),
+                     to_string(t.layout), num(t.coil_h), num(t.coil_q), dial, num(t.detector_tap),
                      num(t.antenna_tap), num(t.antenna_coil_h), num(t.antenna_coil_q), num(t.coupling), num(t.dc_return_ohm));
     for (const auto& st : s.stations) {
         o += fmt::format("\n[[station]]\nname = {}\ncarrier_hz = {}\nfield_v_per_m = {}\nmodulation_index = {}\n", toml_quote(st.params.name),

@@ -204,3 +204,29 @@ field_v_per_m = 5e-3
                          doctest::Contains("rx.toml:12: station 2 \"next\": station.field_v_per_m = -1: must be > 0 and <= 100 V/m"),
                          config_error);
 }
+
+TEST_CASE("the dial is set one way: tuned_hz or capacitance_f, the last override wins, and the written scenario parses again")
+{
+    const std::string base = "[[station]]\ncarrier_hz = 1e6\nfield_v_per_m = 10e-3\nmodulation_index = 0.3\ntone_hz = 400\n"
+                             "[tuner]\nlayout = \"single-coil\"\ncoil_h = 240e-6\ncapacitance_f = \"104p\"\n";
+    // Both in the file: one line naming the file, the line and both keys.
+    CHECK_THROWS_WITH_AS(parse_scenario(base + "tuned_hz = \"900k\"\n", "both.toml"),
+                         doctest::Contains("both.toml:9: tuner.capacitance_f and tuner.tuned_hz: give one of them"), config_error);
+    // An override of one replaces the other, set in the file or by an earlier override.
+    const auto by_f = parse_scenario(base, "x.toml", {"tuner.tuned_hz=900k"});
+    CHECK(by_f.tuner.capacitance_f == 0.0);
+    CHECK(by_f.tuner.tuned_hz == 900e3);
+    const auto by_c = parse_scenario(base, "x.toml", {"tuner.tuned_hz=900k", "tuner.capacitance_f=120p"});
+    CHECK(by_c.tuner.capacitance_f == doctest::Approx(120e-12).epsilon(1e-15));
+    // capacitance_f = 0 asks for the capacitor to be solved: beside tuned_hz it is no conflict, and it leaves
+    // tuned_hz in place.
+    const auto solved = parse_scenario(base + "tuned_hz = \"900k\"\n", "x.toml", {"tuner.capacitance_f=0"});
+    CHECK(solved.tuner.tuned_hz == 900e3);
+    CHECK(solved.tuner.capacitance_f == 0.0);
+    // The written scenario carries the dial as it was set, and parses to the same dial.
+    for (const auto& s : {by_f, by_c}) {
+        const auto again = parse_scenario(to_toml(s), "y.toml");
+        CHECK(again.tuner.capacitance_f == s.tuner.capacitance_f);
+        if (s.tuner.capacitance_f == 0.0) CHECK(again.tuner.tuned_hz == s.tuner.tuned_hz);
+    }
+}

@@ -185,6 +185,29 @@ TEST_CASE("a render through the HTTP API has the metrics of the library's render
     CHECK(back.programme.duration_s == 0.3);
 }
 
+TEST_CASE("a base set by its tuning capacitor: \"tuned to\" starts blank and keeps the capacitor; a frequency typed there replaces it")
+{
+    auto o = options("dial-capacitor");
+    o.base_scenario = source_dir / "scenarios" / "crystal-set.toml"; // tuner.capacitance_f = 104.45e-12
+    galena::workbench bench(o);
+    const auto defaults = get(bench.port(), "/api/defaults");
+    REQUIRE(defaults.status == 200);
+    CHECK_FALSE(defaults.body["values"].contains("tuner.tuned_hz"));
+    CHECK(defaults.body["values"]["tuner.coil_h"].get<double>() == 240e-6);
+    // The page sends no blank optional field: the scenario keeps its capacitor.
+    const auto kept = post(bench.port(), "/api/scenario", json{{"load.bleeder_ohm", "68k"}}.dump());
+    REQUIRE_MESSAGE(kept.status == 200, kept.raw);
+    const fs::path d = test_tmp / "dial-capacitor";
+    write_file(d / "kept.toml", kept.raw);
+    CHECK(galena::load_scenario(d / "kept.toml").tuner.capacitance_f == 104.45e-12);
+    const auto moved = post(bench.port(), "/api/scenario", json{{"tuner.tuned_hz", "990k"}}.dump());
+    REQUIRE_MESSAGE(moved.status == 200, moved.raw);
+    write_file(d / "moved.toml", moved.raw);
+    const auto back = galena::load_scenario(d / "moved.toml");
+    CHECK(back.tuner.capacitance_f == 0.0);
+    CHECK(back.tuner.tuned_hz == 990e3);
+}
+
 TEST_CASE("physics through the API: a smaller bleeder discharges the filter more, so the DC level falls")
 {
     // The detector's DC output is the carrier peak less the drop that the load current makes across the

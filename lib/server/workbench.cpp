@@ -701,7 +701,9 @@ struct workbench::impl {
         v["tuner.layout"] = std::string(to_string(s.tuner.layout));
         v["tuner.coil_h"] = s.tuner.coil_h;
         v["tuner.coil_q"] = s.tuner.coil_q;
-        v["tuner.tuned_hz"] = s.tuner.tuned_hz;
+        // A base whose dial is a tuning capacitance leaves "tuned to" blank (the page then sends none and the
+        // capacitance stays); a frequency typed there replaces it (the scenario's rule).
+        if (s.tuner.capacitance_f == 0.0) v["tuner.tuned_hz"] = s.tuner.tuned_hz;
         v["tuner.detector_tap"] = s.tuner.detector_tap;
         v["tuner.antenna_tap"] = s.tuner.antenna_tap;
         v["tuner.coupling"] = s.tuner.coupling;
