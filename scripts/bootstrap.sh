@@ -37,9 +37,12 @@ jobs="$(nproc 2>/dev/null || echo 2)"
 if [ "$mode" = sanitize ]; then
   # The suite again under AddressSanitizer + UndefinedBehaviorSanitizer, less the tests labelled `slow`
   # (long physics references, run once in the Release pass) and the installed-package consumer test (it
-  # would build a consumer without the sanitizer runtime).
+  # would build a consumer without the sanitizer runtime). Built at -O1 with line tables only (-g1: reports
+  # still name file and line): about 2.2x quicker to compile than -O2 -g (measured on lib/scenario.cpp under
+  # ASan: 24 s against 54 s of CPU), and compiling was most of this step.
   san="${GALENA_SANITIZE_BUILD_DIR:-$here/build-asan}"
-  cmake -S "$here" -B "$san" -DCMAKE_BUILD_TYPE=RelWithDebInfo -DGALENA_SANITIZE=ON -DGALENA_BUILD_TESTS=ON
+  cmake -S "$here" -B "$san" -DCMAKE_BUILD_TYPE=RelWithDebInfo -DCMAKE_CXX_FLAGS_RELWITHDEBINFO="-O1 -g1" -DGALENA_SANITIZE=ON \
+        -DGALENA_BUILD_TESTS=ON
   cmake --build "$san" -j "$jobs"
   ctest --test-dir "$san" --output-on-failure -j "$jobs" -E package_consumer -LE slow
   exit 0
