@@ -502,6 +502,21 @@ std::map<std::string, std::string> apply_overrides(toml::table& root, const std:
                 } catch (const toml::parse_error&) {
                     at.table->insert_or_assign(at.key, value); // a bare word: a string
                 }
+                if (at.key == "audio") {
+                    // A clip named on the command line is relative to the current directory (as signal.audio).
+                    if (const auto str = at.table->get(at.key)->value<std::string>(); str && !str->empty()) {
+                        std::error_code ec;
+                        const fs::path abs = fs::absolute(fs::path(*str), ec);
+                        if (ec) throw config_error(fmt::format("--set {}: station.{}.audio: cannot resolve the path: {}", o, at.number, ec.message()));
+                        at.table->insert_or_assign(at.key, abs.string());
+                    }
+                }
+                // A station's programme is a test tone or a clip: either one set here replaces the other.
+                if (at.key == "audio" || at.key == "tone_hz") {
+                    const std::string other = at.key == "audio" ? "tone_hz" : "audio";
+                    at.table->erase(other);
+                    origin.erase(fmt::format("station.{}.{}", at.number, other));
+                }
                 continue;
             }
         }
@@ -864,6 +879,9 @@ scenario parse_scenario(const std::string& text, const fs::path& file, const std
             for (const toml::table* st : tabs) {
                 s.stations.emplace_back();
                 const std::string numbered = fmt::format("station.{}.", s.stations.size());
+                if (const toml::node* clip = st->get("audio"); clip != nullptr && st->contains("tone_hz"))
+                    throw config_error(fmt::format("{}: station {}: tone_hz and audio: give one of them (the programme is a test tone or a clip)",
+                                                   source_of(*clip, file), s.stations.size()));
                 for (const auto& [key_name, node] : *st) {
                     const std::string key(key_name.str());
                     const std::string field = "station." + key;

@@ -230,3 +230,19 @@ TEST_CASE("the dial is set one way: tuned_hz or capacitance_f, the last override
         if (s.tuner.capacitance_f == 0.0) CHECK(again.tuner.tuned_hz == s.tuner.tuned_hz);
     }
 }
+
+TEST_CASE("a station's programme is a tone or a clip: both in one table is refused; an override of either replaces the other")
+{
+    const std::string one = "[tuner]\nlayout = \"single-coil\"\n[[station]]\ncarrier_hz = 1e6\nfield_v_per_m = 10e-3\nmodulation_index = 0.3\n";
+    CHECK_THROWS_WITH_AS(parse_scenario(one + "tone_hz = 400\naudio = \"clip.wav\"\n", "both.toml"),
+                         doctest::Contains("both.toml:8: station 1: tone_hz and audio: give one of them"), config_error);
+    // A clip named on the command line replaces the tone, relative to the current directory (as signal.audio).
+    const auto clip = parse_scenario(one + "tone_hz = 400\n", "sub/x.toml", {"station.1.audio=clip.wav"});
+    REQUIRE(clip.stations.size() == 1);
+    CHECK(clip.stations[0].kind == programme_kind::clip);
+    CHECK(clip.stations[0].audio == std::filesystem::absolute("clip.wav"));
+    // And a tone replaces a clip.
+    const auto tone = parse_scenario(one + "audio = \"clip.wav\"\n", "x.toml", {"station.1.tone_hz=700"});
+    CHECK(tone.stations[0].kind == programme_kind::tone);
+    CHECK(tone.stations[0].tone_hz == 700.0);
+}
