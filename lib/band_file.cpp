@@ -116,7 +116,18 @@ band_spec parse_band(const std::string& text, const fs::path& file)
             number_at(*t, "field_v_per_m", sec + ".field_v_per_m", file, unit::none, above(0.0, 100.0, "V/m")).value_or(s.params.field_v_per_m);
         s.params.modulation_index =
             number_at(*t, "modulation_index", sec + ".modulation_index", file, unit::none, range(0.0, 1.0, "")).value_or(s.params.modulation_index);
-        const std::string prog = text_at(*t, "programme", sec + ".programme", file).value_or("speech-noise");
+        // Without `programme`, a station with tone_hz plays that tone and one with audio its clip (speech-like
+        // noise otherwise); a tone_hz or audio that the programme would not play is refused, not ignored.
+        const bool has_tone = t->contains("tone_hz"), has_clip = t->contains("audio");
+        if (has_tone && has_clip)
+            throw config_error(fmt::format("{}: {}: tone_hz and audio: give one of them (the programme is a tone or a clip)",
+                                           where(*t->get("audio"), file), sec));
+        const std::string prog =
+            text_at(*t, "programme", sec + ".programme", file).value_or(has_tone ? "tone" : has_clip ? "clip" : "speech-noise");
+        if ((has_tone && prog != "tone") || (has_clip && prog != "clip"))
+            throw config_error(fmt::format("{}: {}.{}: not played by programme = \"{}\" (give programme = \"{}\", or remove it)",
+                                           where(*t->get(has_tone ? "tone_hz" : "audio"), file), sec, has_tone ? "tone_hz" : "audio", prog,
+                                           has_tone ? "tone" : "clip"));
         if (prog == "tone") s.programme = band_programme::tone;
         else if (prog == "speech-noise") s.programme = band_programme::speech_noise;
         else if (prog == "clip") s.programme = band_programme::clip;

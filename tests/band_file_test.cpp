@@ -57,6 +57,20 @@ TEST_CASE("band files: mistakes name the file, the line, the field and the rule"
                          config_error);
 }
 
+TEST_CASE("a band station's programme: tone_hz alone plays that tone, audio alone its clip; one the programme would not play is refused")
+{
+    const std::string st = "[[station]]\ncarrier_hz = 1e6\n";
+    const auto tone = parse_band(st + "tone_hz = 700\n", "b.toml");
+    CHECK(tone.stations.at(0).programme == band_programme::tone);
+    CHECK(tone.stations.at(0).tone_hz == 700.0);
+    CHECK(parse_band(st + "audio = \"x.wav\"\n", "b.toml").stations.at(0).programme == band_programme::clip);
+    CHECK(parse_band(st, "b.toml").stations.at(0).programme == band_programme::speech_noise);
+    CHECK_THROWS_WITH_AS((void)parse_band(st + "programme = \"speech-noise\"\ntone_hz = 700\n", "b.toml"),
+                         doctest::Contains("b.toml:4: station.1.tone_hz: not played by programme = \"speech-noise\""), config_error);
+    CHECK_THROWS_WITH_AS((void)parse_band(st + "tone_hz = 700\naudio = \"x.wav\"\n", "b.toml"),
+                         doctest::Contains("b.toml:4: station.1: tone_hz and audio: give one of them"), config_error);
+}
+
 TEST_CASE("speech-like noise: seeded, bounded, and shaped as stated")
 {
     const speech_noise_modulation a(10.0, 7), b(10.0, 7), c(10.0, 8);
