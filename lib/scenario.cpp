@@ -475,6 +475,25 @@ station_target station_address(const std::string& o, const std::string& key, tom
     return t;
 }
 
+/// A file named on the command line (a clip, a diode file): relative to the current directory, not to the
+/// scenario file, so made absolute here. Throws config_error naming the override.
+std::string command_line_path(const std::string& o, const std::string& field, const std::string& path)
+{
+    std::error_code ec;
+    const fs::path abs = fs::absolute(fs::path(path), ec);
+    if (ec) throw config_error(fmt::format("--set {}: {}: cannot resolve the path: {}", o, field, ec.message()));
+    return abs.string();
+}
+
+/// Two keys that set one thing two ways (a tuned frequency or a tuning capacitance; a station's tone or
+/// clip): the one just set replaces `other` in `tab`, whether the file or an earlier override set it (the
+/// last override wins: a pack item's `set` on top of the command line's). `field` is other's origin name.
+void drop_alternative(toml::table& tab, std::map<std::string, std::string>& origin, const std::string& other, const std::string& field)
+{
+    tab.erase(other);
+    origin.erase(field);
+}
+
 /// Applies the overrides; returns, for each field set, the --set text that set it (for messages).
 std::map<std::string, std::string> apply_overrides(toml::table& root, const std::vector<std::string>& overrides)
 {
@@ -502,21 +521,14 @@ std::map<std::string, std::string> apply_overrides(toml::table& root, const std:
                 } catch (const toml::parse_error&) {
                     at.table->insert_or_assign(at.key, value); // a bare word: a string
                 }
+                // A station's programme is a test tone or a clip (a clip named here is relative to the current
+                // directory, as signal.audio).
                 if (at.key == "audio") {
-                    // A clip named on the command line is relative to the current directory (as signal.audio).
-                    if (const auto str = at.table->get(at.key)->value<std::string>(); str && !str->empty()) {
-                        std::error_code ec;
-                        const fs::path abs = fs::absolute(fs::path(*str), ec);
-                        if (ec) throw config_error(fmt::format("--set {}: station.{}.audio: cannot resolve the path: {}", o, at.number, ec.message()));
-                        at.table->insert_or_assign(at.key, abs.string());
-                    }
+                    if (const auto str = at.table->get(at.key)->value<std::string>(); str && !str->empty())
+                        at.table->insert_or_assign(at.key, command_line_path(o, fmt::format("station.{}.audio", at.number), *str));
+                    drop_alternative(*at.table, origin, "tone_hz", fmt::format("station.{}.tone_hz", at.number));
                 }
-                // A station's programme is a test tone or a clip: either one set here replaces the other.
-                if (at.key == "audio" || at.key == "tone_hz") {
-                    const std::string other = at.key == "audio" ? "tone_hz" : "audio";
-                    at.table->erase(other);
-                    origin.erase(fmt::format("station.{}.{}", at.number, other));
-                }
+                if (at.key == "tone_hz") drop_alternative(*at.table, origin, "audio", fmt::format("station.{}.audio", at.number));
                 continue;
             }
         }
@@ -539,30 +551,24 @@ std::map<std::string, std::string> apply_overrides(toml::table& root, const std:
             }
             if (path.empty())
                 throw config_error(fmt::format("--set {}: {}.{}: the {} path is empty", o, section, key, key == "audio" ? "clip" : "diode file"));
-            std::error_code ec;
-            const fs::path abs = fs::absolute(fs::path(path), ec);
-            if (ec) throw config_error(fmt::format("--set {}: {}.{}: cannot resolve the path: {}", o, section, key, ec.message()));
+            const std::string abs = command_line_path(o, section + "." + key, path);
             if (section == "diode" && !origin.contains("diode.preset")) tab->erase("preset");
-            tab->insert_or_assign(key, abs.string());
+            tab->insert_or_assign(key, abs);
             continue;
         }
         // A diode file on the command line replaces a preset in the scenario file, and the other way round.
         if (section == "diode" && key == "file" && !origin.contains("diode.preset")) tab->erase("preset");
         if (section == "diode" && key == "preset" && !origin.contains("diode.file")) tab->erase("file");
-        // The dial is set one way at a time: a tuned frequency replaces a tuning capacitance, and a capacitance
-        // (not 0, which asks for it to be solved) a tuned frequency, whether the file or an earlier override set
-        // it (the last override wins: a pack item's `set` on top of the command line's).
         try {
             toml::table parsed = toml::parse("v = " + value);
             tab->insert_or_assign(key, *parsed["v"].node());
         } catch (const toml::parse_error&) {
             tab->insert_or_assign(key, value); // a bare word: a string
         }
-        if (section == "tuner" && (key == "tuned_hz" || (key == "capacitance_f" && sets_dial_capacitance(*tab->get(key))))) {
-            const std::string other = key == "tuned_hz" ? "capacitance_f" : "tuned_hz";
-            tab->erase(other);
-            origin.erase("tuner." + other);
-        }
+        // The dial is set one way at a time: a tuned frequency, or a capacitance (0 asks for it to be solved).
+        if (section == "tuner" && key == "tuned_hz") drop_alternative(*tab, origin, "capacitance_f", "tuner.capacitance_f");
+        if (section == "tuner" && key == "capacitance_f" && sets_dial_capacitance(*tab->get(key)))
+            drop_alternative(*tab, origin, "tuned_hz", "tuner.tuned_hz");
     }
     return origin;
 }

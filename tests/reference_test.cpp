@@ -381,6 +381,19 @@ diode_params germanium_like()
     return d;
 }
 
+/// The bench detector these references share: a 20 kOhm generator, the diode, a 47 kOhm bleeder and a piezo
+/// earpiece of `earpiece_f`.
+circuit_params generator_detector(const diode_params& diode, double earpiece_f)
+{
+    circuit_params c;
+    c.source.resistance_ohm = 20e3;
+    c.diode = diode;
+    c.load.bleeder_ohm = 47e3;
+    c.earpiece.kind = earpiece_kind::piezo;
+    c.earpiece.capacitance_f = earpiece_f;
+    return c;
+}
+
 std::vector<spice_case> spice_cases()
 {
     std::vector<spice_case> v;
@@ -610,12 +623,7 @@ TEST_CASE("the audio path end to end against ngspice + scipy: render()'s earpiec
     // relRMS 2.4e-4 over the 384 compared samples (ngspice's own accuracy and resample_poly's Kaiser filter,
     // as in the comparisons above); bound 1e-3.
     const fs::path dir = test_tmp_dir("reference_audio_path");
-    circuit_params c;
-    c.source.resistance_ohm = 20e3;
-    c.diode = germanium_like();
-    c.load.bleeder_ohm = 47e3;
-    c.earpiece.kind = earpiece_kind::piezo;
-    c.earpiece.capacitance_f = 1e-9;
+    const circuit_params c = generator_detector(germanium_like(), 1e-9);
     am_params am;
     am.carrier_hz = 200e3;
     am.carrier_peak_v = 1.0;
@@ -802,12 +810,7 @@ TEST_CASE("production stepper converges at second order in the per-cycle step bo
     // carrier_steps_floor should cut the error about 4x. Reference: Boost.Odeint rosenbrock4 (order 4) at
     // rtol 1e-8 [outside reference], through galena's reference_solve; its own error is far below the
     // errors measured here (the TR-BDF2 error at 640 steps per cycle is about 7e-8).
-    circuit_params c;
-    c.source.resistance_ohm = 20e3;
-    c.diode = germanium_like();
-    c.load.bleeder_ohm = 47e3;
-    c.earpiece.kind = earpiece_kind::piezo;
-    c.earpiece.capacitance_f = 10e-9;
+    const circuit_params c = generator_detector(germanium_like(), 10e-9);
     const detector_network net(c);
     tone_modulation tone({1000.0}, {1.0}, 1.0);
     am_params am;
@@ -858,11 +861,7 @@ TEST_CASE("production stepper agrees with the Boost.Odeint rosenbrock4 reference
 {
     // The reference path (Kaps-Rentrop Rosenbrock, order 4) at tight tolerance vs TR-BDF2 at the default
     // per-cycle step bound: relative RMS of the earpiece waveform over 50 carrier cycles after 100.
-    circuit_params c;
-    c.source.resistance_ohm = 20e3;
-    c.diode = find_diode_preset("germanium-point-contact").params;
-    c.load.bleeder_ohm = 47e3;
-    c.earpiece.capacitance_f = 10e-9;
+    const circuit_params c = generator_detector(find_diode_preset("germanium-point-contact").params, 10e-9);
     const detector_network net(c);
     tone_modulation tone({1000.0}, {1.0}, 1.0);
     am_params am;
@@ -893,12 +892,7 @@ TEST_CASE("production stepper agrees with the Boost.Odeint rosenbrock4 reference
         }
     });
     REQUIRE(got.size() == n);
-    double num = 0.0, den = 0.0;
-    for (std::size_t i = 0; i < n; ++i) {
-        num += (got[i] - ref[k0 + i]) * (got[i] - ref[k0 + i]);
-        den += ref[k0 + i] * ref[k0 + i];
-    }
-    const double rel = std::sqrt(num / den);
+    const double rel = relative_rms(got, std::vector<double>(ref.begin() + static_cast<std::ptrdiff_t>(k0), ref.end()));
     MESSAGE("TR-BDF2 (40 steps/cycle) vs rosenbrock4 reference: relRMS = " << rel);
     // Measured 3.3e-6 (TR-BDF2 at rtol 1e-3 with the 40-steps-per-cycle bound); bound 1e-5, three times the
     // figure, for compiler and library rounding (the reference itself is within 2.4e-7).
