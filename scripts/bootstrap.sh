@@ -88,7 +88,14 @@ if [ "$mode" = fuzz ] || [ "$mode" = fuzz-open ]; then
   done
   exit 0
 fi
-cmake -S "$here" -B "$build" -DCMAKE_BUILD_TYPE=Release -DGALENA_BUILD_TESTS=$([ "$mode" = test ] && echo ON || echo OFF)
+# `test` builds the suite; `demo` leaves it out of a new build folder, but does not take it out of one that
+# `test` configured (its test programs would go stale while ctest still lists them).
+tests_flag=(-DGALENA_BUILD_TESTS=ON)
+if [ "$mode" != test ]; then
+  tests_flag=()
+  [ -f "$build/CMakeCache.txt" ] || tests_flag=(-DGALENA_BUILD_TESTS=OFF)
+fi
+cmake -S "$here" -B "$build" -DCMAKE_BUILD_TYPE=Release "${tests_flag[@]}"
 cmake --build "$build" -j "$jobs"
 
 if [ "$mode" = demo ]; then
