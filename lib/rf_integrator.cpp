@@ -25,11 +25,12 @@ constexpr double bdf2_gain = 1.5;
 constexpr std::size_t phasor_anchor_cycles = 256;
 /// A solution is accepted from a linearisation of the law (the prediction's, or a Newton iterate's) only
 /// within this many n Vt of the point where the law was evaluated: the error estimate |F''| dv^2 / (2 F') takes
-/// F'' there, and an exponential's curvature grows by up to e^{1/2} over half an n Vt, which the test then
-/// allows for (`curvature_growth`). Without the reach a prediction deep in reverse bias (F'' near 0) would
-/// accept a solution in forward conduction (measured: 1.1e-4 relRMS off the Newton on a set without
-/// junction charge, the first cycles after the grid changed).
-constexpr double closing_reach_nvt = 0.5;
+/// F'' there, and an exponential's curvature grows by up to e^{1/4} over a quarter of an n Vt, which the test
+/// then allows for (`curvature_growth`; 0.5 n Vt and e^{1/2} sent 11 % of the steps to the Newton instead of
+/// 9.5 % on bench_receiver's set; the predictions' p99 distance is 0.05 n Vt). Without the reach a prediction
+/// deep in reverse bias (F'' near 0) would accept a solution in forward conduction (measured: 1.1e-4 relRMS
+/// off the Newton on a set without junction charge, the first cycles after the grid changed).
+constexpr double closing_reach_nvt = 0.25;
 const double curvature_growth = std::exp(closing_reach_nvt);
 
 /// e^{m} for a badly scaled m: balanced first (Parlett & Reinsch's diagonal scaling by powers of 2, exact in
@@ -78,7 +79,7 @@ struct law_batch {
     double* inv_den;
     double* f2;
     double* thr;
-    double* qr;
+    double* qa;
     double* cr;
 };
 
@@ -90,7 +91,7 @@ struct block_law_view {
     const double* inv_den;
     const double* f2;
     const double* thr;
-    const double* qr;
+    const double* qa;
     const double* cr;
 };
 
@@ -108,7 +109,7 @@ template <bool Breakdown, bool Charge, bool SquareRoot>
 [[gnu::always_inline]] inline void linearise_steps(const junction_law& law, const law_batch_constants& k, const double* __restrict h0,
                                                    const double* __restrict h1, const double* __restrict h2, double* __restrict v_pred,
                                                    double* __restrict offset, double* __restrict slope, double* __restrict inv_den,
-                                                   double* __restrict f2, double* __restrict thr, double* __restrict qr_out,
+                                                   double* __restrict f2, double* __restrict thr, double* __restrict qa_out,
                                                    double* __restrict cr_out)
 {
     // The prediction: the quadratic (or, with less history, the line or the value) through the phase's past values.
@@ -137,7 +138,7 @@ template <bool Breakdown, bool Charge, bool SquareRoot>
         inv_den[i] = 1.0 / den;
         f2[i] = growth * std::fabs(beta * curv);
         thr[i] = two_tol * den;
-        qr_out[i] = qr;
+        qa_out[i] = qr - cr * v; // q_r linearised: qa + cr v
         cr_out[i] = cr;
     }
 }
@@ -145,7 +146,7 @@ template <bool Breakdown, bool Charge, bool SquareRoot>
 template <bool Breakdown, bool Charge, bool SquareRoot>
 [[gnu::always_inline]] inline void linearise_steps(const junction_law& law, const law_batch& a, const law_batch_constants& k)
 {
-    linearise_steps<Breakdown, Charge, SquareRoot>(law, k, a.h0, a.h1, a.h2, a.v_pred, a.offset, a.slope, a.inv_den, a.f2, a.thr, a.qr, a.cr);
+    linearise_steps<Breakdown, Charge, SquareRoot>(law, k, a.h0, a.h1, a.h2, a.v_pred, a.offset, a.slope, a.inv_den, a.f2, a.thr, a.qa, a.cr);
 }
 
 // Cloned for AVX-512 and AVX2 machines (picked at load time); the default clone runs anywhere.
@@ -168,7 +169,13 @@ linearise_block(const junction_law& law_in, const law_batch& a, const law_batch_
 /// when all closed. Each closed step writes its voltage (v_out[k - 1]) and current (j[k]), moves the residual
 /// charge history (qr0 = this step's, qr1 the one before) and adds its current's share to the later steps'
 /// free voltages (port_j: the port's J table, column-major with leading dimension ld).
-__attribute__((target_clones("arch=x86-64-v4", "arch=x86-64-v3", "default"))) int
+///
+/// The arithmetic is arranged for the chain of dependent operations from one step's voltage to the next: a
+/// step's linear solution v = (alpha + beta J) / (1 - beta J') with J = offset - (2 q_r0 - q_r1 / 2) / h +
+/// slope v is affine in the previous step's voltage (through its current's share of alpha and its residual
+/// charge q_r = qa + cr v), v_k+1 = E + F v_k, and E and F are formed from what was known a step earlier: one
+/// multiply-add stands between two steps' voltages.
+__attribute__((target_clones("arch=x86-64-v3", "default"))) int
 close_predicted_steps(int from, int len, const block_law_view& b, double beta, double inv_h, double reach_v, const double* __restrict port_j,
                       std::ptrdiff_t ld, double* __restrict free_v, double* __restrict j, double* __restrict v_out, double& qr0_io,
                       double& qr1_io)
@@ -179,25 +186,51 @@ close_predicted_steps(int from, int len, const block_law_view& b, double beta, d
     const double* __restrict f2 = b.f2;
     const double* __restrict thr = b.thr;
     const double* __restrict slope = b.slope;
-    const double* __restrict qr = b.qr;
+    const double* __restrict qa = b.qa;
     const double* __restrict cr = b.cr;
+    const double two_inv_h = 2.0 * inv_h, half_inv_h = 0.5 * inv_h;
     double qr0 = qr0_io, qr1 = qr1_io;
     int k = from;
-    for (; k <= len; ++k) {
+    // The first step directly: J's known part, then the linear solution.
+    double known = offset[k - 1] - (2.0 * qr0 - 0.5 * qr1) * inv_h;
+    double v = (free_v[k - 1] + beta * known) * inv_den[k - 1];
+    double alpha_next = k < len ? free_v[k] : 0.0; // the next step's alpha without this step's current
+    for (;;) {
         const int i = k - 1;
-        // v = alpha + beta J(v) with J(v) = offset - history / h + slope v (the law linearised at the prediction).
-        const double known = offset[i] - (2.0 * qr0 - 0.5 * qr1) * inv_h;
-        const double v1 = (free_v[i] + beta * known) * inv_den[i];
-        const double dv = v1 - v_pred[i];
-        v_out[i] = v1;
+        const double dv = v - v_pred[i];
+        v_out[i] = v;
         // Within Newton's tolerance of the law, or not (a NaN fails the test and goes to the Newton).
         if (!(dv * dv * f2[i] <= thr[i] && std::fabs(dv) <= reach_v)) break;
-        const double j1 = known + slope[i] * v1;
+        const double jk = known + slope[i] * v;
+        j[k] = jk;
+        const double qr_k = qa[i] + cr[i] * v;
+        if (k == len) {
+            qr1 = qr0;
+            qr0 = qr_k;
+            ++k;
+            break;
+        }
+        const double* __restrict col = port_j + static_cast<std::ptrdiff_t>(k) * ld;
+        // The next step (index k) as E + F v, E and F free of v: its known part is c_next - 2 cr v / h, its
+        // alpha is alpha_next + col[k] jk.
+        const double c_next = offset[k] + half_inv_h * qr0 - two_inv_h * qa[i];
+        const double e = inv_den[k] * alpha_next + inv_den[k] * (col[k] * known + beta * c_next);
+        const double f = inv_den[k] * (col[k] * slope[i] - beta * two_inv_h * cr[i]);
+        const double v_next = e + f * v;
+        const double known_next = c_next - two_inv_h * cr[i] * v;
+        // The step after next: its alpha with this step's current (read before the update below stores it).
+        const double alpha_after = k + 1 < len ? free_v[k + 1] + col[k + 1] * jk : 0.0;
+        // From a multiple of 8 at or below k: every step then updates the same whole vectors, so a step's loads
+        // meet the last step's stores whole (from k itself they straddle them, which defeats store
+        // forwarding). Column k is zero in the rows before k - 1, and row k - 1 (this step's own alpha) is
+        // not read again.
+        for (int r = k & ~7; r < len; ++r) free_v[r] += col[r] * jk;
         qr1 = qr0;
-        qr0 = qr[i] + cr[i] * dv;
-        j[k] = j1;
-        const double* __restrict col = port_j + k * ld;
-        for (int r = k; r < len; ++r) free_v[r] += col[r] * j1;
+        qr0 = qr_k;
+        known = known_next;
+        v = v_next;
+        alpha_next = alpha_after;
+        ++k;
     }
     qr0_io = qr0;
     qr1_io = qr1;
@@ -247,7 +280,7 @@ void rf_integrator::set_grid(int steps_per_cycle)
     m_ref_phasor.clear();
     for (int k = 1; k <= m_n; ++k) m_ref_phasor.push_back(std::polar(1.0, -two_pi * static_cast<double>(k) / m_n));
     m_hist.assign(3 * static_cast<std::size_t>(m_n), 0.0);
-    for (auto* b : {&m_bl.v_pred, &m_bl.offset, &m_bl.slope, &m_bl.inv_den, &m_bl.f2, &m_bl.thr, &m_bl.qr, &m_bl.cr})
+    for (auto* b : {&m_bl.v_pred, &m_bl.offset, &m_bl.slope, &m_bl.inv_den, &m_bl.f2, &m_bl.thr, &m_bl.qa, &m_bl.cr})
         b->assign(static_cast<std::size_t>(m_block), 0.0);
     m_jb = Eigen::VectorXd::Zero(m_block + 1);
     m_free = Eigen::VectorXd::Zero(m_block);
@@ -580,13 +613,9 @@ void rf_integrator::run_cycle(std::span<double> out)
     // Envelope samples at cycles c-1 .. c+2 and the cubic through them in tau (cycles since c):
     // e(tau) = a0 + a1 tau + a2 tau^2 + a3 tau^3 (4-point Lagrange on tau = -1, 0, 1, 2).
     // The envelope is complex (I + jQ; real for an AM station): the tables are real-linear in the phasor p P.
-    std::array<std::complex<double>, 64> cubic_small; // every entry used is written below
-    std::vector<std::complex<double>> cubic_big;
-    std::complex<double>* cubic = cubic_small.data();
-    if (4 * ns > cubic_small.size()) {
-        cubic_big.resize(4 * ns);
-        cubic = cubic_big.data();
-    }
+    // (A member, sized once: a local array of std::complex would be zeroed every cycle.)
+    if (m_cubic.size() != 4 * ns) m_cubic.resize(4 * ns);
+    std::complex<double>* const cubic = m_cubic.data();
     const auto cc = static_cast<long long>(c);
     if (m_env.size() != 4 * ns) {
         m_env.assign(4 * ns, {});
@@ -665,13 +694,13 @@ void rf_integrator::run_cycle(std::span<double> out)
         const auto slot = [&](int back) { return m_hist.data() + static_cast<std::size_t>((m_hist_last + 3 - back) % 3) * n_steps + static_cast<std::size_t>(k0); };
         double* const hist_out = slot(2); // this cycle overwrites the oldest cycle, phase by phase after predicting it
         linearise_block(m_law, law_batch{slot(0), slot(1), slot(2), m_bl.v_pred.data(), m_bl.offset.data(), m_bl.slope.data(), m_bl.inv_den.data(),
-                                         m_bl.f2.data(), m_bl.thr.data(), m_bl.qr.data(), m_bl.cr.data()},
+                                         m_bl.f2.data(), m_bl.thr.data(), m_bl.qa.data(), m_bl.cr.data()},
                         law_batch_constants{len, m_hist_cycles, beta, inv_h, m_c_lin, m_predict ? 2.0 * m_tol : -1.0, curvature_growth});
         // The steps in order on the prediction; a step that fails Newton's test is solved by the Newton (from its
         // linear solution) and the closing resumes after it.
         const double reach_v = closing_reach_nvt / m_law.inv_emission_voltage;
         const block_law_view view{m_bl.v_pred.data(), m_bl.offset.data(), m_bl.slope.data(), m_bl.inv_den.data(),
-                                  m_bl.f2.data(), m_bl.thr.data(),    m_bl.qr.data(),    m_bl.cr.data()};
+                                  m_bl.f2.data(), m_bl.thr.data(),    m_bl.qa.data(),    m_bl.cr.data()};
         for (int k = 1; k <= len; ++k) {
             const int stop = close_predicted_steps(k, len, view, beta, inv_h, reach_v, port_j, port_ld, m_free.data(), m_jb.data(), hist_out, m_qr0, m_qr1);
             m_stats.predicted_steps += static_cast<std::size_t>(stop - k);

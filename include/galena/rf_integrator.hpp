@@ -245,7 +245,7 @@ private:
         std::vector<double> inv_den; ///< 1 / (1 - beta J'), the linear solve's gain
         std::vector<double> f2;      ///< |beta J''|: the step's F'' (F(v) = v - alpha - beta J(v)), 1/V
         std::vector<double> thr;     ///< 2 tol F': a step closes when dv^2 f2 <= thr, V
-        std::vector<double> qr;      ///< residual charge q_r(v_pred), C
+        std::vector<double> qa;      ///< the residual charge linearised, q_r(v) = qa + cr v: q_r(v_pred) - cr v_pred, C
         std::vector<double> cr;      ///< its slope C(v_pred) - C_lin, F
     };
     block_law m_bl;
@@ -262,6 +262,7 @@ private:
     // Envelope samples at cycles m_env_cycle - 1 .. m_env_cycle + 2, 4 per station (each sample is used by four
     // consecutive cycles: one new sample per station per cycle).
     std::vector<std::complex<double>> m_env;
+    std::vector<std::complex<double>> m_cubic; // per station, the envelope's cubic over the current cycle (run_cycle)
     long long m_env_cycle = 0;
     bool m_env_valid = false;
     bool m_phasors = false;
