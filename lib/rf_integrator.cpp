@@ -24,14 +24,30 @@ constexpr double bdf2_gain = 1.5;
 /// one rotation per cycle in between.
 constexpr std::size_t phasor_anchor_cycles = 256;
 /// A solution is accepted from a linearisation of the law (the prediction's, or a Newton iterate's) only
-/// within this many n Vt of the point where the law was evaluated: the error estimate |F''| dv^2 / (2 F') takes
-/// F'' there, and an exponential's curvature grows by up to e^{1/4} over a quarter of an n Vt, which the test
-/// then allows for (`curvature_growth`; 0.5 n Vt and e^{1/2} sent 11 % of the steps to the Newton instead of
-/// 9.5 % on bench_receiver's set; the predictions' p99 distance is 0.05 n Vt). Without the reach a prediction
-/// deep in reverse bias (F'' near 0) would accept a solution in forward conduction (measured: 1.1e-4 relRMS
-/// off the Newton on a set without junction charge, the first cycles after the grid changed).
+/// within this many n Vt of the point where the law was evaluated: the error estimate |F''| dv^2 / (2 F')
+/// takes F'' there, and an exponential's curvature grows by up to e^{1/4} over a quarter of an n Vt, which the
+/// test then allows for (`curvature_growth`; 0.5 n Vt and e^{1/2} sent 11 % of the steps to the Newton
+/// instead of 9.5 % on bench_receiver's set; the predictions' p99 distance is 0.05 n Vt). Without the reach a
+/// prediction deep in reverse bias (F'' near 0) would accept a solution in forward conduction (measured:
+/// 1.1e-4 relRMS off the Newton on a set without junction charge, the first cycles after the grid changed).
+/// Both directions: exempting jumps towards reverse bias (where the forward exponential's curvature shrinks)
+/// let a Newton started on the law's linear continuation above 80 n Vt (curvature 0) jump down across it, and
+/// a render diverged.
 constexpr double closing_reach_nvt = 0.25;
 const double curvature_growth = std::exp(closing_reach_nvt);
+/// After closing_low_cycles cycles in a row with less than this share of their steps closed on the
+/// prediction, the next closing_retry_cycles cycles are solved by the Newton alone, started from the law
+/// linearised at the same phase one cycle earlier. The prediction does not hold where the grid's reference
+/// is not the carrier that dominates the junction: in the dial, whose grid is locked to the band's top while
+/// the tuned station moves, each phase's voltage aliases from cycle to cycle; there the failed closing
+/// attempts and the extrapolation's noise gain had made the dial 30 % slower (bench_dial).
+constexpr double closing_min_share = 0.25;
+/// (A single poor cycle is common where strong neighbours beat with the wanted carrier: switching off on one
+/// cut bench_receiver-like sets from 78 % of the steps closed to 59 %.)
+constexpr int closing_low_cycles = 4;
+/// Cycles solved by the Newton alone before the closing is tried again (one poor cycle then switches it off
+/// again; one good one keeps it on).
+constexpr int closing_retry_cycles = 16;
 
 /// e^{m} for a badly scaled m: balanced first (Parlett & Reinsch's diagonal scaling by powers of 2, exact in
 /// floating point: the off-diagonal row and column 1-norms of each index brought within a factor of 2), so the
@@ -280,6 +296,7 @@ void rf_integrator::set_grid(int steps_per_cycle)
     m_ref_phasor.clear();
     for (int k = 1; k <= m_n; ++k) m_ref_phasor.push_back(std::polar(1.0, -two_pi * static_cast<double>(k) / m_n));
     m_hist.assign(3 * static_cast<std::size_t>(m_n), 0.0);
+    m_prev.assign(static_cast<std::size_t>(m_n), phase_point{});
     for (auto* b : {&m_bl.v_pred, &m_bl.offset, &m_bl.slope, &m_bl.inv_den, &m_bl.f2, &m_bl.thr, &m_bl.qa, &m_bl.cr})
         b->assign(static_cast<std::size_t>(m_block), 0.0);
     m_jb = Eigen::VectorXd::Zero(m_block + 1);
@@ -291,7 +308,13 @@ void rf_integrator::reset_history()
 {
     m_hist_last = 0;
     m_hist_cycles = 0;
+    m_closing_wait = 0;
+    m_low_cycles = 0;
     std::fill(m_hist.begin(), m_hist.end(), m_v);
+    // Every phase's Newton start: the law linearised at the last solution (beta as in run_cycle).
+    const double beta = m_port.j(0, 1);
+    const double g = m_g0_s + bdf2_gain * m_cr0_f / m_h;
+    std::fill(m_prev.begin(), m_prev.end(), phase_point{m_v, m_i0 + bdf2_gain * m_qr0 / m_h - g * m_v, 1.0 / (1.0 - beta * g)});
 }
 
 void rf_integrator::set_network(const state_space& ss, int input)
@@ -525,6 +548,9 @@ void rf_integrator::initialize()
     const junction_values jv = m_law.evaluate(0.0);
     m_qr0 = m_charge ? jv.charge_c : 0.0;
     m_qr1 = m_qr0;
+    m_i0 = jv.current_a;
+    m_g0_s = jv.conductance_s;
+    m_cr0_f = m_charge ? jv.capacitance_f - m_c_lin : 0.0;
     reset_history(); // the first cycles are predicted by v = 0
     std::fill(m_out_last.begin(), m_out_last.end(), 0.0);
     m_stats = {};
@@ -576,11 +602,15 @@ double rf_integrator::solve_junction(double alpha, double beta, double v, double
         double curvature = jv.conductance_slope_s_per_v;
         if constexpr (Charge) curvature += bdf2_gain * inv_h * jv.capacitance_slope_f_per_v;
         if (std::fabs(dv) <= m_tol ||
-            (0.5 * curvature_growth * std::fabs(beta * curvature) * dv * dv <= m_tol * df && std::fabs(dv) * m_law.inv_emission_voltage <= closing_reach_nvt)) {
+            (0.5 * curvature_growth * std::fabs(beta * curvature) * dv * dv <= m_tol * df &&
+             std::fabs(dv) * m_law.inv_emission_voltage <= closing_reach_nvt)) {
             // Converged: the update is below the tolerance; carry the law to vn linearly.
             j1 = jj + dj * dv;
             m_qr1 = m_qr0;
             m_qr0 = qr + cr * dv;
+            m_i0 = jv.current_a + jv.conductance_s * dv;
+            m_g0_s = jv.conductance_s;
+            m_cr0_f = cr;
             return vn;
         }
         v = vn;
@@ -661,6 +691,7 @@ void rf_integrator::run_cycle(std::span<double> out)
     }
     m_rot.resize(ns);
     const double inv_h = 1.0 / m_h;
+    int closed = 0; // steps of this cycle closed on the prediction
     for (int k0 = 0; k0 < m_n; k0 += m_block) {
         const int len = std::min(m_block, m_n - k0);
         const double tau0 = static_cast<double>(k0) / m_n;
@@ -693,23 +724,36 @@ void rf_integrator::run_cycle(std::span<double> out)
         const std::size_t n_steps = static_cast<std::size_t>(m_n);
         const auto slot = [&](int back) { return m_hist.data() + static_cast<std::size_t>((m_hist_last + 3 - back) % 3) * n_steps + static_cast<std::size_t>(k0); };
         double* const hist_out = slot(2); // this cycle overwrites the oldest cycle, phase by phase after predicting it
-        linearise_block(m_law, law_batch{slot(0), slot(1), slot(2), m_bl.v_pred.data(), m_bl.offset.data(), m_bl.slope.data(), m_bl.inv_den.data(),
+        const bool closing = m_predict && m_closing_wait == 0;
+        if (closing)
+            linearise_block(m_law, law_batch{slot(0), slot(1), slot(2), m_bl.v_pred.data(), m_bl.offset.data(), m_bl.slope.data(), m_bl.inv_den.data(),
                                          m_bl.f2.data(), m_bl.thr.data(), m_bl.qa.data(), m_bl.cr.data()},
-                        law_batch_constants{len, m_hist_cycles, beta, inv_h, m_c_lin, m_predict ? 2.0 * m_tol : -1.0, curvature_growth});
+                        law_batch_constants{len, closing ? m_hist_cycles : 1, beta, inv_h, m_c_lin, 2.0 * m_tol, curvature_growth});
         // The steps in order on the prediction; a step that fails Newton's test is solved by the Newton (from its
         // linear solution) and the closing resumes after it.
         const double reach_v = closing_reach_nvt / m_law.inv_emission_voltage;
         const block_law_view view{m_bl.v_pred.data(), m_bl.offset.data(), m_bl.slope.data(), m_bl.inv_den.data(),
                                   m_bl.f2.data(), m_bl.thr.data(),    m_bl.qa.data(),    m_bl.cr.data()};
         for (int k = 1; k <= len; ++k) {
-            const int stop = close_predicted_steps(k, len, view, beta, inv_h, reach_v, port_j, port_ld, m_free.data(), m_jb.data(), hist_out, m_qr0, m_qr1);
-            m_stats.predicted_steps += static_cast<std::size_t>(stop - k);
-            if (stop > len) break;
-            k = stop;
-            const auto i = static_cast<std::size_t>(k - 1);
-            const double guess = std::isfinite(hist_out[i]) ? hist_out[i] : m_bl.v_pred[i];
+            if (closing) {
+                const int stop = close_predicted_steps(k, len, view, beta, inv_h, reach_v, port_j, port_ld, m_free.data(), m_jb.data(), hist_out, m_qr0, m_qr1);
+                closed += stop - k;
+                if (stop > len) break;
+                k = stop;
+            }
+            const auto i_k = static_cast<std::size_t>(k - 1);
+            phase_point& pp = m_prev[static_cast<std::size_t>(k0) + i_k];
+            // The Newton's start: the closing's linear solution, or (closing off) this step's linear relation
+            // solved with the law linearised at this phase's last Newton solution (no law evaluation).
+            // A closing solution far from its prediction (beyond the Newton's own reach many times over) shows a
+            // prediction gone astray (an aliased phase): then the phase point's start is the better one.
+            const double pp_guess = (m_free[i_k] + beta * (pp.offset_a - charge_history() * inv_h)) * pp.inv_den;
+            double guess = closing && std::fabs(hist_out[i_k] - m_bl.v_pred[i_k]) <= 40.0 * reach_v ? hist_out[i_k] : pp_guess;
+            if (!std::isfinite(guess)) guess = pp.v;
             double j1 = 0.0;
-            hist_out[i] = solve_junction<Breakdown, Charge, SquareRoot>(m_free[k - 1], beta, guess, j1);
+            hist_out[i_k] = solve_junction<Breakdown, Charge, SquareRoot>(m_free[k - 1], beta, guess, j1);
+            const double g = m_g0_s + bdf2_gain * m_cr0_f * inv_h;
+            pp = {hist_out[i_k], m_i0 + bdf2_gain * m_qr0 * inv_h - g * hist_out[i_k], 1.0 / (1.0 - beta * g)};
             m_jb[k] = j1;
             const double* col = port_j + k * port_ld;
             for (int r = k; r < len; ++r) m_free[r] += col[r] * j1;
@@ -763,6 +807,13 @@ void rf_integrator::run_cycle(std::span<double> out)
     for (std::size_t o = 0; o < no; ++o) m_out_mean[o] /= m_n;
     if (!std::isfinite(m_v) || !m_x.allFinite())
         throw integration_error(fmt::format("the receiver's state became non-finite near t = {:.9g} s", time_s()), time_s());
+    m_stats.predicted_steps += static_cast<std::size_t>(closed);
+    if (m_closing_wait > 0) {
+        --m_closing_wait;
+    } else if (m_predict) {
+        m_low_cycles = closed < closing_min_share * m_n ? std::min(m_low_cycles + 1, closing_low_cycles) : 0;
+        if (m_low_cycles == closing_low_cycles) m_closing_wait = closing_retry_cycles;
+    }
     m_hist_last = (m_hist_last + 1) % 3;
     m_hist_cycles = std::min(m_hist_cycles + 1, 3);
     ++m_cycle;
