@@ -21,9 +21,10 @@ namespace galena {
 struct rf_settings {
     int steps_per_cycle = 32;        ///< N steps per reference-carrier cycle; even, [8, 4096]
     /// Newton stops, and a step closes on its prediction, when the estimate of the remaining junction-voltage
-    /// error is below this, V; (0, 1e-3]. At 1e-8 V bench_receiver's coupled three-station set is 4e-7 relRMS
-    /// from the Newton to 1e-11 V, with 90 % of its steps closed on the prediction (97 % at 1e-7 V, 1.5e-6).
-    double newton_tolerance_v = 1e-8;
+    /// error is below this, V; (0, 1e-3]. bench_receiver's coupled three-station set at 1e-7 V: 1.5e-6 relRMS
+    /// from the Newton to 1e-11 V (the discretisation's own error at N = 32 is 2.1e-3), 97 % of its steps
+    /// closed on the prediction and 16 % less CPU than at 1e-8 V (4e-7 relRMS, 90 % closed).
+    double newton_tolerance_v = 1e-7;
     /// Close a step on the law linearised at its predicted voltage when Newton's own error estimate allows it
     /// (the default; see rf_integrator); false solves every step by the Newton, for checking the prediction.
     bool predict_steps = true;
@@ -80,8 +81,9 @@ struct rf_stats {
 /// the distance from the prediction (and F'' allowed to grow over dv as an exponential's does), is within
 /// the tolerance and dv within a quarter of n Vt: the test that stops the Newton, which then takes over (from
 /// that solution) for the steps that fail it. Measured on bench_receiver's coupled three-station set at
-/// N = 32: 90 % of the steps close on the prediction at 1e-8 V (about 65 % with the linear 2 v_c-1 - v_c-2),
-/// the rest take about one Newton evaluation; the earpiece is 4e-7 relRMS off a Newton to 1e-11 V. Where the
+/// N = 32: 97 % of the steps close on the prediction at 1e-7 V, 90 % at 1e-8 V (about 65 % with the linear
+/// 2 v_c-1 - v_c-2), the rest take about one Newton evaluation; the earpiece is 1.3e-6 (4e-7) relRMS off a
+/// Newton to 1e-11 V. Where the
 /// grid is locked to another carrier than the one that dominates the junction (the dial's grid sits at the
 /// band's top), each phase aliases from cycle to cycle and no prediction holds: after a few such cycles the
 /// closing rests for a while and the Newton starts from the law linearised at the phase's last solution.
