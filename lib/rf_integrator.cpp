@@ -43,7 +43,7 @@ const double curvature_growth = std::exp(closing_reach_nvt);
 /// attempts and the extrapolation's noise gain had made the dial 30 % slower (bench_dial).
 constexpr double closing_min_share = 0.25;
 /// (A single poor cycle is common where strong neighbours beat with the wanted carrier: switching off on one
-/// cut bench_receiver-like sets from 78 % of the steps closed to 59 %.)
+/// cut rf_integrator_test's strong-neighbour set from 81 % of its steps closed to 59 %.)
 constexpr int closing_low_cycles = 4;
 /// Cycles solved by the Newton alone before the closing is tried again (one poor cycle then switches it off
 /// again; one good one keeps it on).
@@ -117,7 +117,7 @@ struct law_batch_constants {
     double beta;  // the step's port response to its own current, V/A
     double inv_h; // 1 / h, 1/s
     double c_lin; // the port's linear capacitance held by the network, F
-    double two_tol; // 2 tol, V; negative closes no step on the prediction (rf_settings::predict_steps)
+    double two_tol; // 2 tol, V (the Newton tolerance)
     double curvature_growth;
 };
 
@@ -728,7 +728,7 @@ void rf_integrator::run_cycle(std::span<double> out)
         if (closing)
             linearise_block(m_law, law_batch{slot(0), slot(1), slot(2), m_bl.v_pred.data(), m_bl.offset.data(), m_bl.slope.data(), m_bl.inv_den.data(),
                                          m_bl.f2.data(), m_bl.thr.data(), m_bl.qa.data(), m_bl.cr.data()},
-                        law_batch_constants{len, closing ? m_hist_cycles : 1, beta, inv_h, m_c_lin, 2.0 * m_tol, curvature_growth});
+                        law_batch_constants{len, m_hist_cycles, beta, inv_h, m_c_lin, 2.0 * m_tol, curvature_growth});
         // The steps in order on the prediction; a step that fails Newton's test is solved by the Newton (from its
         // linear solution) and the closing resumes after it.
         const double reach_v = closing_reach_nvt / m_law.inv_emission_voltage;
