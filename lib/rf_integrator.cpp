@@ -304,6 +304,12 @@ void rf_integrator::set_grid(int steps_per_cycle)
     m_y = Eigen::VectorXd::Zero(m_block);
 }
 
+rf_integrator::phase_point rf_integrator::newton_phase_point(double v, double beta) const noexcept
+{
+    const double g = m_g0_s + bdf2_gain * m_cr0_f / m_h;
+    return {v, m_i0 + bdf2_gain * m_qr0 / m_h - g * v, 1.0 / (1.0 - beta * g)};
+}
+
 void rf_integrator::reset_history()
 {
     m_hist_last = 0;
@@ -312,9 +318,7 @@ void rf_integrator::reset_history()
     m_low_cycles = 0;
     std::fill(m_hist.begin(), m_hist.end(), m_v);
     // Every phase's Newton start: the law linearised at the last solution (beta as in run_cycle).
-    const double beta = m_port.j(0, 1);
-    const double g = m_g0_s + bdf2_gain * m_cr0_f / m_h;
-    std::fill(m_prev.begin(), m_prev.end(), phase_point{m_v, m_i0 + bdf2_gain * m_qr0 / m_h - g * m_v, 1.0 / (1.0 - beta * g)});
+    std::fill(m_prev.begin(), m_prev.end(), newton_phase_point(m_v, m_port.j(0, 1)));
 }
 
 void rf_integrator::set_network(const state_space& ss, int input)
@@ -752,8 +756,7 @@ void rf_integrator::run_cycle(std::span<double> out)
             if (!std::isfinite(guess)) guess = pp.v;
             double j1 = 0.0;
             hist_out[i_k] = solve_junction<Breakdown, Charge, SquareRoot>(m_free[k - 1], beta, guess, j1);
-            const double g = m_g0_s + bdf2_gain * m_cr0_f * inv_h;
-            pp = {hist_out[i_k], m_i0 + bdf2_gain * m_qr0 * inv_h - g * hist_out[i_k], 1.0 / (1.0 - beta * g)};
+            pp = newton_phase_point(hist_out[i_k], beta);
             m_jb[k] = j1;
             const double* col = port_j + k * port_ld;
             for (int r = k; r < len; ++r) m_free[r] += col[r] * j1;

@@ -83,10 +83,10 @@ struct rf_stats {
 /// that solution) for the steps that fail it. Measured on bench_receiver's coupled three-station set at
 /// N = 32: 97 % of the steps close on the prediction at 1e-7 V, 90 % at 1e-8 V (about 65 % with the linear
 /// 2 v_c-1 - v_c-2), the rest take about one Newton evaluation; the earpiece is 1.3e-6 (4e-7) relRMS off a
-/// Newton to 1e-11 V. Where the
-/// grid is locked to another carrier than the one that dominates the junction (the dial's grid sits at the
-/// band's top), each phase aliases from cycle to cycle and no prediction holds: after a few such cycles the
-/// closing rests for a while and the Newton starts from the law linearised at the phase's last solution.
+/// Newton to 1e-11 V. Where the grid is locked to another carrier than the one that dominates the junction
+/// (the dial's grid sits at the band's top), each phase aliases from cycle to cycle and no prediction holds:
+/// after a few such cycles the closing rests for a while and the Newton starts from the law linearised at the
+/// phase's last solution.
 ///
 /// The evaluation (block superposition; the same numbers as stepping the recursion above, to rounding). A
 /// cycle is cut into blocks of K = min(N, 32) steps. Within a block the recursion is linear in the block's
@@ -254,6 +254,9 @@ private:
         double inv_den = 1.0;  ///< 1 / (1 - beta (g + 1.5 cr / h)), the linearised step's gain
     };
     std::vector<phase_point> m_prev;
+    /// The phase point of the Newton's last solution v (the law there: m_i0, m_g0_s, m_cr0_f, m_qr0), for a step
+    /// whose port response to its own current is beta.
+    [[nodiscard]] phase_point newton_phase_point(double v, double beta) const noexcept;
     /// One block's law linearised at the predicted voltages (index k - 1 for local step k; see run_cycle).
     struct block_law {
         std::vector<double> v_pred;  ///< the prediction, V
