@@ -11,7 +11,9 @@
 // with tone programmes, over `piece_ms` from the start of the glide at a 5 ns maximum step (reltol 1e-6).
 // The ratio is of wall seconds per simulated second. It compares speed, not waveforms (the programmes and
 // the earpiece model differ).
-//   bench_dial [glide_s=10] [piece_ms=0.5] [retune_interval_s=2e-3]
+//   bench_dial [glide_s=10] [piece_ms=0.5] [retune_interval_s=2e-3] [stop_hz]
+// stop_hz: the dial rests on that frequency for glide_s instead of gliding (the grid is then locked to the
+// tuned carrier: a comparison for the glide's grid, locked to the band's top).
 #include "galena/band_file.hpp"
 #include "galena/dial.hpp"
 #include "galena/scenario.hpp"
@@ -59,6 +61,10 @@ int main(int argc, char** argv)
     const band_spec band = load_band(root / "scenarios/demo-band.toml");
     dial_path path = band.dial;
     path.glide_s = glide_s;
+    if (argc > 4) {
+        path.stops_hz = {std::atof(argv[4])};
+        path.dwell_s = glide_s;
+    }
     const auto programmes = make_band_programmes(band, s, path.duration_s());
     receiver_spec spec;
     spec.circuit = s.circuit;
@@ -79,6 +85,10 @@ int main(int argc, char** argv)
     std::printf("  %zu retunes: %.3f s (%.1f %% of the wall time, %.0f us each); %zu audio samples; peak RSS %.1f MB\n", r.retunes,
                 r.retune_wall_s, 100.0 * r.retune_wall_s / r.wall_s, 1e6 * r.retune_wall_s / static_cast<double>(std::max<std::size_t>(1, r.retunes)),
                 samples, static_cast<double>(peak_rss_kb()) / 1024.0);
+    const auto steps = static_cast<double>(std::max<std::size_t>(1, r.solver.steps));
+    std::printf("  %.0f RF steps per simulated s: %.1f %% closed on the prediction, %.3f Newton evaluations per step\n",
+                steps / r.simulated_s, 100.0 * static_cast<double>(r.solver.predicted_steps) / steps,
+                static_cast<double>(r.solver.newton_iterations) / steps);
     std::fflush(stdout);
 
     // ngspice on the first piece of the same glide.

@@ -303,6 +303,7 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
     }
     res.samples = delivery.delivered();
     res.simulated_s = ig.time_s();
+    res.solver = ig.stats();
     res.wall_s = std::chrono::duration<double>(clock::now() - wall0).count();
     return res;
 }

@@ -37,10 +37,11 @@ constexpr double closing_reach_nvt = 0.25;
 const double curvature_growth = std::exp(closing_reach_nvt);
 /// After closing_low_cycles cycles in a row with less than this share of their steps closed on the
 /// prediction, the next closing_retry_cycles cycles are solved by the Newton alone, started from the law
-/// linearised at the same phase one cycle earlier. The prediction does not hold where the grid's reference
-/// is not the carrier that dominates the junction: in the dial, whose grid is locked to the band's top while
-/// the tuned station moves, each phase's voltage aliases from cycle to cycle; there the failed closing
-/// attempts and the extrapolation's noise gain had made the dial 30 % slower (bench_dial).
+/// linearised at the same phase one cycle earlier. The prediction of the conducting steps does not hold where
+/// the grid's reference is not the carrier that dominates the junction (each phase's voltage aliases from cycle
+/// to cycle); before the prediction was corrected by the free voltage's change, the dial's grid (locked to
+/// the band's top while the tuned station moves) was such a case, and the failed closing attempts and the
+/// extrapolation's noise gain had made it 30 % slower (bench_dial).
 constexpr double closing_min_share = 0.25;
 /// (A single poor cycle is common where strong neighbours beat with the wanted carrier: switching off on one
 /// cut rf_integrator_test's strong-neighbour set from 81 % of its steps closed to 59 %.)
@@ -89,6 +90,11 @@ struct law_batch {
     const double* h0; // the phase's voltage one, two and three cycles back, V
     const double* h1;
     const double* h2;
+    const double* f0; // the phase's free voltage one, two and three cycles back, V
+    const double* f1;
+    const double* f2h;
+    const double* f_now; // its free voltage now (with the block's first current), V
+    double* sens;        // in: the phase's dv/d(free voltage) one cycle back; out: now
     double* v_pred;
     double* offset;
     double* slope;
@@ -123,7 +129,9 @@ struct law_batch_constants {
 
 template <bool Breakdown, bool Charge, bool SquareRoot>
 [[gnu::always_inline]] inline void linearise_steps(const junction_law& law, const law_batch_constants& k, const double* __restrict h0,
-                                                   const double* __restrict h1, const double* __restrict h2, double* __restrict v_pred,
+                                                   const double* __restrict h1, const double* __restrict h2, const double* __restrict fh0,
+                                                   const double* __restrict fh1, const double* __restrict fh2, const double* __restrict f_now,
+                                                   double* __restrict sens, double* __restrict v_pred,
                                                    double* __restrict offset, double* __restrict slope, double* __restrict inv_den,
                                                    double* __restrict f2, double* __restrict thr, double* __restrict qa_out,
                                                    double* __restrict cr_out)
@@ -136,7 +144,7 @@ template <bool Breakdown, bool Charge, bool SquareRoot>
     const double beta = k.beta, c_lin = k.c_lin, two_tol = k.two_tol, growth = k.curvature_growth;
     const int len = k.len;
     for (int i = 0; i < len; ++i) {
-        const double v = w0 * h0[i] + w1 * h1[i] + w2 * h2[i];
+        const double v = w0 * h0[i] + w1 * h1[i] + w2 * h2[i] + sens[i] * (f_now[i] - (w0 * fh0[i] + w1 * fh1[i] + w2 * fh2[i]));
         const junction_values r = detail::evaluate_law<Breakdown, Charge, SquareRoot>(law, v);
         // J(v) = i(v) + (1.5 q_r(v) - history) / h (solve_junction), linearised at the prediction.
         double j = r.current_a, dj = r.conductance_s, curv = r.conductance_slope_s_per_v, qr = 0.0, cr = 0.0;
@@ -152,6 +160,7 @@ template <bool Breakdown, bool Charge, bool SquareRoot>
         offset[i] = j - dj * v;
         slope[i] = dj;
         inv_den[i] = 1.0 / den;
+        sens[i] = inv_den[i];
         f2[i] = growth * std::fabs(beta * curv);
         thr[i] = two_tol * den;
         qa_out[i] = qr - cr * v; // q_r linearised: qa + cr v
@@ -162,7 +171,7 @@ template <bool Breakdown, bool Charge, bool SquareRoot>
 template <bool Breakdown, bool Charge, bool SquareRoot>
 [[gnu::always_inline]] inline void linearise_steps(const junction_law& law, const law_batch& a, const law_batch_constants& k)
 {
-    linearise_steps<Breakdown, Charge, SquareRoot>(law, k, a.h0, a.h1, a.h2, a.v_pred, a.offset, a.slope, a.inv_den, a.f2, a.thr, a.qa, a.cr);
+    linearise_steps<Breakdown, Charge, SquareRoot>(law, k, a.h0, a.h1, a.h2, a.f0, a.f1, a.f2h, a.f_now, a.sens, a.v_pred, a.offset, a.slope, a.inv_den, a.f2, a.thr, a.qa, a.cr);
 }
 
 // Cloned for AVX-512 and AVX2 machines (picked at load time); the default clone runs anywhere.
@@ -296,6 +305,8 @@ void rf_integrator::set_grid(int steps_per_cycle)
     m_ref_phasor.clear();
     for (int k = 1; k <= m_n; ++k) m_ref_phasor.push_back(std::polar(1.0, -two_pi * static_cast<double>(k) / m_n));
     m_hist.assign(3 * static_cast<std::size_t>(m_n), 0.0);
+    m_hist_free.assign(3 * static_cast<std::size_t>(m_n), 0.0);
+    m_sens.assign(static_cast<std::size_t>(m_n), 0.0);
     m_prev.assign(static_cast<std::size_t>(m_n), phase_point{});
     for (auto* b : {&m_bl.v_pred, &m_bl.offset, &m_bl.slope, &m_bl.inv_den, &m_bl.f2, &m_bl.thr, &m_bl.qa, &m_bl.cr})
         b->assign(static_cast<std::size_t>(m_block), 0.0);
@@ -317,6 +328,7 @@ void rf_integrator::reset_history()
     m_closing_wait = 0;
     m_low_cycles = 0;
     std::fill(m_hist.begin(), m_hist.end(), m_v);
+    std::fill(m_sens.begin(), m_sens.end(), 0.0);
     // Every phase's Newton start: the law linearised at the last solution (beta as in run_cycle).
     std::fill(m_prev.begin(), m_prev.end(), newton_phase_point(m_v, m_port.j(0, 1)));
 }
@@ -728,11 +740,13 @@ void rf_integrator::run_cycle(std::span<double> out)
         const std::size_t n_steps = static_cast<std::size_t>(m_n);
         const auto slot = [&](int back) { return m_hist.data() + static_cast<std::size_t>((m_hist_last + 3 - back) % 3) * n_steps + static_cast<std::size_t>(k0); };
         double* const hist_out = slot(2); // this cycle overwrites the oldest cycle, phase by phase after predicting it
+        const auto fslot = [&](int back) { return m_hist_free.data() + static_cast<std::size_t>((m_hist_last + 3 - back) % 3) * n_steps + static_cast<std::size_t>(k0); };
         const bool closing = m_predict && m_closing_wait == 0;
         if (closing)
-            linearise_block(m_law, law_batch{slot(0), slot(1), slot(2), m_bl.v_pred.data(), m_bl.offset.data(), m_bl.slope.data(), m_bl.inv_den.data(),
+            linearise_block(m_law, law_batch{slot(0), slot(1), slot(2), fslot(0), fslot(1), fslot(2), m_free.data(), m_sens.data() + k0, m_bl.v_pred.data(), m_bl.offset.data(), m_bl.slope.data(), m_bl.inv_den.data(),
                                          m_bl.f2.data(), m_bl.thr.data(), m_bl.qa.data(), m_bl.cr.data()},
                         law_batch_constants{len, m_hist_cycles, beta, inv_h, m_c_lin, 2.0 * m_tol, curvature_growth});
+        std::copy(m_free.data(), m_free.data() + len, fslot(2));
         // The steps in order on the prediction; a step that fails Newton's test is solved by the Newton (from its
         // linear solution) and the closing resumes after it.
         const double reach_v = closing_reach_nvt / m_law.inv_emission_voltage;
@@ -757,6 +771,7 @@ void rf_integrator::run_cycle(std::span<double> out)
             double j1 = 0.0;
             hist_out[i_k] = solve_junction<Breakdown, Charge, SquareRoot>(m_free[k - 1], beta, guess, j1);
             pp = newton_phase_point(hist_out[i_k], beta);
+            m_sens[static_cast<std::size_t>(k0) + i_k] = pp.inv_den;
             m_jb[k] = j1;
             const double* col = port_j + k * port_ld;
             for (int r = k; r < len; ++r) m_free[r] += col[r] * j1;

@@ -431,13 +431,15 @@ TEST_CASE("rf_integrator: steps closed on the predicted law agree with steps sol
     // = false, here to 1e-11 V) to about the tolerance's share of the signal. tapped_set with the wanted station
     // at 1 MHz and neighbours at +10 and -20 kHz (their beats move each phase's voltage from cycle to cycle), N = 32 for
     // 600 cycles, then the grid moves to 24 (the history restarts) for 400 more; with junction charge and
-    // without, on a grid locked to the wanted carrier; and on a grid locked to 1.37 MHz (as the dial locks
-    // its grid to the band's top), where each phase's voltage aliases from cycle to cycle, the prediction
-    // fails and the integrator must fall back to the Newton alone.
+    // without, on a grid locked to the wanted carrier; with a strong station far off tune (0.81 MHz, 4 V EMF:
+    // its remnant at the junction turns each phase's voltage by 0.19 of a turn a cycle, which no extrapolation
+    // of the phase's own past follows, only the correction by the free voltage's change); and on a grid locked
+    // to 1.37 MHz (as the dial locks its grid to the band's top), where each phase's voltage aliases from cycle
+    // to cycle and most steps fall back to the Newton.
     struct config {
-        double cj_f, reference_hz;
+        double cj_f, reference_hz, far_v;
     };
-    for (const config cfg : {config{1e-12, 1e6}, config{0.0, 1e6}, config{1e-12, 1.37e6}}) {
+    for (const config cfg : {config{1e-12, 1e6, 0.0}, config{0.0, 1e6, 0.0}, config{1e-12, 1e6, 4.0}, config{1e-12, 1.37e6, 0.0}}) {
         const double cj = cfg.cj_f;
         CAPTURE(cj);
         CAPTURE(cfg.reference_hz);
@@ -447,7 +449,8 @@ TEST_CASE("rf_integrator: steps closed on the predicted law agree with steps sol
         const state_space ss = rn.net.assemble();
         station_source src;
         tone_modulation tone_a({1000.0}, {1.0}, 1.0), tone_b({3000.0}, {1.0}, 1.0);
-        const std::vector<std::pair<double, double>> stations{{1e6, 0.4}, {1.01e6, 0.3}, {0.98e6, 0.5}};
+        std::vector<std::pair<double, double>> stations{{1e6, 0.4}, {1.01e6, 0.3}, {0.98e6, 0.5}};
+        if (cfg.far_v > 0.0) stations.push_back({0.81e6, cfg.far_v});
         for (std::size_t i = 0; i < stations.size(); ++i) {
             am_params am;
             am.carrier_hz = stations[i].first;
@@ -499,14 +502,16 @@ TEST_CASE("rf_integrator: steps closed on the predicted law agree with steps sol
                             cj, cfg.reference_hz, rel, 100.0 * closed, 100.0 * closed_all, per_step(stats[0]), per_step(stats[1])));
         CHECK(std::sqrt(den / static_cast<double>(wave[1].size())) > 0.05); // the detector detects
         CHECK(stats[1].predicted_steps == 0);
-        CHECK(rel <= 1e-8); // measured 2.7e-9 (with charge), 4.5e-9 (without), 4.5e-9 (aliasing grid)
+        CHECK(rel <= 1e-8); // measured 2.1e-9 (with charge), 3.4e-9 (without), 6.3e-10 (far station), 4.3e-9 (aliasing grid)
         if (cfg.reference_hz == 1e6) {
-            CHECK(closed >= 0.7); // measured 81.0 % and 82.8 % (strong neighbours; 97 % on bench_receiver's set)
+            // Measured 87.6 % and 88.1 % with close neighbours (81.0 % and 82.8 % from the phase's past alone;
+            // 99 % on bench_receiver's set), 65.4 % with the far station (0.0 % from the phase's past alone).
+            CHECK(closed >= (cfg.far_v > 0.0 ? 0.6 : 0.85));
         } else {
-            CHECK(closed <= 0.05); // measured 0.0 % (the closing is tried one cycle in 17 and fails)
-            // Falling back costs no more law evaluations than the Newton alone (measured 1.86 per step against
-            // 1.96 at its tighter tolerance; 7.97 when the closing was never switched off).
-            CHECK(stats[0].newton_iterations <= stats[1].newton_iterations);
+            // Most steps fall back to the Newton, at fewer law evaluations than the Newton alone: measured 1.43 per
+            // step against 1.96 at its tighter tolerance (1.86 from the phase's past alone, 7.97 when the closing
+            // was never switched off).
+            CHECK(static_cast<double>(stats[0].newton_iterations) <= 0.8 * static_cast<double>(stats[1].newton_iterations));
         }
     }
 }

@@ -4,6 +4,7 @@
 #pragma once
 
 #include "galena/render.hpp"
+#include "galena/rf_integrator.hpp"
 
 #include <cstddef>
 #include <functional>
@@ -107,6 +108,7 @@ struct dial_result {
     double wall_s = 0.0;
     double retune_wall_s = 0.0;           ///< of wall_s: re-assembling and re-tabulating, s
     std::size_t retunes = 0;
+    rf_stats solver;                      ///< the RF integrator's work over the whole render
 };
 
 /// Renders the whole receiver `spec` (its tuner's capacitor is set by the dial; tuned_hz and capacitance_f

@@ -21,9 +21,9 @@ namespace galena {
 struct rf_settings {
     int steps_per_cycle = 32;        ///< N steps per reference-carrier cycle; even, [8, 4096]
     /// Newton stops, and a step closes on its prediction, when the estimate of the remaining junction-voltage
-    /// error is below this, V; (0, 1e-3]. bench_receiver's coupled three-station set at 1e-7 V: 1.5e-6 relRMS
-    /// from the Newton to 1e-11 V (the discretisation's own error at N = 32 is 2.1e-3), 97 % of its steps
-    /// closed on the prediction and 16 % less CPU than at 1e-8 V (4e-7 relRMS, 90 % closed).
+    /// error is below this, V; (0, 1e-3]. bench_receiver's coupled three-station set at N = 32 over 20 ms: at
+    /// 1e-7 V, 2.5e-7 relRMS from the Newton to 1e-11 V (the discretisation's own error is 2.1e-3) with 98.9 %
+    /// of the steps closed on the prediction; at 1e-8 V, 9e-8 relRMS and 96.8 % closed, in about the same time.
     double newton_tolerance_v = 1e-7;
     /// Close a step on the law linearised at its predicted voltage when Newton's own error estimate allows it
     /// (the default; see rf_integrator); false solves every step by the Newton, for checking the prediction.
@@ -72,21 +72,27 @@ struct rf_stats {
 /// one step at N = 32: the piecewise-linear current then leaves the detected DC about 0.2-0.3 % high
 /// (waveform relRMS 2.3e-3 to 3.0e-3 against ngspice; 6.1e-4 to 8.0e-4 at N = 64, 5.2e-5 to 1.05e-4 at
 /// N = 256, tests/receiver_reference_test.cpp).
-/// The junction solve. Each step's voltage is predicted from the same phase of the last three cycles (the
-/// quadratic through them: 3 v_c-1 - 3 v_c-2 + v_c-3; the sequence is the carrier's envelope and the beats
-/// with the neighbours sampled once a cycle, smooth at 1 MHz) and the law is evaluated at every prediction of
-/// a block in one vectorised loop, before the block's steps run. A step then solves its linear relation
-/// v = alpha + beta J(v) with the law linearised there (no exp on the chain from one step to the next), and
-/// is closed on that solution when Newton's own estimate of the remaining error, |F''| dv^2 / (2 F') with dv
-/// the distance from the prediction (and F'' allowed to grow over dv as an exponential's does), is within
-/// the tolerance and dv within a quarter of n Vt: the test that stops the Newton, which then takes over (from
-/// that solution) for the steps that fail it. Measured on bench_receiver's coupled three-station set at
-/// N = 32: 97 % of the steps close on the prediction at 1e-7 V, 90 % at 1e-8 V (about 65 % with the linear
-/// 2 v_c-1 - v_c-2), the rest take about one Newton evaluation; the earpiece is 1.3e-6 (4e-7) relRMS off a
-/// Newton to 1e-11 V. Where the grid is locked to another carrier than the one that dominates the junction
-/// (the dial's grid sits at the band's top), each phase aliases from cycle to cycle and no prediction holds:
-/// after a few such cycles the closing rests for a while and the Newton starts from the law linearised at the
-/// phase's last solution.
+/// The junction solve. Each step's voltage is predicted from the same phase of the last three cycles: the
+/// quadratic through them (3 v_c-1 - 3 v_c-2 + v_c-3; the sequence is the carrier's envelope and the beats
+/// with the neighbours sampled once a cycle, smooth at 1 MHz), corrected by the change of the phase's free
+/// voltage (the port voltage the network gives with the block's first current: exact, whatever the carriers)
+/// from the same quadratic through its past values, times the phase's last dv/d(free voltage), 1 / (1 - beta J'):
+/// a station far off the grid's carrier turns each phase's voltage by a large angle from cycle to cycle, which
+/// no extrapolation of the phase's past follows, but it reaches the junction through the free voltage, which
+/// the correction carries (near 1 where the junction is off, near 0 where it conducts and holds the voltage).
+/// The law is evaluated at every prediction of a block in one vectorised loop, before the block's steps run.
+/// A step then solves its linear relation v = alpha + beta J(v) with the law linearised there (no exp on the
+/// chain from one step to the next), and is closed on that solution when Newton's own estimate of the
+/// remaining error, |F''| dv^2 / (2 F') with dv the distance from the prediction (and F'' allowed to grow
+/// over dv as an exponential's does), is within the tolerance and dv within a quarter of n Vt: the test that
+/// stops the Newton, which then takes over (from that solution) for the steps that fail it. Measured at
+/// N = 32: 99 % of bench_receiver's coupled three-station set's steps close at 1e-7 V (97 % without the
+/// correction; about 65 % with the linear 2 v_c-1 - v_c-2 alone); rf_integrator_test's tapped set at 1e-8 V,
+/// 88 % (81 % without), and 65 % with a strong station 19 % off tune (0 % without); bench_dial's glide, whose
+/// grid sits at the band's top while the tuned carrier moves, 79 % (under 1 % without). Where the grid is
+/// locked to another carrier than the one that dominates the junction, each phase aliases from cycle to cycle
+/// and the conducting steps are not predicted: after a few cycles with few steps closed the closing rests
+/// for a while and the Newton starts from the law linearised at the phase's last solution.
 ///
 /// The evaluation (block superposition; the same numbers as stepping the recursion above, to rounding). A
 /// cycle is cut into blocks of K = min(N, 32) steps. Within a block the recursion is linear in the block's
@@ -242,6 +248,8 @@ private:
     /// The port voltage at each phase (step end) of the last three cycles: slot m_hist_last holds the last
     /// cycle's, the slots before it (mod 3) the older ones; m_hist_cycles of them are valid (0 to 3).
     std::vector<double> m_hist;
+    std::vector<double> m_hist_free; ///< each phase's free port voltage (with the block's first current) in the same slots, V
+    std::vector<double> m_sens;      ///< each phase's dv/d(free voltage) at its last solution (0 after a reset)
     int m_hist_last = 0;
     int m_hist_cycles = 0;
     /// Cycles left before closing steps on the prediction is tried again (0: it is tried; see run_cycle).
