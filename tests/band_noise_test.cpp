@@ -186,6 +186,53 @@ TEST_CASE("band_noise at the detector input of a single-coil set: int |H|^2 S_e 
     CHECK(std::fabs(got / want - 1.0) < 4.0 * rel);
 }
 
+TEST_CASE("band_noise: the envelope is its seeded samples through a Kaiser-windowed sinc, r int k^2 = B")
+{
+    // The definition (stations.hpp): I(t) = D sqrt(r) sum_n g_I(n) k(t r - n) with g the public seeded
+    // samples and k(x) = sinc(x) I0(beta sqrt(1 - (x / L)^2)) / I0(beta), L = 32, beta = 8 (the Kaiser window:
+    // Kaiser & Schafer, "On the use of the I0-sinh window for spectrum analysis", IEEE Trans. ASSP 28 (1980)),
+    // evaluated here directly with std::cyl_bessel_i; r such that r int k^2 dx = B = 2 x half_band.
+    const double density = 2e-6, half_band = 40e3;
+    const band_noise noise(density, half_band, 77);
+    constexpr int taps = 32;
+    constexpr double beta = 8.0;
+    const auto kaiser_sinc = [&](double x) {
+        const double u = x / taps;
+        if (std::fabs(u) >= 1.0) return 0.0;
+        const double sinc = x == 0.0 ? 1.0 : std::sin(k_pi * x) / (k_pi * x);
+        return sinc * std::cyl_bessel_i(0.0, beta * std::sqrt(1.0 - u * u)) / std::cyl_bessel_i(0.0, beta);
+    };
+    double energy = 0.0; // int k^2 dx by the midpoint rule over [-L, L]
+    const int per_unit = 256;
+    for (int i = 0; i < 2 * taps * per_unit; ++i) {
+        const double k = kaiser_sinc(-taps + (i + 0.5) / per_unit);
+        energy += k * k / per_unit;
+    }
+    const double r = noise.sample_rate_hz();
+    CHECK(r * energy == doctest::Approx(2.0 * half_band).epsilon(1e-6));
+    // At 2000 times spread over 40 samples (not on any grid), against the direct sum.
+    double num = 0.0, den = 0.0;
+    for (int i = 0; i < 2000; ++i) {
+        const double t = (3.0 + 40.0 * i / 2000.0 + 0.0137 * std::sin(1.3 * i)) / r;
+        const double x = t * r;
+        const auto n0 = static_cast<long long>(std::floor(x));
+        double si = 0.0, sq = 0.0;
+        for (long long n = n0 - taps + 1; n <= n0 + taps; ++n) {
+            const double k = kaiser_sinc(x - static_cast<double>(n));
+            si += k * band_noise::gaussian(77, n, 0);
+            sq += k * band_noise::gaussian(77, n, 1);
+        }
+        const std::complex<double> want = density * std::sqrt(r) * std::complex<double>(si, sq);
+        num += std::norm(noise.envelope(t) - want);
+        den += std::norm(want);
+    }
+    const double rel = std::sqrt(num / den);
+    MESSAGE(fmt::format("envelope against the direct kernel sum: relRMS {:.2g}", rel));
+    // Measured 3.5e-6: the quintic between the fine grid's points and the kernel table's linear interpolation
+    // (1.6e-6 when the table was summed at every time; 1.4e-4 with a cubic between the fine points).
+    CHECK(rel < 1e-5);
+}
+
 TEST_CASE("band_noise is deterministic: the same seed gives the same samples, another seed others")
 {
     const band_noise a(1e-6, 40e3, 5), b(1e-6, 40e3, 5), c(1e-6, 40e3, 6);
