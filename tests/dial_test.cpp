@@ -238,3 +238,59 @@ TEST_CASE("dial sweep: a slow sweep past one station traces the universal resona
         CHECK(std::fabs(diff_db) <= 0.05); // the issue asks 0.5 dB; measured within 0.01 dB
     }
 }
+
+TEST_CASE("dial sweep: with a strong station far off tune, each station's level where the dial is slow matches a fixed dial")
+{
+    // The issue's accuracy criterion with several stations: two neighbours 9 kHz apart and a strong station
+    // about 33 % below them (its remnant reaches the junction at every dial position and turns each grid
+    // phase's voltage from cycle to cycle: the case the free voltage's correction of the prediction exists
+    // for). A glide of 29 kHz in 0.4 s (72 Hz/ms: 2 Hz per tank time constant against a loaded bandwidth near
+    // 10 kHz) against the dial resting at the same position (one stop: the capacitor fixed there, the grid
+    // locked to it), per station, within the issue's 0.5 dB.
+    tone_modulation p1({1000.0}, {1.0}, 1.0), p2({600.0}, {1.0}, 1.0), p3({400.0}, {1.0}, 1.0);
+    receiver_spec spec = one_station_set(1.2e6, 8e-3, &p1);
+    spec.stations[0].params.name = "Invented North";
+    spec.stations[0].params.carrier_hz = 1.206e6;
+    spec.stations[0].params.modulation_index = 0.4;
+    receiver_station south = spec.stations[0], local = spec.stations[0];
+    south.params.name = "Invented South";
+    south.params.carrier_hz = 1.215e6;
+    south.params.field_v_per_m = 6e-3;
+    south.programme = &p2;
+    local.params.name = "Invented Local";
+    local.params.carrier_hz = 0.81e6;
+    local.params.field_v_per_m = 40e-3;
+    local.programme = &p3;
+    spec.stations.push_back(south);
+    spec.stations.push_back(local);
+    dial_path glide;
+    glide.start_hz = 1.196e6;
+    glide.end_hz = 1.225e6;
+    glide.glide_s = 0.4;
+    const dial_result r = render_dial(spec, glide, dial_settings{}, [](const audio_block&) {});
+    const double closed = static_cast<double>(r.solver.predicted_steps) / static_cast<double>(r.solver.steps);
+    double worst = 0.0;
+    for (double fd : {1.206e6, 1.2105e6, 1.215e6}) {
+        dial_path rest;
+        rest.stops_hz = {fd};
+        rest.dwell_s = 0.05;
+        const dial_result f = render_dial(spec, rest, dial_settings{}, [](const audio_block&) {});
+        REQUIRE(f.trace.size() >= 4);
+        // The glide's trace at fd, interpolated linearly between its neighbours; the rest's last three windows.
+        std::size_t k = 1;
+        while (k + 1 < r.trace.size() && r.trace[k].tuned_hz < fd) ++k;
+        const auto& a = r.trace[k - 1];
+        const auto& b = r.trace[k];
+        const double w = (fd - a.tuned_hz) / (b.tuned_hz - a.tuned_hz);
+        for (std::size_t s = 0; s < 3; ++s) {
+            const double swept = a.level_v[s] + w * (b.level_v[s] - a.level_v[s]);
+            double fixed = 0.0;
+            for (std::size_t i = f.trace.size() - 3; i < f.trace.size(); ++i) fixed += f.trace[i].level_v[s] / 3.0;
+            const double diff_db = 20.0 * std::log10(swept / fixed);
+            MESSAGE(fmt::format("dial {:.1f} kHz, {}: sweep {:.4g} V, resting {:.4g} V ({:+.3f} dB)", fd / 1e3, r.names[s], swept, fixed, diff_db));
+            worst = std::max(worst, std::fabs(diff_db));
+        }
+    }
+    MESSAGE(fmt::format("glide: {:.1f} % of the steps closed on the prediction; largest departure {:.3f} dB", 100.0 * closed, worst));
+    CHECK(worst <= 0.05); // the issue asks 0.5 dB; measured 0.012 dB (the neighbours), 0.025 dB (the far station)
+}
