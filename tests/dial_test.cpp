@@ -1,5 +1,6 @@
 // Turning the dial: a time-varying tuning capacitor (charge conserved), the dial sweep's traced levels
-// against the universal resonance curve and against fixed-tuning renders.
+// against the universal resonance curve and against fixed-tuning renders, and with several stations against
+// the dial resting at the same position.
 #include "galena/constants.hpp"
 #include "galena/dial.hpp"
 #include "galena/error.hpp"
