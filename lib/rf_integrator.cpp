@@ -144,6 +144,7 @@ template <bool Breakdown, bool Charge, bool SquareRoot>
     const double beta = k.beta, c_lin = k.c_lin, two_tol = k.two_tol, growth = k.curvature_growth;
     const int len = k.len;
     for (int i = 0; i < len; ++i) {
+        // The phase's past extrapolated, plus the free voltage's departure from its own extrapolation times dv/d(free).
         const double v = w0 * h0[i] + w1 * h1[i] + w2 * h2[i] + sens[i] * (f_now[i] - (w0 * fh0[i] + w1 * fh1[i] + w2 * fh2[i]));
         const junction_values r = detail::evaluate_law<Breakdown, Charge, SquareRoot>(law, v);
         // J(v) = i(v) + (1.5 q_r(v) - history) / h (solve_junction), linearised at the prediction.
@@ -171,7 +172,8 @@ template <bool Breakdown, bool Charge, bool SquareRoot>
 template <bool Breakdown, bool Charge, bool SquareRoot>
 [[gnu::always_inline]] inline void linearise_steps(const junction_law& law, const law_batch& a, const law_batch_constants& k)
 {
-    linearise_steps<Breakdown, Charge, SquareRoot>(law, k, a.h0, a.h1, a.h2, a.f0, a.f1, a.f2h, a.f_now, a.sens, a.v_pred, a.offset, a.slope, a.inv_den, a.f2, a.thr, a.qa, a.cr);
+    linearise_steps<Breakdown, Charge, SquareRoot>(law, k, a.h0, a.h1, a.h2, a.f0, a.f1, a.f2h, a.f_now, a.sens, a.v_pred, a.offset, a.slope,
+                                                   a.inv_den, a.f2, a.thr, a.qa, a.cr);
 }
 
 // Cloned for AVX-512 and AVX2 machines (picked at load time); the default clone runs anywhere.
@@ -740,11 +742,15 @@ void rf_integrator::run_cycle(std::span<double> out)
         const std::size_t n_steps = static_cast<std::size_t>(m_n);
         const auto slot = [&](int back) { return m_hist.data() + static_cast<std::size_t>((m_hist_last + 3 - back) % 3) * n_steps + static_cast<std::size_t>(k0); };
         double* const hist_out = slot(2); // this cycle overwrites the oldest cycle, phase by phase after predicting it
-        const auto fslot = [&](int back) { return m_hist_free.data() + static_cast<std::size_t>((m_hist_last + 3 - back) % 3) * n_steps + static_cast<std::size_t>(k0); };
+        const auto fslot = [&](int back) {
+            return m_hist_free.data() + static_cast<std::size_t>((m_hist_last + 3 - back) % 3) * n_steps + static_cast<std::size_t>(k0);
+        };
         const bool closing = m_predict && m_closing_wait == 0;
         if (closing)
-            linearise_block(m_law, law_batch{slot(0), slot(1), slot(2), fslot(0), fslot(1), fslot(2), m_free.data(), m_sens.data() + k0, m_bl.v_pred.data(), m_bl.offset.data(), m_bl.slope.data(), m_bl.inv_den.data(),
-                                         m_bl.f2.data(), m_bl.thr.data(), m_bl.qa.data(), m_bl.cr.data()},
+            linearise_block(m_law,
+                            law_batch{slot(0), slot(1), slot(2), fslot(0), fslot(1), fslot(2), m_free.data(), m_sens.data() + k0,
+                                      m_bl.v_pred.data(), m_bl.offset.data(), m_bl.slope.data(), m_bl.inv_den.data(), m_bl.f2.data(),
+                                      m_bl.thr.data(), m_bl.qa.data(), m_bl.cr.data()},
                         law_batch_constants{len, m_hist_cycles, beta, inv_h, m_c_lin, 2.0 * m_tol, curvature_growth});
         std::copy(m_free.data(), m_free.data() + len, fslot(2));
         // The steps in order on the prediction; a step that fails Newton's test is solved by the Newton (from its
