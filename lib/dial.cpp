@@ -251,7 +251,8 @@ dial_result render_dial(const receiver_spec& spec, const dial_path& path, const 
         const double f_dial = dial_frequency(path, tuning, 0.5 * static_cast<double>(c0 + c1) * period - preroll);
         const int n_grid = chunk_steps(c0, c1);
         res.fewest_steps_per_cycle = std::min(res.fewest_steps_per_cycle, n_grid);
-        if (c0 > 0) {
+        // A retune where the capacitor or the grid moves (not while the dial rests on a stop).
+        if (c0 > 0 && (tuning.capacitance_f(f_dial) != tuner.capacitance_f || n_grid != ig.steps_per_cycle())) {
             const auto w0 = clock::now();
             receiver_network next = network_at(f_dial);
             state_space ss_next = next.net.assemble();

@@ -59,7 +59,8 @@ private:
 /// Settings of a dial render.
 struct dial_settings {
     /// The network is re-assembled and re-tabulated with the capacitor's new value every this many seconds
-    /// of simulated time (the value at the interval's middle is held through it); (0, 0.1]. 2 ms moves a
+    /// of simulated time (the value at the interval's middle is held through it; no re-tabulation while the
+    /// dial rests on a stop); (0, 0.1]. 2 ms moves a
     /// 10 s sweep over 530-1700 kHz by 234 Hz per interval, about 1/20 of a loaded bandwidth.
     double retune_interval_s = 2e-3;
     /// Each station's level is measured over consecutive windows of this length (Hann), s; [1e-4, 1]. 8 ms
@@ -107,7 +108,7 @@ struct dial_result {
     double simulated_s = 0.0;
     double wall_s = 0.0;
     double retune_wall_s = 0.0;           ///< of wall_s: re-assembling and re-tabulating, s
-    std::size_t retunes = 0;
+    std::size_t retunes = 0;              ///< intervals that re-tabulated (those where the capacitor or the grid moved)
     rf_stats solver;                      ///< the RF integrator's work over the whole render
 };
 
