@@ -277,6 +277,7 @@ TEST_CASE("dial sweep: with a strong station far off tune, each station's level 
         rest.dwell_s = 0.05;
         const dial_result f = render_dial(spec, rest, dial_settings{}, [](const audio_block&) {});
         REQUIRE(f.trace.size() >= 4);
+        CHECK(f.retunes == 0); // the capacitor and the grid never move: nothing is re-tabulated
         // The glide's trace at fd, interpolated linearly between its neighbours; the rest's last three windows.
         std::size_t k = 1;
         while (k + 1 < r.trace.size() && r.trace[k].tuned_hz < fd) ++k;
