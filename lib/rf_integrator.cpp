@@ -517,6 +517,9 @@ rf_integrator::row_tables rf_integrator::output_tables(const Eigen::RowVectorXd&
     t.j.row(1).head(last + 1) = tail.j.colwise().sum() - 0.5 * tail.j.row(last - 1);
     t.m.row(2) = tail.m.row(last - 1);
     t.j.row(2).head(last + 1) = tail.j.row(last - 1);
+    // Held transposed, so that each of the three is a contiguous column for run_cycle's dot products.
+    t.m.transposeInPlace();
+    t.j.transposeInPlace();
     return t;
 }
 
@@ -806,8 +809,8 @@ void rf_integrator::run_cycle(std::span<double> out)
             if (m_out_use[o] == output_use::cycle_mean) {
                 const bool last_block = k0 + len == m_n;
                 const Eigen::Index r = last_block ? 1 : 0;
-                m_out_mean[o] += t.m.row(r).dot(m_z) + t.j.row(r).head(len + 1).dot(jb);
-                if (last_block) m_out_last[o] = t.m.row(2).dot(m_z) + t.j.row(2).head(len + 1).dot(jb);
+                m_out_mean[o] += t.m.col(r).dot(m_z) + t.j.col(r).head(len + 1).dot(jb);
+                if (last_block) m_out_last[o] = t.m.col(2).dot(m_z) + t.j.col(2).head(len + 1).dot(jb);
                 continue;
             }
             detail::column_major_product(t.m.data(), t.m.rows(), len, t.m.cols(), m_z.data(), m_y.data(), false);

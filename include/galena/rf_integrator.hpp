@@ -207,7 +207,7 @@ private:
                                       int length, bool last_only) const;
     /// An output's tables: tabulate's K rows for every_step; for cycle_mean three rows (J padded to K + 1
     /// columns): a whole block's step values summed, the cycle's last block summed with half weight on the
-    /// cycle's end, and the value at the cycle's end.
+    /// cycle's end, and the value at the cycle's end (these three held transposed: one column each).
     [[nodiscard]] row_tables output_tables(const Eigen::RowVectorXd& c, double d_u, double d_j, output_use use, std::size_t stations) const;
     int add_any_output(const Eigen::RowVectorXd& c, double d_u, double d_j, output_use use, std::size_t stations);
     [[nodiscard]] std::complex<double> envelope_at_cycle(std::size_t station, long long c) const noexcept;
