@@ -104,17 +104,6 @@ double band_noise::gaussian(std::uint64_t seed, long long n, int channel) noexce
 std::complex<double> band_noise::envelope(double t) const noexcept
 {
     if (m_density == 0.0) return {};
-    // The integrator asks for each cycle boundary four times (cycles c-1 .. c+2 of cycle c): keep the last few.
-    for (const auto& [tm, v] : m_recent)
-        if (tm == t) return v;
-    const std::complex<double> v = evaluate(t);
-    m_recent[m_next] = {t, v};
-    m_next = (m_next + 1) % m_recent.size();
-    return v;
-}
-
-std::complex<double> band_noise::evaluate(double t) const noexcept
-{
     // The fine grid point j sits at j / (M r); the quintic through points j0 - 2 .. j0 + 3 at u = y - j0
     // (6-point Lagrange: weight k is prod_{m != k} (u - m) / (k - m)).
     const double y = t * m_rate * fine_per_sample;

@@ -249,7 +249,7 @@ private:
     /// cycle's, the slots before it (mod 3) the older ones; m_hist_cycles of them are valid (0 to 3).
     std::vector<double> m_hist;
     std::vector<double> m_hist_free; ///< each phase's free port voltage (with the block's first current) in the same slots, V
-    std::vector<double> m_sens;      ///< each phase's dv/d(free voltage) at its last solution (0 after a reset)
+    std::vector<double> m_sens;      ///< each phase's dv/d(free voltage) at its last linearisation (prediction or Newton; 0 after a reset)
     int m_hist_last = 0;
     int m_hist_cycles = 0;
     /// Cycles left before closing steps on the prediction is tried again (0: it is tried; see run_cycle).

@@ -5,7 +5,6 @@
 
 #include "galena/signal.hpp"
 
-#include <array>
 #include <complex>
 #include <cstdint>
 #include <memory>
@@ -51,8 +50,8 @@ struct antenna_noise_params {
 /// the two-sided density D^2 in the pass band (D the one-sided EMF density), and r is set so that the
 /// noise-equivalent width r int k^2 is B = 2 x half_band: the EMF has the one-sided density D^2 over
 /// carrier +- B/2 and variance D^2 B (the windowed sinc's transition straddles the band edge r/2, a little
-/// above B/2). The interpolator is summed exactly on a grid 8 times finer than the samples, and a 4-point
-/// Lagrange cubic runs between its points (within 1e-4 of the RMS of the exact sum: band_noise_test).
+/// above B/2). The interpolator is summed exactly on a grid 8 times finer than the samples, and a 6-point
+/// Lagrange quintic runs between its points (within 1e-5 of the RMS of the exact sum: band_noise_test).
 /// Outside the band there is no noise: a single tuned circuit of -3 dB bandwidth b would pass a further
 /// fraction (2/pi) atan(b / B) of a flat density from outside (at b = 10 kHz, B = 80 kHz: 7.9 %, -0.36 dB
 /// of RF noise power), but that part beats with the carrier above the audio band.
@@ -75,13 +74,10 @@ private:
     // The samples around the last evaluation: index m_first .. m_first + size - 1, I and Q.
     mutable std::vector<double> m_raw_i, m_raw_q;
     mutable long long m_first = 0;
-    mutable std::array<std::pair<double, std::complex<double>>, 4> m_recent{{{-1e300, {}}, {-1e300, {}}, {-1e300, {}}, {-1e300, {}}}};
-    mutable std::size_t m_next = 0;
     // The interpolator's output on the fine grid (see stations.cpp), points m_fine_first .. + size / 2 - 1.
     mutable std::vector<double> m_fine;
     mutable long long m_fine_first = 0;
     void fill_fine(long long first) const;
-    [[nodiscard]] std::complex<double> evaluate(double t_s) const noexcept;
 };
 
 /// The antenna EMF: the sum of the stations' waves. Holds the sources by value (each am_source points at
